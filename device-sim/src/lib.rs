@@ -1,0 +1,1 @@
+//! Plimsoll device side.

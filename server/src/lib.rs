@@ -1,0 +1,1 @@
+//! Plimsoll aggregator library.

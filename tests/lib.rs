@@ -1,0 +1,1 @@
+//! Empty library: this package exists for its integration test binary (`main.rs`).
