@@ -1,1 +1,4 @@
-//! Integration tests, compiled as one binary.
+//! Integration tests, compiled as one binary to keep link time down.
+
+mod server_rpc;
+mod support;

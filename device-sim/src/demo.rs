@@ -1,0 +1,273 @@
+//! The end-to-end demo: simulate a cohort, start an aggregator on a loopback
+//! port with its database in the output folder, run every participant's
+//! device concurrently through the federated rounds, and report the learned
+//! prior, convergence and where the outputs are.
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use anyhow::Context;
+use indicatif::{ProgressBar, ProgressStyle};
+use plimsoll_server::{Coordinator, LocalTraining, Optimizer, SignalLayout, StudyConfig};
+use tokio::sync::Semaphore;
+
+use crate::client::{DeviceOptions, DeviceReport, connect_lazy, run_device};
+use crate::cohort::{self, BadRowPolicy, Cohort, Scenario, SimulateOptions};
+use crate::prior::{PARAM_NAMES, PriorParams};
+use crate::signal::Signal;
+
+/// Settings of a demo run.
+#[derive(Debug, Clone)]
+pub struct DemoOptions {
+    pub scenario: PathBuf,
+    pub out_dir: PathBuf,
+    pub seed: Option<u64>,
+    pub participants: Option<usize>,
+    pub rounds: u32,
+    pub local_steps: u32,
+    pub learning_rate: f64,
+    pub window_days: u32,
+}
+
+/// Study layouts for `signals`, starting from [`PriorParams::initial`].
+pub fn initial_layouts(signals: &[Signal]) -> Vec<SignalLayout> {
+    signals
+        .iter()
+        .map(|&s| {
+            let (centre, scale) = s.reference();
+            SignalLayout {
+                signal: s.column().to_owned(),
+                param_names: PARAM_NAMES.iter().map(|n| (*n).to_owned()).collect(),
+                reference_center: centre,
+                reference_scale: scale,
+                initial: PriorParams::initial(s).values.to_vec(),
+            }
+        })
+        .collect()
+}
+
+/// Signals with at least one observation anywhere in the cohort.
+pub fn cohort_signals(cohort: &Cohort) -> Vec<Signal> {
+    let mut found: Vec<Signal> = cohort
+        .participants
+        .iter()
+        .flat_map(|p| p.signals())
+        .collect();
+    found.sort_unstable();
+    found.dedup();
+    found
+}
+
+/// Outcome of [`run_federated`], for reporting and tests.
+#[derive(Debug)]
+pub struct FederatedRun {
+    pub reports: Vec<DeviceReport>,
+    pub history: Vec<plimsoll_server::study::PriorVersion>,
+    pub wall: Duration,
+}
+
+/// Runs every participant of `cohort` as a device against a fresh aggregator
+/// with its database at `db_path`, until the study's rounds are done.
+pub async fn run_federated(
+    cohort: &Cohort,
+    config: StudyConfig,
+    db_path: &Path,
+    devices_dir: &Path,
+    progress: Option<&ProgressBar>,
+) -> anyhow::Result<FederatedRun> {
+    let started = Instant::now();
+    let coordinator = Arc::new(
+        Coordinator::open(db_path).with_context(|| format!("opening {}", db_path.display()))?,
+    );
+    let study_id = config.study_id.clone();
+    let rounds = config.rounds;
+    coordinator.create_study(config, plimsoll_server::service::now_ms())?;
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
+    let server = plimsoll_server::serve(coordinator.clone(), listener).await?;
+    let channel = connect_lazy(server.addr)?;
+    let cpu = Arc::new(Semaphore::new(
+        std::thread::available_parallelism().map_or(2, |n| n.get()),
+    ));
+    let mut tasks = tokio::task::JoinSet::new();
+    for (i, series) in cohort.participants.iter().enumerate() {
+        let opts = DeviceOptions {
+            study_id: study_id.clone(),
+            out_dir: devices_dir.join(&series.participant),
+            wait_ms: 5_000,
+            seed: 0x5eed_0000 + i as u64,
+        };
+        tasks.spawn(run_device(
+            channel.clone(),
+            series.clone(),
+            opts,
+            cpu.clone(),
+        ));
+    }
+    let mut watch = coordinator.subscribe();
+    let mut reports = Vec::new();
+    loop {
+        tokio::select! {
+            joined = tasks.join_next() => match joined {
+                Some(result) => reports.push(result??),
+                None => break,
+            },
+            _ = watch.changed() => {
+                if let Some(pb) = progress {
+                    let done = coordinator.status(&study_id)?.rounds_completed;
+                    pb.set_position(u64::from(done.min(rounds)));
+                }
+            }
+        }
+    }
+    if let Some(pb) = progress {
+        pb.set_position(u64::from(rounds));
+    }
+    reports.sort_by(|a, b| a.participant.cmp(&b.participant));
+    let history = coordinator.prior_history(&study_id)?;
+    server.shutdown().await?;
+    Ok(FederatedRun {
+        reports,
+        history,
+        wall: started.elapsed(),
+    })
+}
+
+/// Runs the demo and prints its report to standard output.
+pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
+    let t0 = Instant::now();
+    let scenario = Scenario::from_path(&opts.scenario)?;
+    let cohort_dir = opts.out_dir.join("cohort");
+    std::fs::create_dir_all(&cohort_dir)
+        .with_context(|| format!("creating {}", cohort_dir.display()))?;
+    let sim = SimulateOptions {
+        seed: opts.seed,
+        participants: opts.participants,
+        days: None,
+    };
+    let summary = cohort::simulate_to_dir(&scenario, &sim, &cohort_dir, &mut |_, _| {})?;
+    println!(
+        "Simulated {} participants × {} days (seed {}) into {}",
+        summary.n_participants,
+        summary.n_days,
+        summary.seed,
+        cohort_dir.display()
+    );
+    // Read the cohort back through the same validating reader a real pilot's
+    // export goes through.
+    let cohort = cohort::read_cohort(&cohort_dir, BadRowPolicy::Quarantine)?;
+    for issue in &cohort.issues {
+        println!("  input issue: {issue}");
+    }
+    let signals = cohort_signals(&cohort);
+    let n = cohort.participants.len() as u32;
+    let config = StudyConfig {
+        study_id: "demo".into(),
+        title: format!("Demo cohort from {}", opts.scenario.display()),
+        signals: initial_layouts(&signals),
+        rounds: opts.rounds,
+        training: LocalTraining {
+            optimizer: Optimizer::Adam,
+            local_steps: opts.local_steps,
+            learning_rate: opts.learning_rate,
+            window_days: opts.window_days,
+            hyperprior_weight_per_day: 0.0,
+        },
+        fraction_per_round: 1.0,
+        min_quorum: (n / 2).max(1),
+        start_when_enrolled: n,
+        round_deadline_ms: 120_000,
+        selection_seed: 7,
+    };
+    let db_path = opts.out_dir.join("aggregator.db");
+    for suffix in ["", "-wal", "-shm"] {
+        let p = PathBuf::from(format!("{}{suffix}", db_path.display()));
+        if p.exists() {
+            std::fs::remove_file(&p)
+                .with_context(|| format!("removing the previous demo database {}", p.display()))?;
+        }
+    }
+    let bar = ProgressBar::new(u64::from(opts.rounds)).with_style(
+        ProgressStyle::with_template("federated rounds {bar:40} {pos}/{len} [{elapsed}]")
+            .expect("static template"),
+    );
+    let devices_dir = opts.out_dir.join("devices");
+    let run = run_federated(&cohort, config, &db_path, &devices_dir, Some(&bar)).await?;
+    bar.finish();
+
+    let mut out = std::io::stdout().lock();
+    writeln!(out)?;
+    writeln!(
+        out,
+        "Learned shared prior (version {}), in plain units:",
+        run.history.last().map_or(0, |p| p.version)
+    )?;
+    writeln!(
+        out,
+        "  {:<28} {:>12} {:>12} {:>11} {:>12} {:>12}",
+        "signal", "pop. mean", "between SD", "trend len", "weekly amp.", "noise SD"
+    )?;
+    let latest = run.history.last().context("no prior published")?;
+    for p in &latest.params {
+        let signal: Signal = p.signal.parse()?;
+        let prior = PriorParams::from_slice(signal, &p.values).context("prior vector")?;
+        let s = prior.summary();
+        let u = signal.unit();
+        writeln!(
+            out,
+            "  {:<28} {:>12} {:>12} {:>11} {:>12} {:>12}",
+            signal.label(),
+            format!("{:.2} {u}", s.population_mean),
+            format!("{:.2} {u}", s.between_sd),
+            format!("{:.1} d", s.trend_len_days),
+            format!("{:.2} {u}", s.weekly_amplitude),
+            format!("{:.2} {u}", s.noise_sd),
+        )?;
+    }
+    writeln!(out)?;
+    writeln!(
+        out,
+        "Convergence: pooled objective of the prior each round started from (nats/day, lower is better):"
+    )?;
+    write!(out, "  {:>5}", "round")?;
+    for p in &latest.params {
+        write!(out, " {:>18}", p.signal)?;
+    }
+    writeln!(out)?;
+    for v in run.history.iter().skip(1) {
+        write!(out, "  {:>5}", v.round_id)?;
+        for p in &latest.params {
+            match v.contributions.iter().find(|c| c.signal == p.signal) {
+                Some(c) => write!(out, " {:>18.4}", c.mean_local_loss)?,
+                None => write!(out, " {:>18}", "–")?,
+            }
+        }
+        writeln!(out)?;
+    }
+    writeln!(out)?;
+    writeln!(out, "Outputs:")?;
+    writeln!(
+        out,
+        "  cohort (shared CSV format):     {}",
+        cohort_dir.display()
+    )?;
+    writeln!(
+        out,
+        "  aggregator database (SQLite):   {}",
+        db_path.display()
+    )?;
+    writeln!(
+        out,
+        "  per-device posterior bands:     {}/<participant>/posterior.csv",
+        devices_dir.display()
+    )?;
+    writeln!(
+        out,
+        "Devices: {}; federated training took {:.1} s; whole demo {:.1} s.",
+        run.reports.len(),
+        run.wall.as_secs_f64(),
+        t0.elapsed().as_secs_f64()
+    )?;
+    Ok(())
+}

@@ -1,0 +1,100 @@
+//! Conversions between `plimsoll.v1` messages and the device's own types.
+//! The only device-side module that names generated protobuf types besides
+//! the gRPC client itself.
+
+use plimsoll_proto::v1 as pb;
+
+use crate::prior::PriorParams;
+use crate::signal::Signal;
+use crate::training::{LocalOptimizer, LocalSettings, LocalUpdate};
+
+/// A training task, decoded and checked.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TrainingTask {
+    pub round_id: u64,
+    pub shared: Vec<PriorParams>,
+    pub settings: LocalSettings,
+    pub deadline_unix_ms: i64,
+}
+
+/// Why a message from the aggregator could not be used.
+#[derive(Debug, thiserror::Error)]
+pub enum WireError {
+    #[error("{field}: {reason}")]
+    Invalid { field: String, reason: String },
+}
+
+fn invalid(field: impl Into<String>, reason: impl Into<String>) -> WireError {
+    WireError::Invalid {
+        field: field.into(),
+        reason: reason.into(),
+    }
+}
+
+pub fn params_from_pb(field: &str, p: &pb::SignalParameters) -> Result<PriorParams, WireError> {
+    let signal: Signal = p
+        .signal
+        .parse()
+        .map_err(|e| invalid(format!("{field}.signal"), format!("{e}")))?;
+    PriorParams::from_slice(signal, &p.values).ok_or_else(|| {
+        invalid(
+            format!("{field}.values"),
+            format!(
+                "expected {} finite values, got {:?}",
+                crate::prior::N_PARAMS,
+                p.values
+            ),
+        )
+    })
+}
+
+pub fn task_from_pb(task: pb::Task) -> Result<TrainingTask, WireError> {
+    let training = task
+        .training
+        .ok_or_else(|| invalid("task.training", "missing"))?;
+    let optimizer = match pb::Optimizer::try_from(training.optimizer) {
+        Ok(pb::Optimizer::Adam) => LocalOptimizer::Adam,
+        Ok(pb::Optimizer::Sgd) => LocalOptimizer::Sgd,
+        _ => {
+            return Err(invalid(
+                "task.training.optimizer",
+                format!("unsupported value {}", training.optimizer),
+            ));
+        }
+    };
+    let shared = task
+        .shared
+        .iter()
+        .enumerate()
+        .map(|(i, p)| params_from_pb(&format!("task.shared[{i}]"), p))
+        .collect::<Result<Vec<_>, _>>()?;
+    Ok(TrainingTask {
+        round_id: task.round_id,
+        shared,
+        settings: LocalSettings {
+            optimizer,
+            steps: training.local_steps as usize,
+            learning_rate: training.learning_rate,
+            window_days: training.window_days,
+            hyperprior_weight_per_day: training.hyperprior_weight_per_day,
+        },
+        deadline_unix_ms: task.deadline_unix_ms,
+    })
+}
+
+pub fn update_to_pb(signal: Signal, u: &LocalUpdate) -> pb::SignalUpdate {
+    pb::SignalUpdate {
+        signal: signal.column().to_owned(),
+        values: u.values.to_vec(),
+        n_days: u.n_days,
+        local_loss: u.loss_at_received,
+    }
+}
+
+pub fn prior_from_pb(p: &pb::PublishedPrior) -> Result<Vec<PriorParams>, WireError> {
+    p.params
+        .iter()
+        .enumerate()
+        .map(|(i, sp)| params_from_pb(&format!("prior.params[{i}]"), sp))
+        .collect()
+}

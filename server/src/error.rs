@@ -1,0 +1,36 @@
+//! The aggregator's one error type. Every kind maps to exactly one gRPC code
+//! in `wire::to_status`.
+
+/// Why an aggregator operation failed. Messages name the field or entity.
+#[derive(Debug, thiserror::Error)]
+pub enum AggregatorError {
+    /// A request field is malformed (INVALID_ARGUMENT).
+    #[error("{field}: {reason}")]
+    InvalidArgument { field: String, reason: String },
+    /// A study or device does not exist (NOT_FOUND).
+    #[error("{0}")]
+    NotFound(String),
+    /// The request is well formed but not valid now (FAILED_PRECONDITION).
+    #[error("{0}")]
+    FailedPrecondition(String),
+    /// The same thing was already done differently (ALREADY_EXISTS).
+    #[error("{0}")]
+    AlreadyExists(String),
+    /// The embedded database failed.
+    #[error("database: {0}")]
+    Database(#[from] rusqlite::Error),
+    /// Stored state could not be decoded.
+    #[error("stored state is corrupt: {0}")]
+    Corrupt(String),
+}
+
+impl AggregatorError {
+    pub fn invalid(field: impl Into<String>, reason: impl Into<String>) -> Self {
+        AggregatorError::InvalidArgument {
+            field: field.into(),
+            reason: reason.into(),
+        }
+    }
+}
+
+pub type Result<T> = std::result::Result<T, AggregatorError>;

@@ -1,0 +1,650 @@
+//! The round coordinator: enrolment, device selection, task hand-out,
+//! validation of submissions, FedAvg aggregation and deadline handling.
+//!
+//! In-memory state mirrors the database; every change is written to the
+//! database first (one transaction each) and applied in memory only after the
+//! write succeeded, so a failed write leaves both unchanged and a restart
+//! rebuilds the same state from the database.
+
+use std::collections::{BTreeMap, BTreeSet, HashMap};
+use std::path::Path;
+use std::sync::Mutex;
+
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use tokio::sync::watch;
+
+use crate::error::{AggregatorError, Result};
+use crate::store::{Store, StoredOpenRound};
+use crate::study::{
+    Contribution, PriorVersion, SignalParams, SignalUpdate, StudyConfig, StudyStatus,
+    SubmitOutcome, Work, fedavg, valid_id,
+};
+
+/// Suggested pause before a device asks again when it has nothing to do.
+const RETRY_AFTER_MS: u32 = 250;
+
+#[derive(Debug)]
+struct Device {
+    signals: Vec<String>,
+}
+
+#[derive(Debug)]
+struct OpenRound {
+    round_id: u64,
+    deadline_ms: i64,
+    members: BTreeSet<u64>,
+    submissions: BTreeMap<u64, Vec<SignalUpdate>>,
+}
+
+#[derive(Debug)]
+struct StudyRuntime {
+    config: StudyConfig,
+    devices: BTreeMap<u64, Device>,
+    labels: HashMap<String, u64>,
+    latest: PriorVersion,
+    rounds_completed: u32,
+    last_round_id: u64,
+    open: Option<OpenRound>,
+}
+
+#[derive(Debug)]
+struct State {
+    store: Store,
+    studies: BTreeMap<String, StudyRuntime>,
+}
+
+/// The aggregator's state machine, shared by the gRPC service and the
+/// deadline ticker. Methods are synchronous and short; callers on an async
+/// runtime hold the lock only for one operation.
+#[derive(Debug)]
+pub struct Coordinator {
+    state: Mutex<State>,
+    changed: watch::Sender<u64>,
+}
+
+impl Coordinator {
+    /// Opens the database at `path` and resumes every study from it.
+    pub fn open(path: &Path) -> Result<Coordinator> {
+        Self::from_store(Store::open(path)?)
+    }
+
+    /// Builds the coordinator from an opened store, rebuilding in-memory state.
+    pub fn from_store(store: Store) -> Result<Coordinator> {
+        let mut studies = BTreeMap::new();
+        for config in store.studies()? {
+            let id = config.study_id.clone();
+            let mut devices = BTreeMap::new();
+            let mut labels = HashMap::new();
+            for d in store.devices(&id)? {
+                labels.insert(d.label.clone(), d.device_id);
+                devices.insert(d.device_id, Device { signals: d.signals });
+            }
+            let latest = store
+                .priors(&id)?
+                .pop()
+                .ok_or_else(|| AggregatorError::Corrupt(format!("study {id} has no prior")))?;
+            let open = store.open_round(&id)?.map(|r| OpenRound {
+                round_id: r.round_id,
+                deadline_ms: r.deadline_ms,
+                members: r.members.into_iter().collect(),
+                submissions: r.submissions.into_iter().collect(),
+            });
+            let runtime = StudyRuntime {
+                rounds_completed: store.rounds_completed(&id)?,
+                last_round_id: store.last_round_id(&id)?,
+                config,
+                devices,
+                labels,
+                latest,
+                open,
+            };
+            studies.insert(id, runtime);
+        }
+        let (changed, _) = watch::channel(0);
+        Ok(Coordinator {
+            state: Mutex::new(State { store, studies }),
+            changed,
+        })
+    }
+
+    /// A receiver woken whenever any round opens or closes.
+    pub fn subscribe(&self) -> watch::Receiver<u64> {
+        self.changed.subscribe()
+    }
+
+    fn notify(&self) {
+        self.changed.send_modify(|n| *n += 1);
+    }
+
+    fn lock(&self) -> std::sync::MutexGuard<'_, State> {
+        // A panic while holding the lock cannot leave the database half
+        // written (transactions), and memory is only changed after writes, so
+        // the state behind a poisoned lock is still consistent.
+        self.state.lock().unwrap_or_else(|p| p.into_inner())
+    }
+
+    /// Creates a study; its initial prior becomes version 0.
+    pub fn create_study(&self, config: StudyConfig, now_ms: i64) -> Result<()> {
+        config
+            .validate()
+            .map_err(|reason| AggregatorError::invalid("study config", reason))?;
+        let mut state = self.lock();
+        if state.studies.contains_key(&config.study_id) {
+            return Err(AggregatorError::AlreadyExists(format!(
+                "study `{}` already exists",
+                config.study_id
+            )));
+        }
+        let initial = PriorVersion {
+            version: 0,
+            round_id: 0,
+            params: config
+                .signals
+                .iter()
+                .map(|s| SignalParams {
+                    signal: s.signal.clone(),
+                    values: s.initial.clone(),
+                })
+                .collect(),
+            contributions: Vec::new(),
+            created_unix_ms: now_ms,
+        };
+        state.store.create_study(&config, &initial, now_ms)?;
+        let id = config.study_id.clone();
+        state.studies.insert(
+            id,
+            StudyRuntime {
+                config,
+                devices: BTreeMap::new(),
+                labels: HashMap::new(),
+                latest: initial,
+                rounds_completed: 0,
+                last_round_id: 0,
+                open: None,
+            },
+        );
+        Ok(())
+    }
+
+    /// Identifiers of all studies.
+    pub fn study_ids(&self) -> Vec<String> {
+        self.lock().studies.keys().cloned().collect()
+    }
+
+    pub fn status(&self, study_id: &str) -> Result<StudyStatus> {
+        let state = self.lock();
+        let rt = study(&state.studies, study_id)?;
+        Ok(StudyStatus {
+            config: rt.config.clone(),
+            rounds_completed: rt.rounds_completed,
+            current_round: rt.open.as_ref().map_or(0, |r| r.round_id),
+            devices_enrolled: rt.devices.len() as u32,
+            prior_version: rt.latest.version,
+        })
+    }
+
+    /// Enrols a participant's device; the same label gets the same id back.
+    pub fn enroll(
+        &self,
+        study_id: &str,
+        label: &str,
+        signals: &[String],
+        now_ms: i64,
+    ) -> Result<u64> {
+        if !valid_id(label) {
+            return Err(AggregatorError::invalid(
+                "participant_label",
+                format!("`{label}` must match [A-Za-z0-9_-]{{1,64}}"),
+            ));
+        }
+        if signals.is_empty() {
+            return Err(AggregatorError::invalid(
+                "signals",
+                "at least one signal is needed",
+            ));
+        }
+        let mut state = self.lock();
+        let State { store, studies } = &mut *state;
+        let rt = study_mut(studies, study_id)?;
+        let mut seen = BTreeSet::new();
+        for (i, s) in signals.iter().enumerate() {
+            if rt.config.layout(s).is_none() {
+                return Err(AggregatorError::invalid(
+                    format!("signals[{i}]"),
+                    format!("`{s}` is not a signal of study `{study_id}`"),
+                ));
+            }
+            if !seen.insert(s) {
+                return Err(AggregatorError::invalid(
+                    format!("signals[{i}]"),
+                    format!("`{s}` repeated"),
+                ));
+            }
+        }
+        if let Some(&id) = rt.labels.get(label) {
+            return Ok(id);
+        }
+        let id = store.insert_device(study_id, label, signals, now_ms)?;
+        rt.labels.insert(label.to_owned(), id);
+        rt.devices.insert(
+            id,
+            Device {
+                signals: signals.to_vec(),
+            },
+        );
+        let opened = maybe_open_round(store, rt, now_ms, None)?;
+        drop(state);
+        if opened {
+            self.notify();
+        }
+        Ok(id)
+    }
+
+    /// What `device_id` should do now.
+    pub fn work_for(&self, study_id: &str, device_id: u64) -> Result<Work> {
+        let state = self.lock();
+        let rt = study(&state.studies, study_id)?;
+        let device = rt
+            .devices
+            .get(&device_id)
+            .ok_or_else(|| unknown_device(study_id, device_id))?;
+        if rt.rounds_completed >= rt.config.rounds {
+            return Ok(Work::Done {
+                prior_version: rt.latest.version,
+            });
+        }
+        let Some(open) = &rt.open else {
+            return Ok(Work::Wait {
+                retry_after_ms: RETRY_AFTER_MS,
+                reason: format!(
+                    "waiting for {} enrolled devices before round 1 ({} so far)",
+                    rt.config.start_when_enrolled,
+                    rt.devices.len()
+                ),
+            });
+        };
+        if !open.members.contains(&device_id) {
+            return Ok(Work::Wait {
+                retry_after_ms: RETRY_AFTER_MS,
+                reason: format!("not selected for round {}", open.round_id),
+            });
+        }
+        if open.submissions.contains_key(&device_id) {
+            return Ok(Work::Wait {
+                retry_after_ms: RETRY_AFTER_MS,
+                reason: format!(
+                    "update for round {} received; waiting for the round to close",
+                    open.round_id
+                ),
+            });
+        }
+        let shared = rt
+            .latest
+            .params
+            .iter()
+            .filter(|p| device.signals.contains(&p.signal))
+            .cloned()
+            .collect();
+        Ok(Work::Task {
+            round_id: open.round_id,
+            shared,
+            training: rt.config.training.clone(),
+            deadline_unix_ms: open.deadline_ms,
+        })
+    }
+
+    /// Validates and records a submission; closes the round when complete.
+    pub fn submit(
+        &self,
+        study_id: &str,
+        device_id: u64,
+        round_id: u64,
+        updates: Vec<SignalUpdate>,
+        now_ms: i64,
+    ) -> Result<SubmitOutcome> {
+        let mut state = self.lock();
+        let State { store, studies } = &mut *state;
+        let rt = study_mut(studies, study_id)?;
+        let device = rt
+            .devices
+            .get(&device_id)
+            .ok_or_else(|| unknown_device(study_id, device_id))?;
+        validate_updates(&rt.config, &device.signals, &updates)?;
+
+        let open_id = rt.open.as_ref().map(|r| r.round_id);
+        if open_id != Some(round_id) {
+            // A retry of a submission that was accepted before its round closed
+            // is answered as it was the first time (idempotent submission).
+            if round_id <= rt.last_round_id
+                && store.submission(study_id, round_id, device_id)?.as_ref() == Some(&updates)
+            {
+                return Ok(SubmitOutcome {
+                    accepted_in_round: 0,
+                    round_closed: true,
+                });
+            }
+            return Err(AggregatorError::FailedPrecondition(match open_id {
+                _ if round_id > rt.last_round_id => {
+                    format!(
+                        "round_id: round {round_id} has not opened (latest is {})",
+                        rt.last_round_id
+                    )
+                }
+                Some(cur) => {
+                    format!("round_id: round {round_id} is closed; the open round is {cur}")
+                }
+                None => format!("round_id: round {round_id} is closed and no round is open"),
+            }));
+        }
+        let open = rt.open.as_mut().expect("checked above");
+        if !open.members.contains(&device_id) {
+            return Err(AggregatorError::FailedPrecondition(format!(
+                "device_id: device {device_id} was not selected for round {round_id}"
+            )));
+        }
+        if let Some(previous) = open.submissions.get(&device_id) {
+            if previous == &updates {
+                return Ok(SubmitOutcome {
+                    accepted_in_round: open.submissions.len() as u32,
+                    round_closed: false,
+                });
+            }
+            return Err(AggregatorError::AlreadyExists(format!(
+                "device {device_id} already submitted a different update for round {round_id}"
+            )));
+        }
+        if now_ms > open.deadline_ms {
+            return Err(AggregatorError::FailedPrecondition(format!(
+                "round_id: the deadline of round {round_id} has passed"
+            )));
+        }
+        store.insert_update(study_id, round_id, device_id, &updates, now_ms)?;
+        open.submissions.insert(device_id, updates);
+        let accepted = open.submissions.len() as u32;
+        let complete = open.submissions.len() == open.members.len();
+        let mut closed = false;
+        if complete {
+            close_round(store, rt, now_ms)?;
+            maybe_open_round(store, rt, now_ms, None)?;
+            closed = true;
+        }
+        drop(state);
+        if closed {
+            self.notify();
+        }
+        Ok(SubmitOutcome {
+            accepted_in_round: accepted,
+            round_closed: closed,
+        })
+    }
+
+    /// Closes or retries rounds whose deadline has passed. Returns true when
+    /// anything changed.
+    pub fn tick(&self, now_ms: i64) -> Result<bool> {
+        let mut state = self.lock();
+        let State { store, studies } = &mut *state;
+        let mut changed = false;
+        for rt in studies.values_mut() {
+            let Some(open) = &rt.open else { continue };
+            if now_ms <= open.deadline_ms {
+                continue;
+            }
+            let round_id = open.round_id;
+            if open.submissions.len() as u32 >= rt.config.min_quorum {
+                tracing::info!(study = %rt.config.study_id, round_id, "deadline passed; closing with quorum");
+                close_round(store, rt, now_ms)?;
+                maybe_open_round(store, rt, now_ms, None)?;
+            } else {
+                tracing::warn!(
+                    study = %rt.config.study_id,
+                    round_id,
+                    received = open.submissions.len(),
+                    quorum = rt.config.min_quorum,
+                    "deadline passed without quorum; retrying the round"
+                );
+                let previous = rt.open.take();
+                if let Err(e) = maybe_open_round(store, rt, now_ms, Some(round_id)) {
+                    rt.open = previous;
+                    return Err(e);
+                }
+            }
+            changed = true;
+        }
+        drop(state);
+        if changed {
+            self.notify();
+        }
+        Ok(changed)
+    }
+
+    /// A published prior; version `None` is the latest.
+    pub fn prior(&self, study_id: &str, version: Option<u32>) -> Result<PriorVersion> {
+        let state = self.lock();
+        let rt = study(&state.studies, study_id)?;
+        match version {
+            None => Ok(rt.latest.clone()),
+            Some(v) if v == rt.latest.version => Ok(rt.latest.clone()),
+            Some(v) => state
+                .store
+                .priors(study_id)?
+                .into_iter()
+                .find(|p| p.version == v)
+                .ok_or_else(|| {
+                    AggregatorError::NotFound(format!(
+                        "version: study `{study_id}` has no prior version {v}"
+                    ))
+                }),
+        }
+    }
+
+    /// Every published prior, oldest first (for convergence reports).
+    pub fn prior_history(&self, study_id: &str) -> Result<Vec<PriorVersion>> {
+        let state = self.lock();
+        study(&state.studies, study_id)?;
+        state.store.priors(study_id)
+    }
+
+    /// SQLite's integrity report (`["ok"]` when sound).
+    pub fn integrity_check(&self) -> Result<Vec<String>> {
+        self.lock().store.integrity_check()
+    }
+}
+
+fn study<'a>(studies: &'a BTreeMap<String, StudyRuntime>, id: &str) -> Result<&'a StudyRuntime> {
+    studies
+        .get(id)
+        .ok_or_else(|| AggregatorError::NotFound(format!("study_id: no study `{id}`")))
+}
+
+fn study_mut<'a>(
+    studies: &'a mut BTreeMap<String, StudyRuntime>,
+    id: &str,
+) -> Result<&'a mut StudyRuntime> {
+    studies
+        .get_mut(id)
+        .ok_or_else(|| AggregatorError::NotFound(format!("study_id: no study `{id}`")))
+}
+
+fn unknown_device(study_id: &str, device_id: u64) -> AggregatorError {
+    AggregatorError::NotFound(format!(
+        "device_id: device {device_id} is not enrolled in study `{study_id}`"
+    ))
+}
+
+/// Checks a submission's shape before anything is stored.
+fn validate_updates(
+    config: &StudyConfig,
+    device_signals: &[String],
+    updates: &[SignalUpdate],
+) -> Result<()> {
+    if updates.is_empty() {
+        return Err(AggregatorError::invalid(
+            "updates",
+            "at least one signal update is needed",
+        ));
+    }
+    let mut seen = BTreeSet::new();
+    for (i, u) in updates.iter().enumerate() {
+        let layout = config
+            .layout(&u.signal)
+            .filter(|_| device_signals.contains(&u.signal))
+            .ok_or_else(|| {
+                AggregatorError::invalid(
+                    format!("updates[{i}].signal"),
+                    format!("`{}` is not a signal this device enrolled with", u.signal),
+                )
+            })?;
+        if !seen.insert(&u.signal) {
+            return Err(AggregatorError::invalid(
+                format!("updates[{i}].signal"),
+                format!("`{}` appears twice", u.signal),
+            ));
+        }
+        if u.values.len() != layout.param_names.len() {
+            return Err(AggregatorError::invalid(
+                format!("updates[{i}].values"),
+                format!(
+                    "expected {} values ({}), got {}",
+                    layout.param_names.len(),
+                    layout.param_names.join(", "),
+                    u.values.len()
+                ),
+            ));
+        }
+        if let Some(j) = u.values.iter().position(|v| !v.is_finite()) {
+            return Err(AggregatorError::invalid(
+                format!("updates[{i}].values[{j}]"),
+                format!("{} ({}) is not finite", u.values[j], layout.param_names[j]),
+            ));
+        }
+        if u.n_days == 0 {
+            return Err(AggregatorError::invalid(
+                format!("updates[{i}].n_days"),
+                "must be at least 1",
+            ));
+        }
+        if !u.local_loss.is_finite() {
+            return Err(AggregatorError::invalid(
+                format!("updates[{i}].local_loss"),
+                format!("{} is not finite", u.local_loss),
+            ));
+        }
+    }
+    Ok(())
+}
+
+/// Opens the next round when none is open, rounds remain and enough devices
+/// are enrolled. `abandon` names a round being retried for lack of quorum.
+fn maybe_open_round(
+    store: &mut Store,
+    rt: &mut StudyRuntime,
+    now_ms: i64,
+    abandon: Option<u64>,
+) -> Result<bool> {
+    if rt.open.is_some()
+        || rt.rounds_completed >= rt.config.rounds
+        || (rt.devices.len() as u32) < rt.config.start_when_enrolled
+    {
+        return Ok(false);
+    }
+    let round_id = rt.last_round_id + 1;
+    let members = select_members(&rt.config, rt.devices.keys().copied().collect(), round_id);
+    let round = StoredOpenRound {
+        round_id,
+        deadline_ms: now_ms + rt.config.round_deadline_ms as i64,
+        members,
+        submissions: Vec::new(),
+    };
+    store.open_new_round(
+        &rt.config.study_id,
+        &round,
+        rt.latest.version,
+        abandon,
+        now_ms,
+    )?;
+    tracing::info!(study = %rt.config.study_id, round_id, members = round.members.len(), "round opened");
+    rt.last_round_id = round_id;
+    rt.open = Some(OpenRound {
+        round_id,
+        deadline_ms: round.deadline_ms,
+        members: round.members.into_iter().collect(),
+        submissions: BTreeMap::new(),
+    });
+    Ok(true)
+}
+
+/// Seeded random choice of `max(quorum, ceil(fraction × n))` devices.
+fn select_members(config: &StudyConfig, enrolled: Vec<u64>, round_id: u64) -> Vec<u64> {
+    let n = enrolled.len();
+    let wanted = ((config.fraction_per_round * n as f64).ceil() as usize)
+        .max(config.min_quorum as usize)
+        .min(n);
+    let mut rng = ChaCha8Rng::seed_from_u64(
+        config.selection_seed ^ round_id.wrapping_mul(0x9E37_79B9_7F4A_7C15),
+    );
+    let mut chosen: Vec<u64> = rand::seq::index::sample(&mut rng, n, wanted)
+        .into_iter()
+        .map(|i| enrolled[i])
+        .collect();
+    chosen.sort_unstable();
+    chosen
+}
+
+/// FedAvg per signal over the open round's submissions; publishes the result.
+fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<()> {
+    let open = rt.open.as_ref().expect("close_round needs an open round");
+    let mut params = Vec::with_capacity(rt.latest.params.len());
+    let mut contributions = Vec::new();
+    for current in &rt.latest.params {
+        let entries: Vec<&SignalUpdate> = open
+            .submissions
+            .values()
+            .flat_map(|ups| ups.iter().filter(|u| u.signal == current.signal))
+            .collect();
+        let weighted: Vec<(&[f64], u32)> = entries
+            .iter()
+            .map(|u| (u.values.as_slice(), u.n_days))
+            .collect();
+        match fedavg(&weighted) {
+            Some(values) => {
+                let n_days: u64 = entries.iter().map(|u| u64::from(u.n_days)).sum();
+                let loss = entries
+                    .iter()
+                    .map(|u| u.local_loss * f64::from(u.n_days))
+                    .sum::<f64>()
+                    / n_days as f64;
+                contributions.push(Contribution {
+                    signal: current.signal.clone(),
+                    n_devices: entries.len() as u32,
+                    n_days,
+                    mean_local_loss: loss,
+                });
+                params.push(SignalParams {
+                    signal: current.signal.clone(),
+                    values,
+                });
+            }
+            None => params.push(current.clone()),
+        }
+    }
+    let prior = PriorVersion {
+        version: rt.latest.version + 1,
+        round_id: open.round_id,
+        params,
+        contributions,
+        created_unix_ms: now_ms,
+    };
+    store.close_round(&rt.config.study_id, open.round_id, &prior, now_ms)?;
+    tracing::info!(
+        study = %rt.config.study_id,
+        round_id = open.round_id,
+        version = prior.version,
+        devices = open.submissions.len(),
+        "round closed; prior published"
+    );
+    rt.latest = prior;
+    rt.rounds_completed += 1;
+    rt.open = None;
+    Ok(())
+}

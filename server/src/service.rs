@@ -1,0 +1,198 @@
+//! The tonic service for `plimsoll.v1.Aggregator`, plus health and reflection,
+//! and the task that closes rounds whose deadline passed.
+
+use std::net::SocketAddr;
+use std::sync::Arc;
+use std::time::{Duration, SystemTime, UNIX_EPOCH};
+
+use plimsoll_proto::v1 as pb;
+use plimsoll_proto::v1::aggregator_server::{Aggregator, AggregatorServer};
+use tokio::net::TcpListener;
+use tokio_stream::wrappers::TcpListenerStream;
+use tonic::{Request, Response, Status};
+
+use crate::rounds::Coordinator;
+use crate::study::Work;
+use crate::wire;
+
+/// Longest long-poll a device may ask for.
+const MAX_WAIT_MS: u32 = 10_000;
+
+/// Milliseconds since the Unix epoch.
+pub fn now_ms() -> i64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map_or(0, |d| d.as_millis() as i64)
+}
+
+/// gRPC front of a [`Coordinator`].
+#[derive(Debug, Clone)]
+pub struct AggregatorService {
+    coordinator: Arc<Coordinator>,
+}
+
+impl AggregatorService {
+    pub fn new(coordinator: Arc<Coordinator>) -> Self {
+        AggregatorService { coordinator }
+    }
+}
+
+/// Runs a blocking coordinator call off the async worker threads.
+async fn blocking<T: Send + 'static>(
+    f: impl FnOnce() -> crate::error::Result<T> + Send + 'static,
+) -> Result<T, Status> {
+    tokio::task::spawn_blocking(f)
+        .await
+        .map_err(|e| Status::internal(format!("worker failed: {e}")))?
+        .map_err(wire::to_status)
+}
+
+#[tonic::async_trait]
+impl Aggregator for AggregatorService {
+    async fn get_study(
+        &self,
+        req: Request<pb::GetStudyRequest>,
+    ) -> Result<Response<pb::Study>, Status> {
+        let c = self.coordinator.clone();
+        let id = req.into_inner().study_id;
+        let status = blocking(move || c.status(&id)).await?;
+        Ok(Response::new(wire::status_to_pb(&status)))
+    }
+
+    async fn enroll(
+        &self,
+        req: Request<pb::EnrollRequest>,
+    ) -> Result<Response<pb::EnrollResponse>, Status> {
+        let c = self.coordinator.clone();
+        let r = req.into_inner();
+        let device_id =
+            blocking(move || c.enroll(&r.study_id, &r.participant_label, &r.signals, now_ms()))
+                .await?;
+        Ok(Response::new(pb::EnrollResponse { device_id }))
+    }
+
+    async fn fetch_task(
+        &self,
+        req: Request<pb::FetchTaskRequest>,
+    ) -> Result<Response<pb::FetchTaskResponse>, Status> {
+        let r = req.into_inner();
+        let wait = Duration::from_millis(u64::from(r.wait_ms.min(MAX_WAIT_MS)));
+        let until = tokio::time::Instant::now() + wait;
+        let mut changes = self.coordinator.subscribe();
+        loop {
+            changes.borrow_and_update();
+            let c = self.coordinator.clone();
+            let study_id = r.study_id.clone();
+            let work = blocking(move || c.work_for(&study_id, r.device_id)).await?;
+            let waiting = matches!(work, Work::Wait { .. });
+            if !waiting || tokio::time::Instant::now() >= until {
+                return Ok(Response::new(wire::work_to_pb(work)));
+            }
+            // Sleep until a round opens or closes, or the long-poll ends.
+            let _ = tokio::time::timeout_at(until, changes.changed()).await;
+        }
+    }
+
+    async fn submit_update(
+        &self,
+        req: Request<pb::SubmitUpdateRequest>,
+    ) -> Result<Response<pb::SubmitUpdateResponse>, Status> {
+        let c = self.coordinator.clone();
+        let r = req.into_inner();
+        let updates = wire::updates_from_pb(r.updates);
+        let outcome =
+            blocking(move || c.submit(&r.study_id, r.device_id, r.round_id, updates, now_ms()))
+                .await?;
+        Ok(Response::new(pb::SubmitUpdateResponse {
+            accepted_in_round: outcome.accepted_in_round,
+            round_closed: outcome.round_closed,
+        }))
+    }
+
+    async fn get_prior(
+        &self,
+        req: Request<pb::GetPriorRequest>,
+    ) -> Result<Response<pb::PublishedPrior>, Status> {
+        let c = self.coordinator.clone();
+        let r = req.into_inner();
+        let version = (r.version != 0).then_some(r.version);
+        let study_id = r.study_id.clone();
+        let prior = blocking(move || c.prior(&study_id, version)).await?;
+        Ok(Response::new(wire::prior_to_pb(&r.study_id, &prior)))
+    }
+}
+
+/// Closes rounds whose deadline passed, every `period`, until the coordinator
+/// is dropped by everyone else.
+pub async fn run_deadline_ticker(coordinator: Arc<Coordinator>, period: Duration) {
+    let mut interval = tokio::time::interval(period);
+    interval.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+    loop {
+        interval.tick().await;
+        if Arc::strong_count(&coordinator) == 1 {
+            return;
+        }
+        let c = coordinator.clone();
+        match tokio::task::spawn_blocking(move || c.tick(now_ms())).await {
+            Ok(Ok(_)) => {}
+            Ok(Err(e)) => tracing::error!(error = %e, "deadline check failed"),
+            Err(e) => tracing::error!(error = %e, "deadline task failed"),
+        }
+    }
+}
+
+/// A running aggregator: its bound address and a handle to stop it.
+#[derive(Debug)]
+pub struct RunningServer {
+    pub addr: SocketAddr,
+    shutdown: Option<tokio::sync::oneshot::Sender<()>>,
+    task: tokio::task::JoinHandle<Result<(), tonic::transport::Error>>,
+}
+
+impl RunningServer {
+    /// Stops accepting calls, finishes the ones in flight and waits.
+    pub async fn shutdown(mut self) -> anyhow::Result<()> {
+        if let Some(tx) = self.shutdown.take() {
+            let _ = tx.send(());
+        }
+        self.task.await??;
+        Ok(())
+    }
+}
+
+/// Serves the aggregator, health and reflection services on `listener`.
+pub async fn serve(
+    coordinator: Arc<Coordinator>,
+    listener: TcpListener,
+) -> anyhow::Result<RunningServer> {
+    let addr = listener.local_addr()?;
+    let (health_reporter, health_service) = tonic_health::server::health_reporter();
+    health_reporter
+        .set_serving::<AggregatorServer<AggregatorService>>()
+        .await;
+    let reflection = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+        .build_v1()?;
+    tokio::spawn(run_deadline_ticker(
+        coordinator.clone(),
+        Duration::from_millis(100),
+    ));
+    let service = AggregatorServer::new(AggregatorService::new(coordinator));
+    let (tx, rx) = tokio::sync::oneshot::channel::<()>();
+    let task = tokio::spawn(
+        tonic::transport::Server::builder()
+            .add_service(health_service)
+            .add_service(reflection)
+            .add_service(service)
+            .serve_with_incoming_shutdown(TcpListenerStream::new(listener), async {
+                let _ = rx.await;
+            }),
+    );
+    tracing::info!(%addr, "aggregator listening");
+    Ok(RunningServer {
+        addr,
+        shutdown: Some(tx),
+        task,
+    })
+}

@@ -1,0 +1,434 @@
+//! The aggregator's durable state in an embedded SQLite database.
+//!
+//! Every state change a round goes through is one transaction, so a crash
+//! leaves either the old state or the new one (SQLite's atomic commit, WAL
+//! mode, `synchronous=FULL`). Nothing here stores a raw observation: only
+//! study configuration, enrolment, round membership, submitted parameter
+//! vectors with their day counts and losses, and published priors.
+
+use std::path::Path;
+
+use rusqlite::{Connection, OptionalExtension, params};
+
+use crate::error::{AggregatorError, Result};
+use crate::study::{PriorVersion, SignalUpdate, StudyConfig};
+
+const SCHEMA_VERSION: i64 = 1;
+
+const SCHEMA: &str = "
+CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL);
+CREATE TABLE IF NOT EXISTS studies (
+    study_id    TEXT PRIMARY KEY,
+    config_json TEXT NOT NULL,
+    created_ms  INTEGER NOT NULL
+);
+CREATE TABLE IF NOT EXISTS devices (
+    device_id    INTEGER PRIMARY KEY AUTOINCREMENT,
+    study_id     TEXT NOT NULL REFERENCES studies(study_id),
+    label        TEXT NOT NULL,
+    signals_json TEXT NOT NULL,
+    enrolled_ms  INTEGER NOT NULL,
+    UNIQUE (study_id, label)
+);
+CREATE TABLE IF NOT EXISTS rounds (
+    study_id     TEXT NOT NULL REFERENCES studies(study_id),
+    round_id     INTEGER NOT NULL,
+    state        TEXT NOT NULL CHECK (state IN ('open', 'closed', 'abandoned')),
+    opened_ms    INTEGER NOT NULL,
+    deadline_ms  INTEGER NOT NULL,
+    closed_ms    INTEGER,
+    base_version INTEGER NOT NULL,
+    PRIMARY KEY (study_id, round_id)
+);
+CREATE TABLE IF NOT EXISTS round_members (
+    study_id  TEXT NOT NULL,
+    round_id  INTEGER NOT NULL,
+    device_id INTEGER NOT NULL REFERENCES devices(device_id),
+    PRIMARY KEY (study_id, round_id, device_id),
+    FOREIGN KEY (study_id, round_id) REFERENCES rounds(study_id, round_id)
+);
+CREATE TABLE IF NOT EXISTS updates (
+    study_id     TEXT NOT NULL,
+    round_id     INTEGER NOT NULL,
+    device_id    INTEGER NOT NULL REFERENCES devices(device_id),
+    payload_json TEXT NOT NULL,
+    received_ms  INTEGER NOT NULL,
+    PRIMARY KEY (study_id, round_id, device_id),
+    FOREIGN KEY (study_id, round_id) REFERENCES rounds(study_id, round_id)
+);
+CREATE TABLE IF NOT EXISTS priors (
+    study_id           TEXT NOT NULL REFERENCES studies(study_id),
+    version            INTEGER NOT NULL,
+    round_id           INTEGER NOT NULL,
+    params_json        TEXT NOT NULL,
+    contributions_json TEXT NOT NULL,
+    created_ms         INTEGER NOT NULL,
+    PRIMARY KEY (study_id, version)
+);
+";
+
+/// A device as stored.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StoredDevice {
+    pub device_id: u64,
+    pub label: String,
+    pub signals: Vec<String>,
+}
+
+/// The round that was open when the state was last written.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StoredOpenRound {
+    pub round_id: u64,
+    pub deadline_ms: i64,
+    pub members: Vec<u64>,
+    pub submissions: Vec<(u64, Vec<SignalUpdate>)>,
+}
+
+/// Handle on the aggregator database.
+#[derive(Debug)]
+pub struct Store {
+    conn: Connection,
+}
+
+fn corrupt(what: &str, e: impl std::fmt::Display) -> AggregatorError {
+    AggregatorError::Corrupt(format!("{what}: {e}"))
+}
+
+fn to_json<T: serde::Serialize>(value: &T) -> String {
+    serde_json::to_string(value).expect("domain types serialise to JSON")
+}
+
+impl Store {
+    /// Opens (creating if needed) the database at `path`.
+    pub fn open(path: &Path) -> Result<Store> {
+        let conn = Connection::open(path)?;
+        Self::init(conn)
+    }
+
+    /// An in-memory database, for tests.
+    pub fn in_memory() -> Result<Store> {
+        Self::init(Connection::open_in_memory()?)
+    }
+
+    fn init(conn: Connection) -> Result<Store> {
+        conn.pragma_update(None, "journal_mode", "WAL")?;
+        conn.pragma_update(None, "synchronous", "FULL")?;
+        conn.pragma_update(None, "foreign_keys", "ON")?;
+        conn.busy_timeout(std::time::Duration::from_secs(5))?;
+        conn.execute_batch(SCHEMA)?;
+        let version: Option<i64> = conn
+            .query_row("SELECT version FROM schema_version", [], |r| r.get(0))
+            .optional()?;
+        match version {
+            None => {
+                conn.execute(
+                    "INSERT INTO schema_version (version) VALUES (?1)",
+                    [SCHEMA_VERSION],
+                )?;
+            }
+            Some(SCHEMA_VERSION) => {}
+            Some(other) => {
+                return Err(AggregatorError::Corrupt(format!(
+                    "database schema version {other}, this build reads {SCHEMA_VERSION}"
+                )));
+            }
+        }
+        Ok(Store { conn })
+    }
+
+    /// Creates a study with its initial prior (version 0) in one transaction.
+    pub fn create_study(
+        &mut self,
+        config: &StudyConfig,
+        initial: &PriorVersion,
+        now_ms: i64,
+    ) -> Result<()> {
+        let tx = self.conn.transaction()?;
+        tx.execute(
+            "INSERT INTO studies (study_id, config_json, created_ms) VALUES (?1, ?2, ?3)",
+            params![config.study_id, to_json(config), now_ms],
+        )?;
+        insert_prior(&tx, &config.study_id, initial)?;
+        tx.commit()?;
+        Ok(())
+    }
+
+    pub fn studies(&self) -> Result<Vec<StudyConfig>> {
+        let mut stmt = self
+            .conn
+            .prepare("SELECT study_id, config_json FROM studies ORDER BY study_id")?;
+        let rows = stmt.query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, String>(1)?)))?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (id, json) = row?;
+            out.push(serde_json::from_str(&json).map_err(|e| corrupt(&format!("study {id}"), e))?);
+        }
+        Ok(out)
+    }
+
+    pub fn devices(&self, study_id: &str) -> Result<Vec<StoredDevice>> {
+        let mut stmt = self.conn.prepare(
+            "SELECT device_id, label, signals_json FROM devices WHERE study_id = ?1 ORDER BY device_id",
+        )?;
+        let rows = stmt.query_map([study_id], |r| {
+            Ok((
+                r.get::<_, i64>(0)?,
+                r.get::<_, String>(1)?,
+                r.get::<_, String>(2)?,
+            ))
+        })?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (id, label, json) = row?;
+            let signals = serde_json::from_str(&json)
+                .map_err(|e| corrupt(&format!("device {id} signals"), e))?;
+            out.push(StoredDevice {
+                device_id: id as u64,
+                label,
+                signals,
+            });
+        }
+        Ok(out)
+    }
+
+    /// Inserts a device and returns its new id.
+    pub fn insert_device(
+        &mut self,
+        study_id: &str,
+        label: &str,
+        signals: &[String],
+        now_ms: i64,
+    ) -> Result<u64> {
+        self.conn.execute(
+            "INSERT INTO devices (study_id, label, signals_json, enrolled_ms) VALUES (?1, ?2, ?3, ?4)",
+            params![study_id, label, to_json(&signals), now_ms],
+        )?;
+        Ok(self.conn.last_insert_rowid() as u64)
+    }
+
+    /// All published priors of a study, oldest first.
+    pub fn priors(&self, study_id: &str) -> Result<Vec<PriorVersion>> {
+        let mut stmt = self.conn.prepare(
+            "SELECT version, round_id, params_json, contributions_json, created_ms
+             FROM priors WHERE study_id = ?1 ORDER BY version",
+        )?;
+        let rows = stmt.query_map([study_id], |r| {
+            Ok((
+                r.get::<_, i64>(0)?,
+                r.get::<_, i64>(1)?,
+                r.get::<_, String>(2)?,
+                r.get::<_, String>(3)?,
+                r.get::<_, i64>(4)?,
+            ))
+        })?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (version, round_id, params_json, contrib_json, created) = row?;
+            out.push(PriorVersion {
+                version: version as u32,
+                round_id: round_id as u64,
+                params: serde_json::from_str(&params_json)
+                    .map_err(|e| corrupt(&format!("prior {version} params"), e))?,
+                contributions: serde_json::from_str(&contrib_json)
+                    .map_err(|e| corrupt(&format!("prior {version} contributions"), e))?,
+                created_unix_ms: created,
+            });
+        }
+        Ok(out)
+    }
+
+    /// Largest round id used so far (0 when none).
+    pub fn last_round_id(&self, study_id: &str) -> Result<u64> {
+        let id: i64 = self.conn.query_row(
+            "SELECT COALESCE(MAX(round_id), 0) FROM rounds WHERE study_id = ?1",
+            [study_id],
+            |r| r.get(0),
+        )?;
+        Ok(id as u64)
+    }
+
+    /// Number of rounds closed with an aggregation.
+    pub fn rounds_completed(&self, study_id: &str) -> Result<u32> {
+        let n: i64 = self.conn.query_row(
+            "SELECT COUNT(*) FROM rounds WHERE study_id = ?1 AND state = 'closed'",
+            [study_id],
+            |r| r.get(0),
+        )?;
+        Ok(n as u32)
+    }
+
+    /// The open round, with its members and accepted submissions.
+    pub fn open_round(&self, study_id: &str) -> Result<Option<StoredOpenRound>> {
+        let row: Option<(i64, i64)> = self
+            .conn
+            .query_row(
+                "SELECT round_id, deadline_ms FROM rounds WHERE study_id = ?1 AND state = 'open'",
+                [study_id],
+                |r| Ok((r.get(0)?, r.get(1)?)),
+            )
+            .optional()?;
+        let Some((round_id, deadline_ms)) = row else {
+            return Ok(None);
+        };
+        let mut stmt = self.conn.prepare(
+            "SELECT device_id FROM round_members WHERE study_id = ?1 AND round_id = ?2 ORDER BY device_id",
+        )?;
+        let members = stmt
+            .query_map(params![study_id, round_id], |r| r.get::<_, i64>(0))?
+            .map(|r| r.map(|id| id as u64))
+            .collect::<rusqlite::Result<Vec<_>>>()?;
+        let mut stmt = self.conn.prepare(
+            "SELECT device_id, payload_json FROM updates WHERE study_id = ?1 AND round_id = ?2 ORDER BY device_id",
+        )?;
+        let rows = stmt.query_map(params![study_id, round_id], |r| {
+            Ok((r.get::<_, i64>(0)?, r.get::<_, String>(1)?))
+        })?;
+        let mut submissions = Vec::new();
+        for row in rows {
+            let (device, json) = row?;
+            let updates = serde_json::from_str(&json)
+                .map_err(|e| corrupt(&format!("round {round_id} update of device {device}"), e))?;
+            submissions.push((device as u64, updates));
+        }
+        Ok(Some(StoredOpenRound {
+            round_id: round_id as u64,
+            deadline_ms,
+            members,
+            submissions,
+        }))
+    }
+
+    /// A device's stored submission for a round, if any.
+    pub fn submission(
+        &self,
+        study_id: &str,
+        round_id: u64,
+        device_id: u64,
+    ) -> Result<Option<Vec<SignalUpdate>>> {
+        let json: Option<String> = self
+            .conn
+            .query_row(
+                "SELECT payload_json FROM updates WHERE study_id = ?1 AND round_id = ?2 AND device_id = ?3",
+                params![study_id, round_id as i64, device_id as i64],
+                |r| r.get(0),
+            )
+            .optional()?;
+        json.map(|j| serde_json::from_str(&j).map_err(|e| corrupt("stored update", e)))
+            .transpose()
+    }
+
+    /// Opens a round with its members; when `abandon` names the previous open
+    /// round (closed without quorum), marks it abandoned in the same transaction.
+    pub fn open_new_round(
+        &mut self,
+        study_id: &str,
+        round: &StoredOpenRound,
+        base_version: u32,
+        abandon: Option<u64>,
+        now_ms: i64,
+    ) -> Result<()> {
+        let tx = self.conn.transaction()?;
+        if let Some(old) = abandon {
+            tx.execute(
+                "UPDATE rounds SET state = 'abandoned', closed_ms = ?3
+                 WHERE study_id = ?1 AND round_id = ?2 AND state = 'open'",
+                params![study_id, old as i64, now_ms],
+            )?;
+        }
+        tx.execute(
+            "INSERT INTO rounds (study_id, round_id, state, opened_ms, deadline_ms, base_version)
+             VALUES (?1, ?2, 'open', ?3, ?4, ?5)",
+            params![
+                study_id,
+                round.round_id as i64,
+                now_ms,
+                round.deadline_ms,
+                base_version
+            ],
+        )?;
+        {
+            let mut stmt = tx.prepare(
+                "INSERT INTO round_members (study_id, round_id, device_id) VALUES (?1, ?2, ?3)",
+            )?;
+            for m in &round.members {
+                stmt.execute(params![study_id, round.round_id as i64, *m as i64])?;
+            }
+        }
+        tx.commit()?;
+        Ok(())
+    }
+
+    /// Records an accepted submission.
+    pub fn insert_update(
+        &mut self,
+        study_id: &str,
+        round_id: u64,
+        device_id: u64,
+        updates: &[SignalUpdate],
+        now_ms: i64,
+    ) -> Result<()> {
+        self.conn.execute(
+            "INSERT INTO updates (study_id, round_id, device_id, payload_json, received_ms)
+             VALUES (?1, ?2, ?3, ?4, ?5)",
+            params![
+                study_id,
+                round_id as i64,
+                device_id as i64,
+                to_json(&updates),
+                now_ms
+            ],
+        )?;
+        Ok(())
+    }
+
+    /// Closes a round and publishes the prior it produced, atomically.
+    pub fn close_round(
+        &mut self,
+        study_id: &str,
+        round_id: u64,
+        prior: &PriorVersion,
+        now_ms: i64,
+    ) -> Result<()> {
+        let tx = self.conn.transaction()?;
+        let changed = tx.execute(
+            "UPDATE rounds SET state = 'closed', closed_ms = ?3
+             WHERE study_id = ?1 AND round_id = ?2 AND state = 'open'",
+            params![study_id, round_id as i64, now_ms],
+        )?;
+        if changed != 1 {
+            return Err(AggregatorError::Corrupt(format!(
+                "round {round_id} of study {study_id} was not open when closing it"
+            )));
+        }
+        insert_prior(&tx, study_id, prior)?;
+        tx.commit()?;
+        Ok(())
+    }
+
+    /// Runs SQLite's own consistency check; returns its report lines.
+    pub fn integrity_check(&self) -> Result<Vec<String>> {
+        let mut stmt = self.conn.prepare("PRAGMA integrity_check")?;
+        let rows = stmt.query_map([], |r| r.get::<_, String>(0))?;
+        Ok(rows.collect::<rusqlite::Result<Vec<_>>>()?)
+    }
+}
+
+fn insert_prior(
+    tx: &rusqlite::Transaction<'_>,
+    study_id: &str,
+    prior: &PriorVersion,
+) -> Result<()> {
+    tx.execute(
+        "INSERT INTO priors (study_id, version, round_id, params_json, contributions_json, created_ms)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+        params![
+            study_id,
+            prior.version,
+            prior.round_id as i64,
+            to_json(&prior.params),
+            to_json(&prior.contributions),
+            prior.created_unix_ms
+        ],
+    )?;
+    Ok(())
+}

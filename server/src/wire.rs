@@ -1,0 +1,131 @@
+//! Conversions between `plimsoll.v1` wire messages and the aggregator's own
+//! types, and the one mapping from `AggregatorError` to `tonic::Status`.
+
+use plimsoll_proto::v1 as pb;
+use tonic::Status;
+
+use crate::error::AggregatorError;
+use crate::study::{
+    Contribution, LocalTraining, Optimizer, PriorVersion, SignalParams, SignalUpdate, StudyStatus,
+    Work,
+};
+
+/// The only place an aggregator error becomes a gRPC status.
+pub fn to_status(err: AggregatorError) -> Status {
+    match err {
+        AggregatorError::InvalidArgument { .. } => Status::invalid_argument(err.to_string()),
+        AggregatorError::NotFound(m) => Status::not_found(m),
+        AggregatorError::FailedPrecondition(m) => Status::failed_precondition(m),
+        AggregatorError::AlreadyExists(m) => Status::already_exists(m),
+        AggregatorError::Database(e) => {
+            tracing::error!(error = %e, "database error");
+            Status::internal("the aggregator's database failed; the request was not applied")
+        }
+        AggregatorError::Corrupt(m) => {
+            tracing::error!(error = %m, "corrupt state");
+            Status::internal("the aggregator's stored state is inconsistent")
+        }
+    }
+}
+
+pub fn training_to_pb(t: &LocalTraining) -> pb::LocalTraining {
+    pb::LocalTraining {
+        optimizer: match t.optimizer {
+            Optimizer::Adam => pb::Optimizer::Adam,
+            Optimizer::Sgd => pb::Optimizer::Sgd,
+        } as i32,
+        local_steps: t.local_steps,
+        learning_rate: t.learning_rate,
+        window_days: t.window_days,
+        hyperprior_weight_per_day: t.hyperprior_weight_per_day,
+    }
+}
+
+pub fn params_to_pb(p: &SignalParams) -> pb::SignalParameters {
+    pb::SignalParameters {
+        signal: p.signal.clone(),
+        values: p.values.clone(),
+    }
+}
+
+pub fn work_to_pb(work: Work) -> pb::FetchTaskResponse {
+    use pb::fetch_task_response::Work as W;
+    let w = match work {
+        Work::Task {
+            round_id,
+            shared,
+            training,
+            deadline_unix_ms,
+        } => W::Task(pb::Task {
+            round_id,
+            shared: shared.iter().map(params_to_pb).collect(),
+            training: Some(training_to_pb(&training)),
+            deadline_unix_ms,
+        }),
+        Work::Wait {
+            retry_after_ms,
+            reason,
+        } => W::Wait(pb::Wait {
+            retry_after_ms,
+            reason,
+        }),
+        Work::Done { prior_version } => W::Done(pb::Done { prior_version }),
+    };
+    pb::FetchTaskResponse { work: Some(w) }
+}
+
+pub fn updates_from_pb(updates: Vec<pb::SignalUpdate>) -> Vec<SignalUpdate> {
+    updates
+        .into_iter()
+        .map(|u| SignalUpdate {
+            signal: u.signal,
+            values: u.values,
+            n_days: u.n_days,
+            local_loss: u.local_loss,
+        })
+        .collect()
+}
+
+pub fn status_to_pb(s: &StudyStatus) -> pb::Study {
+    pb::Study {
+        study_id: s.config.study_id.clone(),
+        title: s.config.title.clone(),
+        signals: s
+            .config
+            .signals
+            .iter()
+            .map(|l| pb::SignalLayout {
+                signal: l.signal.clone(),
+                param_names: l.param_names.clone(),
+                reference_center: l.reference_center,
+                reference_scale: l.reference_scale,
+            })
+            .collect(),
+        rounds_planned: s.config.rounds,
+        rounds_completed: s.rounds_completed,
+        current_round: s.current_round,
+        devices_enrolled: s.devices_enrolled,
+        prior_version: s.prior_version,
+        min_quorum: s.config.min_quorum,
+    }
+}
+
+fn contribution_to_pb(c: &Contribution) -> pb::SignalContribution {
+    pb::SignalContribution {
+        signal: c.signal.clone(),
+        n_devices: c.n_devices,
+        n_days: c.n_days,
+        mean_local_loss: c.mean_local_loss,
+    }
+}
+
+pub fn prior_to_pb(study_id: &str, p: &PriorVersion) -> pb::PublishedPrior {
+    pb::PublishedPrior {
+        study_id: study_id.to_owned(),
+        version: p.version,
+        round_id: p.round_id,
+        params: p.params.iter().map(params_to_pb).collect(),
+        contributions: p.contributions.iter().map(contribution_to_pb).collect(),
+        created_unix_ms: p.created_unix_ms,
+    }
+}

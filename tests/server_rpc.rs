@@ -1,0 +1,385 @@
+//! The aggregator over real gRPC on loopback: health, reflection, the round
+//! protocol, restart from the database, and one test per bad-input case
+//! (each checks the status code, that the message names the field, and that
+//! the shared prior is untouched).
+
+use plimsoll_device::signal::Signal;
+use plimsoll_proto::v1 as pb;
+use plimsoll_proto::v1::aggregator_client::AggregatorClient;
+use tonic::Code;
+use tonic::transport::Channel;
+
+use crate::support::{TestServer, study_config};
+
+const STUDY: &str = "rpc-study";
+
+async fn enroll(client: &mut AggregatorClient<Channel>, label: &str) -> u64 {
+    client
+        .enroll(pb::EnrollRequest {
+            study_id: STUDY.into(),
+            participant_label: label.into(),
+            signals: vec!["resting_hr_bpm".into()],
+        })
+        .await
+        .unwrap()
+        .into_inner()
+        .device_id
+}
+
+async fn task(client: &mut AggregatorClient<Channel>, device_id: u64) -> pb::Task {
+    let r = client
+        .fetch_task(pb::FetchTaskRequest {
+            study_id: STUDY.into(),
+            device_id,
+            wait_ms: 2_000,
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    match r.work {
+        Some(pb::fetch_task_response::Work::Task(t)) => t,
+        other => panic!("expected a task, got {other:?}"),
+    }
+}
+
+fn update(values: Vec<f64>, n_days: u32) -> pb::SignalUpdate {
+    pb::SignalUpdate {
+        signal: "resting_hr_bpm".into(),
+        values,
+        n_days,
+        local_loss: 1.0,
+    }
+}
+
+fn submission(
+    device_id: u64,
+    round_id: u64,
+    updates: Vec<pb::SignalUpdate>,
+) -> pb::SubmitUpdateRequest {
+    pb::SubmitUpdateRequest {
+        study_id: STUDY.into(),
+        device_id,
+        round_id,
+        updates,
+    }
+}
+
+/// Two enrolled devices with round 1 open; returns (server, client, ids, task).
+async fn two_devices(
+    dir: &std::path::Path,
+) -> (TestServer, AggregatorClient<Channel>, [u64; 2], pb::Task) {
+    let server = TestServer::start(
+        &dir.join("agg.db"),
+        vec![study_config(STUDY, &[Signal::RestingHr], 2, 3)],
+    )
+    .await;
+    let mut client = server.client();
+    let a = enroll(&mut client, "p-a").await;
+    let b = enroll(&mut client, "p-b").await;
+    let t = task(&mut client, a).await;
+    (server, client, [a, b], t)
+}
+
+async fn latest_prior(client: &mut AggregatorClient<Channel>) -> pb::PublishedPrior {
+    client
+        .get_prior(pb::GetPriorRequest {
+            study_id: STUDY.into(),
+            version: 0,
+        })
+        .await
+        .unwrap()
+        .into_inner()
+}
+
+/// Sends `req`, expects `code` with `field` named in the message, and checks
+/// the prior did not change.
+async fn expect_refused(
+    client: &mut AggregatorClient<Channel>,
+    req: pb::SubmitUpdateRequest,
+    code: Code,
+    field: &str,
+) {
+    let before = latest_prior(client).await;
+    let err = client
+        .submit_update(req)
+        .await
+        .expect_err("must be refused");
+    assert_eq!(err.code(), code, "message: {}", err.message());
+    assert!(
+        err.message().contains(field),
+        "message `{}` should name `{field}`",
+        err.message()
+    );
+    assert_eq!(
+        latest_prior(client).await,
+        before,
+        "the shared prior must be untouched"
+    );
+}
+
+#[tokio::test]
+async fn health_and_reflection_are_served() {
+    let dir = tempfile::tempdir().unwrap();
+    let server = TestServer::start(
+        &dir.path().join("agg.db"),
+        vec![study_config(STUDY, &[Signal::RestingHr], 1, 1)],
+    )
+    .await;
+    let mut health = tonic_health::pb::health_client::HealthClient::new(server.channel());
+    let resp = health
+        .check(tonic_health::pb::HealthCheckRequest {
+            service: "plimsoll.v1.Aggregator".into(),
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(
+        resp.status,
+        tonic_health::pb::health_check_response::ServingStatus::Serving as i32
+    );
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn a_round_closes_with_the_day_weighted_average() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, b], t) = two_devices(dir.path()).await;
+    let mut va = vec![0.0; 7];
+    let mut vb = vec![0.0; 7];
+    va[0] = 1.0;
+    vb[0] = 4.0;
+    client
+        .submit_update(submission(a, t.round_id, vec![update(va, 10)]))
+        .await
+        .unwrap();
+    let r = client
+        .submit_update(submission(b, t.round_id, vec![update(vb, 30)]))
+        .await
+        .unwrap()
+        .into_inner();
+    assert!(r.round_closed);
+    let prior = latest_prior(&mut client).await;
+    assert_eq!(prior.version, 1);
+    // FedAvg by hand: (1·10 + 4·30) / 40 = 3.25.
+    assert!((prior.params[0].values[0] - 3.25).abs() < 1e-12);
+    assert_eq!(prior.contributions[0].n_days, 40);
+    let study = client
+        .get_study(pb::GetStudyRequest {
+            study_id: STUDY.into(),
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(study.rounds_completed, 1);
+    assert_eq!(study.current_round, 2);
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn restart_resumes_from_the_database() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, b], t) = two_devices(dir.path()).await;
+    client
+        .submit_update(submission(a, t.round_id, vec![update(vec![1.0; 7], 5)]))
+        .await
+        .unwrap();
+    client
+        .submit_update(submission(b, t.round_id, vec![update(vec![3.0; 7], 5)]))
+        .await
+        .unwrap();
+    // Round 2 is open; device a submits, then the server stops.
+    let t2 = task(&mut client, a).await;
+    assert_eq!(t2.round_id, 2);
+    client
+        .submit_update(submission(a, 2, vec![update(vec![0.0; 7], 5)]))
+        .await
+        .unwrap();
+    server.stop().await;
+
+    let server = TestServer::start(&dir.path().join("agg.db"), vec![]).await;
+    let mut client = server.client();
+    let prior = latest_prior(&mut client).await;
+    assert_eq!(prior.version, 1, "the completed round survives the restart");
+    assert_eq!(prior.params[0].values, vec![2.0; 7]);
+    // The open round resumes: a's submission is remembered, b still has its task.
+    let err = client
+        .submit_update(submission(a, 2, vec![update(vec![9.0; 7], 5)]))
+        .await
+        .unwrap_err();
+    assert_eq!(err.code(), Code::AlreadyExists);
+    let tb = task(&mut client, b).await;
+    assert_eq!(tb.round_id, 2);
+    let r = client
+        .submit_update(submission(b, 2, vec![update(vec![2.0; 7], 5)]))
+        .await
+        .unwrap()
+        .into_inner();
+    assert!(r.round_closed);
+    assert_eq!(
+        latest_prior(&mut client).await.params[0].values,
+        vec![1.0; 7]
+    );
+    assert_eq!(
+        server.coordinator.integrity_check().unwrap(),
+        vec!["ok".to_string()]
+    );
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn nan_parameter_is_invalid_argument() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, _], t) = two_devices(dir.path()).await;
+    let mut v = vec![0.0; 7];
+    v[3] = f64::NAN;
+    expect_refused(
+        &mut client,
+        submission(a, t.round_id, vec![update(v, 10)]),
+        Code::InvalidArgument,
+        "updates[0].values[3]",
+    )
+    .await;
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn infinite_parameter_is_invalid_argument() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, _], t) = two_devices(dir.path()).await;
+    let mut v = vec![0.0; 7];
+    v[6] = f64::INFINITY;
+    expect_refused(
+        &mut client,
+        submission(a, t.round_id, vec![update(v, 10)]),
+        Code::InvalidArgument,
+        "updates[0].values[6]",
+    )
+    .await;
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn wrong_length_parameters_are_invalid_argument() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, _], t) = two_devices(dir.path()).await;
+    expect_refused(
+        &mut client,
+        submission(a, t.round_id, vec![update(vec![0.0; 3], 10)]),
+        Code::InvalidArgument,
+        "updates[0].values",
+    )
+    .await;
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn zero_day_count_and_empty_update_are_invalid_argument() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, _], t) = two_devices(dir.path()).await;
+    expect_refused(
+        &mut client,
+        submission(a, t.round_id, vec![update(vec![0.0; 7], 0)]),
+        Code::InvalidArgument,
+        "updates[0].n_days",
+    )
+    .await;
+    expect_refused(
+        &mut client,
+        submission(a, t.round_id, vec![]),
+        Code::InvalidArgument,
+        "updates",
+    )
+    .await;
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn stale_round_is_failed_precondition() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, b], t) = two_devices(dir.path()).await;
+    client
+        .submit_update(submission(a, t.round_id, vec![update(vec![0.0; 7], 10)]))
+        .await
+        .unwrap();
+    client
+        .submit_update(submission(b, t.round_id, vec![update(vec![0.0; 7], 10)]))
+        .await
+        .unwrap();
+    // Round 1 is closed; a different late submission for it is refused.
+    expect_refused(
+        &mut client,
+        submission(a, 1, vec![update(vec![5.0; 7], 10)]),
+        Code::FailedPrecondition,
+        "round_id",
+    )
+    .await;
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn future_round_is_failed_precondition() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, _], _) = two_devices(dir.path()).await;
+    expect_refused(
+        &mut client,
+        submission(a, 99, vec![update(vec![0.0; 7], 10)]),
+        Code::FailedPrecondition,
+        "round_id",
+    )
+    .await;
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn unknown_device_is_not_found() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, _, t) = two_devices(dir.path()).await;
+    expect_refused(
+        &mut client,
+        submission(4242, t.round_id, vec![update(vec![0.0; 7], 10)]),
+        Code::NotFound,
+        "device_id",
+    )
+    .await;
+    let mut other = submission(1, t.round_id, vec![update(vec![0.0; 7], 10)]);
+    other.study_id = "no-such-study".into();
+    let err = client.submit_update(other).await.unwrap_err();
+    assert_eq!(err.code(), Code::NotFound);
+    assert!(err.message().contains("study_id"));
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn duplicate_submission_is_already_exists_unless_identical() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, _], t) = two_devices(dir.path()).await;
+    let first = submission(a, t.round_id, vec![update(vec![0.5; 7], 10)]);
+    client.submit_update(first.clone()).await.unwrap();
+    // An identical retry is answered as before (idempotent), not double-counted.
+    let again = client.submit_update(first).await.unwrap().into_inner();
+    assert_eq!(again.accepted_in_round, 1);
+    expect_refused(
+        &mut client,
+        submission(a, t.round_id, vec![update(vec![0.7; 7], 10)]),
+        Code::AlreadyExists,
+        "device",
+    )
+    .await;
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn unknown_signal_is_invalid_argument() {
+    let dir = tempfile::tempdir().unwrap();
+    let (server, mut client, [a, _], t) = two_devices(dir.path()).await;
+    let mut u = update(vec![0.0; 7], 10);
+    u.signal = "steps".into();
+    expect_refused(
+        &mut client,
+        submission(a, t.round_id, vec![u]),
+        Code::InvalidArgument,
+        "updates[0].signal",
+    )
+    .await;
+    server.stop().await;
+}
