@@ -1,4 +1,6 @@
 //! Integration tests, compiled as one binary to keep link time down.
 
+mod federated;
+mod gp_reference;
 mod server_rpc;
 mod support;

@@ -133,7 +133,7 @@ pub fn train_local<R: Rng>(
         .map(|w| w.filter(|w| w.n_days() >= MIN_WINDOW_OBS))
         .collect();
     let objective = |x: &[f64], step: usize| {
-        let data = windows[step].as_ref().unwrap_or(series);
+        let data = windows.get(step).and_then(Option::as_ref).unwrap_or(series);
         per_day_objective(x, data, settings.hyperprior_weight_per_day)
     };
     let result = match settings.optimizer {
