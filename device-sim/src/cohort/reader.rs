@@ -1,0 +1,768 @@
+//! Reader of the cohort CSV files with the validation of `data-format.md`:
+//! every bad row is reported with file, line, column and reason, and either
+//! quarantined (good rows kept) or aborts the read.
+
+use std::collections::{BTreeMap, HashMap};
+use std::fs::File;
+use std::io::{BufRead, BufReader, Write};
+use std::path::{Path, PathBuf};
+
+use chrono::NaiveDate;
+
+use super::{
+    BadRowPolicy, Cohort, CohortError, DAILY_FILE, EVENTS_FILE, Event, InputIssue,
+    PARTICIPANTS_FILE, ParticipantSeries, is_valid_participant_id, parse_date,
+};
+use crate::signal::Signal;
+
+/// Reads a cohort folder: `daily.csv` is required, `participants.csv` and
+/// `events.csv` are read when present. Issues of all files are collected in
+/// [`Cohort::issues`].
+pub fn read_cohort(dir: &Path, policy: BadRowPolicy) -> Result<Cohort, CohortError> {
+    let (participants, mut issues) = read_daily(&dir.join(DAILY_FILE), policy)?;
+    let mut groups = BTreeMap::new();
+    let participants_path = dir.join(PARTICIPANTS_FILE);
+    if participants_path.exists() {
+        let (read, more) = read_participants(&participants_path, policy)?;
+        groups = read;
+        issues.extend(more);
+    }
+    let mut events = Vec::new();
+    let events_path = dir.join(EVENTS_FILE);
+    if events_path.exists() {
+        let (read, more) = read_events(&events_path, policy)?;
+        events = read;
+        issues.extend(more);
+    }
+    Ok(Cohort {
+        participants,
+        groups,
+        events,
+        issues,
+    })
+}
+
+/// An open CSV file with its header (BOM stripped, names trimmed).
+struct CsvFile {
+    path: PathBuf,
+    reader: csv::Reader<BufReader<File>>,
+    header: Vec<String>,
+    lines: LineCounter,
+}
+
+/// Physical line numbers of records, from their byte offsets. The csv
+/// crate's own line count is off by one in CRLF files and skips blank
+/// lines, so the file is read a second time, in step, counting `\n`.
+struct LineCounter {
+    path: PathBuf,
+    reader: BufReader<File>,
+    pos: u64,
+    newlines: u64,
+}
+
+impl LineCounter {
+    fn open(path: &Path) -> Result<Self, CohortError> {
+        let file = File::open(path).map_err(|e| CohortError::io(path, e))?;
+        Ok(LineCounter {
+            path: path.to_owned(),
+            reader: BufReader::new(file),
+            pos: 0,
+            newlines: 0,
+        })
+    }
+
+    /// 1-based line on which the record whose position is `record` starts.
+    /// Records must be asked for in file order. A record position may point
+    /// at line-end bytes left over from the previous line (CRLF, blank
+    /// lines); a record never starts with `\r` or `\n`, so those are skipped.
+    fn line_of(&mut self, record: Option<&csv::Position>) -> Result<u64, CohortError> {
+        let offset = record.map_or(0, csv::Position::byte);
+        let io = |e| CohortError::io(&self.path, e);
+        while self.pos < offset {
+            let buf = self.reader.fill_buf().map_err(io)?;
+            if buf.is_empty() {
+                break;
+            }
+            let take = buf.len().min((offset - self.pos) as usize);
+            self.newlines += buf[..take].iter().filter(|b| **b == b'\n').count() as u64;
+            self.reader.consume(take);
+            self.pos += take as u64;
+        }
+        loop {
+            let buf = self.reader.fill_buf().map_err(io)?;
+            let skip = buf
+                .iter()
+                .take_while(|b| matches!(b, b'\r' | b'\n'))
+                .count();
+            self.newlines += buf[..skip].iter().filter(|b| **b == b'\n').count() as u64;
+            let done = skip < buf.len() || buf.is_empty();
+            self.reader.consume(skip);
+            self.pos += skip as u64;
+            if done {
+                return Ok(self.newlines + 1);
+            }
+        }
+    }
+}
+
+fn open_csv(path: &Path) -> Result<CsvFile, CohortError> {
+    let file = File::open(path).map_err(|e| CohortError::io(path, e))?;
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .flexible(true)
+        .from_reader(BufReader::new(file));
+    let raw = reader
+        .byte_headers()
+        .map_err(|e| CohortError::Csv {
+            path: path.to_owned(),
+            source: e,
+        })?
+        .clone();
+    let header: Vec<String> = raw
+        .iter()
+        .enumerate()
+        .map(|(i, field)| {
+            let mut text = String::from_utf8_lossy(field).into_owned();
+            if i == 0 {
+                text = text.trim_start_matches('\u{feff}').to_owned();
+            }
+            text.trim().to_owned()
+        })
+        .collect();
+    if header.is_empty() || header.iter().all(String::is_empty) {
+        return Err(CohortError::Empty {
+            path: path.to_owned(),
+        });
+    }
+    Ok(CsvFile {
+        path: path.to_owned(),
+        reader,
+        header,
+        lines: LineCounter::open(path)?,
+    })
+}
+
+/// Collects issues for one file and applies the bad-row policy.
+struct Issues<'a> {
+    path: &'a Path,
+    policy: BadRowPolicy,
+    found: Vec<InputIssue>,
+}
+
+impl Issues<'_> {
+    fn header(&mut self, column: usize, name: &str, reason: String) {
+        self.found.push(InputIssue {
+            file: self.path.to_owned(),
+            line: 1,
+            column: Some((column + 1, name.to_owned())),
+            reason,
+        });
+    }
+
+    /// Records a row error; under `Abort` returns it as the error.
+    fn row(
+        &mut self,
+        line: u64,
+        column: Option<(usize, &str)>,
+        reason: String,
+    ) -> Result<(), CohortError> {
+        let issue = InputIssue {
+            file: self.path.to_owned(),
+            line,
+            column: column.map(|(i, name)| (i + 1, name.to_owned())),
+            reason,
+        };
+        match self.policy {
+            BadRowPolicy::Abort => Err(CohortError::Aborted(issue)),
+            BadRowPolicy::Quarantine => {
+                self.found.push(issue);
+                Ok(())
+            }
+        }
+    }
+}
+
+/// Maps header names to known columns; reports unknown and repeated ones.
+/// Returns, per header position, the known column it feeds (if any).
+fn map_header<T: Clone + PartialEq>(
+    header: &[String],
+    known: impl Fn(&str) -> Option<T>,
+    issues: &mut Issues<'_>,
+) -> Vec<Option<T>> {
+    let mut mapped: Vec<Option<T>> = Vec::with_capacity(header.len());
+    for (i, name) in header.iter().enumerate() {
+        let column = match known(name) {
+            Some(c) if mapped.contains(&Some(c.clone())) => {
+                issues.header(i, name, format!("repeated column `{name}`, ignored"));
+                None
+            }
+            Some(c) => Some(c),
+            None => {
+                issues.header(i, name, format!("unknown column `{name}`, ignored"));
+                None
+            }
+        };
+        mapped.push(column);
+    }
+    mapped
+}
+
+fn require(
+    path: &Path,
+    mapped: &[Option<DailyColumn>],
+    column: DailyColumn,
+    name: &str,
+) -> Result<usize, CohortError> {
+    mapped
+        .iter()
+        .position(|c| *c == Some(column))
+        .ok_or_else(|| CohortError::MissingColumn {
+            path: path.to_owned(),
+            column: name.to_owned(),
+        })
+}
+
+fn field_text(bytes: &[u8]) -> Result<&str, String> {
+    std::str::from_utf8(bytes).map_err(|_| "cell is not valid UTF-8".to_owned())
+}
+
+/// Checks the participant id cell; returns a reason on failure.
+fn check_participant(bytes: &[u8]) -> Result<&str, String> {
+    let text = field_text(bytes)?;
+    if is_valid_participant_id(text) {
+        Ok(text)
+    } else if text.is_empty() {
+        Err("empty participant id".to_owned())
+    } else {
+        Err(format!(
+            "participant id `{}` is not [A-Za-z0-9_-]{{1,64}}",
+            text.escape_debug()
+        ))
+    }
+}
+
+fn check_date(bytes: &[u8]) -> Result<NaiveDate, String> {
+    let text = field_text(bytes)?;
+    parse_date(text.trim()).ok_or_else(|| {
+        format!(
+            "unparsable date `{}`, expected YYYY-MM-DD",
+            text.escape_debug()
+        )
+    })
+}
+
+/// Parses one signal cell: `Ok(None)` for an empty cell.
+fn check_value(bytes: &[u8], signal: Signal) -> Result<Option<f64>, String> {
+    let text = field_text(bytes)?.trim();
+    if text.is_empty() {
+        return Ok(None);
+    }
+    let value: f64 = match text.parse() {
+        Ok(v) if f64::is_finite(v) => v,
+        _ => return Err(format!("non-numeric value `{}`", text.escape_debug())),
+    };
+    let (low, high) = signal.plausible_range();
+    if !(low..=high).contains(&value) {
+        return Err(format!(
+            "value {text} outside the plausible range {low}–{high} {} of {}",
+            signal.unit(),
+            signal.column()
+        ));
+    }
+    Ok(Some(value))
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum DailyColumn {
+    Participant,
+    Date,
+    Value(Signal),
+}
+
+/// Rows of one participant while reading. Values are kept flat, one slot per
+/// signal column, NaN for an empty cell.
+#[derive(Default)]
+struct SeriesBuilder {
+    dates: Vec<NaiveDate>,
+    values: Vec<f64>,
+    /// Built on the first date that is not after the previous one, to find
+    /// duplicates in files that are not sorted.
+    seen: Option<HashMap<NaiveDate, u64>>,
+    lines: Vec<u64>,
+}
+
+/// Reads `daily.csv`. Returns the participants sorted by id, each with its
+/// rows sorted by date, and the issues found.
+pub fn read_daily(
+    path: &Path,
+    policy: BadRowPolicy,
+) -> Result<(Vec<ParticipantSeries>, Vec<InputIssue>), CohortError> {
+    let CsvFile {
+        path,
+        mut reader,
+        header,
+        mut lines,
+    } = open_csv(path)?;
+    let mut issues = Issues {
+        path: &path,
+        policy,
+        found: Vec::new(),
+    };
+    let mapped = map_header(
+        &header,
+        |name| match name {
+            "participant" => Some(DailyColumn::Participant),
+            "date" => Some(DailyColumn::Date),
+            other => other.parse().ok().map(DailyColumn::Value),
+        },
+        &mut issues,
+    );
+    let participant_col = require(&path, &mapped, DailyColumn::Participant, "participant")?;
+    let date_col = require(&path, &mapped, DailyColumn::Date, "date")?;
+    // (header position, signal) for the signal columns, in header order.
+    let signal_cols: Vec<(usize, Signal)> = mapped
+        .iter()
+        .enumerate()
+        .filter_map(|(i, c)| match c {
+            Some(DailyColumn::Value(s)) => Some((i, *s)),
+            _ => None,
+        })
+        .collect();
+    let width = signal_cols.len();
+
+    let mut index: HashMap<String, usize> = HashMap::new();
+    let mut builders: Vec<(String, SeriesBuilder)> = Vec::new();
+    let mut last: Option<usize> = None;
+    let mut record = csv::ByteRecord::new();
+    let mut row_values = vec![f64::NAN; width];
+    let mut n_rows = 0usize;
+
+    loop {
+        match reader.read_byte_record(&mut record) {
+            Ok(true) => {}
+            Ok(false) => break,
+            Err(e) => {
+                return Err(CohortError::Csv {
+                    path: path.clone(),
+                    source: e,
+                });
+            }
+        }
+        n_rows += 1;
+        let line = lines.line_of(record.position())?;
+        if record.len() != header.len() {
+            issues.row(
+                line,
+                None,
+                format!(
+                    "row has {} fields, header has {}",
+                    record.len(),
+                    header.len()
+                ),
+            )?;
+            continue;
+        }
+        let mut bad = false;
+        let participant = match check_participant(&record[participant_col]) {
+            Ok(p) => Some(p),
+            Err(reason) => {
+                issues.row(line, Some((participant_col, "participant")), reason)?;
+                bad = true;
+                None
+            }
+        };
+        let date = match check_date(&record[date_col]) {
+            Ok(d) => Some(d),
+            Err(reason) => {
+                issues.row(line, Some((date_col, "date")), reason)?;
+                bad = true;
+                None
+            }
+        };
+        for (slot, &(col, signal)) in signal_cols.iter().enumerate() {
+            match check_value(&record[col], signal) {
+                Ok(v) => row_values[slot] = v.unwrap_or(f64::NAN),
+                Err(reason) => {
+                    issues.row(line, Some((col, signal.column())), reason)?;
+                    bad = true;
+                }
+            }
+        }
+        let (Some(participant), Some(date), false) = (participant, date, bad) else {
+            continue;
+        };
+
+        let which = match last {
+            Some(i) if builders[i].0 == participant => i,
+            _ => match index.get(participant) {
+                Some(&i) => i,
+                None => {
+                    index.insert(participant.to_owned(), builders.len());
+                    builders.push((participant.to_owned(), SeriesBuilder::default()));
+                    builders.len() - 1
+                }
+            },
+        };
+        last = Some(which);
+        let builder = &mut builders[which].1;
+        let in_order = builder.dates.last().is_none_or(|prev| *prev < date);
+        if !in_order && builder.seen.is_none() {
+            builder.seen = Some(
+                builder
+                    .dates
+                    .iter()
+                    .copied()
+                    .zip(builder.lines.iter().copied())
+                    .collect(),
+            );
+        }
+        if let Some(seen) = &mut builder.seen {
+            if let Some(first) = seen.get(&date) {
+                let reason = format!(
+                    "duplicate day {date} for participant `{participant}` (first on line {first})"
+                );
+                issues.row(line, Some((date_col, "date")), reason)?;
+                continue;
+            }
+            seen.insert(date, line);
+        }
+        builder.dates.push(date);
+        builder.lines.push(line);
+        builder.values.extend_from_slice(&row_values);
+    }
+    if n_rows == 0 {
+        return Err(CohortError::Empty { path });
+    }
+
+    builders.sort_by(|a, b| a.0.cmp(&b.0));
+    let series = builders
+        .into_iter()
+        .map(|(participant, builder)| finish_series(participant, builder, &signal_cols))
+        .collect();
+    Ok((series, issues.found))
+}
+
+fn finish_series(
+    participant: String,
+    builder: SeriesBuilder,
+    signal_cols: &[(usize, Signal)],
+) -> ParticipantSeries {
+    let width = signal_cols.len();
+    let mut order: Vec<usize> = (0..builder.dates.len()).collect();
+    if builder.seen.is_some() {
+        order.sort_by_key(|&i| builder.dates[i]);
+    }
+    let dates = order.iter().map(|&i| builder.dates[i]).collect();
+    let values = signal_cols
+        .iter()
+        .enumerate()
+        .map(|(slot, &(_, signal))| {
+            let column = order
+                .iter()
+                .map(|&i| {
+                    let v = builder.values[i * width + slot];
+                    (!v.is_nan()).then_some(v)
+                })
+                .collect();
+            (signal, column)
+        })
+        .collect();
+    ParticipantSeries {
+        participant,
+        dates,
+        values,
+    }
+}
+
+/// participant -> group column -> value, as in [`Cohort::groups`].
+pub type Groups = BTreeMap<String, BTreeMap<String, String>>;
+
+/// Reads `participants.csv`: participant -> group column -> value. Empty
+/// cells are left out of the map.
+pub fn read_participants(
+    path: &Path,
+    policy: BadRowPolicy,
+) -> Result<(Groups, Vec<InputIssue>), CohortError> {
+    let CsvFile {
+        path,
+        mut reader,
+        header,
+        mut lines,
+    } = open_csv(path)?;
+    let mut issues = Issues {
+        path: &path,
+        policy,
+        found: Vec::new(),
+    };
+    // Every column but `participant` is a group column; repeated names are ignored.
+    let mapped = map_header(&header, |name| Some(name.to_owned()), &mut issues);
+    let participant_col = mapped
+        .iter()
+        .position(|c| c.as_deref() == Some("participant"))
+        .ok_or_else(|| CohortError::MissingColumn {
+            path: path.clone(),
+            column: "participant".to_owned(),
+        })?;
+    let mut groups: Groups = BTreeMap::new();
+    let mut first_line: HashMap<String, u64> = HashMap::new();
+    let mut record = csv::ByteRecord::new();
+    loop {
+        match reader.read_byte_record(&mut record) {
+            Ok(true) => {}
+            Ok(false) => break,
+            Err(e) => {
+                return Err(CohortError::Csv {
+                    path: path.clone(),
+                    source: e,
+                });
+            }
+        }
+        let line = lines.line_of(record.position())?;
+        if record.len() != header.len() {
+            let reason = format!(
+                "row has {} fields, header has {}",
+                record.len(),
+                header.len()
+            );
+            issues.row(line, None, reason)?;
+            continue;
+        }
+        let participant = match check_participant(&record[participant_col]) {
+            Ok(p) => p.to_owned(),
+            Err(reason) => {
+                issues.row(line, Some((participant_col, "participant")), reason)?;
+                continue;
+            }
+        };
+        if let Some(first) = first_line.get(&participant) {
+            let reason = format!("duplicate participant `{participant}` (first on line {first})");
+            issues.row(line, Some((participant_col, "participant")), reason)?;
+            continue;
+        }
+        let mut row = BTreeMap::new();
+        let mut bad = false;
+        for (i, column) in mapped.iter().enumerate() {
+            let Some(column) = column else { continue };
+            if i == participant_col {
+                continue;
+            }
+            match field_text(&record[i]) {
+                Ok(text) if text.trim().is_empty() => {}
+                Ok(text) => {
+                    row.insert(column.clone(), text.trim().to_owned());
+                }
+                Err(reason) => {
+                    issues.row(line, Some((i, column)), reason)?;
+                    bad = true;
+                }
+            }
+        }
+        if !bad {
+            first_line.insert(participant.clone(), line);
+            groups.insert(participant, row);
+        }
+    }
+    Ok((groups, issues.found))
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum EventColumn {
+    Participant,
+    Kind,
+    Start,
+    End,
+    SymptomOnset,
+}
+
+/// Reads `events.csv` (ground truth written by the simulator), in file order.
+pub fn read_events(
+    path: &Path,
+    policy: BadRowPolicy,
+) -> Result<(Vec<Event>, Vec<InputIssue>), CohortError> {
+    let CsvFile {
+        path,
+        mut reader,
+        header,
+        mut lines,
+    } = open_csv(path)?;
+    let mut issues = Issues {
+        path: &path,
+        policy,
+        found: Vec::new(),
+    };
+    let mapped = map_header(
+        &header,
+        |name| match name {
+            "participant" => Some(EventColumn::Participant),
+            "kind" => Some(EventColumn::Kind),
+            "start" => Some(EventColumn::Start),
+            "end" => Some(EventColumn::End),
+            "symptom_onset" => Some(EventColumn::SymptomOnset),
+            _ => None,
+        },
+        &mut issues,
+    );
+    let find = |column: EventColumn, name: &str| {
+        mapped
+            .iter()
+            .position(|c| *c == Some(column))
+            .ok_or_else(|| CohortError::MissingColumn {
+                path: path.clone(),
+                column: name.to_owned(),
+            })
+    };
+    let participant_col = find(EventColumn::Participant, "participant")?;
+    let kind_col = find(EventColumn::Kind, "kind")?;
+    let start_col = find(EventColumn::Start, "start")?;
+    let end_col = find(EventColumn::End, "end")?;
+    let onset_col = find(EventColumn::SymptomOnset, "symptom_onset").ok();
+
+    let mut events = Vec::new();
+    let mut record = csv::ByteRecord::new();
+    loop {
+        match reader.read_byte_record(&mut record) {
+            Ok(true) => {}
+            Ok(false) => break,
+            Err(e) => {
+                return Err(CohortError::Csv {
+                    path: path.clone(),
+                    source: e,
+                });
+            }
+        }
+        let line = lines.line_of(record.position())?;
+        if record.len() != header.len() {
+            let reason = format!(
+                "row has {} fields, header has {}",
+                record.len(),
+                header.len()
+            );
+            issues.row(line, None, reason)?;
+            continue;
+        }
+        let mut bad = false;
+        let participant = match check_participant(&record[participant_col]) {
+            Ok(p) => p.to_owned(),
+            Err(reason) => {
+                issues.row(line, Some((participant_col, "participant")), reason)?;
+                bad = true;
+                String::new()
+            }
+        };
+        let kind = match field_text(&record[kind_col]).map(str::trim) {
+            Ok(k) if !k.is_empty() => k.to_owned(),
+            Ok(_) => {
+                issues.row(
+                    line,
+                    Some((kind_col, "kind")),
+                    "empty event kind".to_owned(),
+                )?;
+                bad = true;
+                String::new()
+            }
+            Err(reason) => {
+                issues.row(line, Some((kind_col, "kind")), reason)?;
+                bad = true;
+                String::new()
+            }
+        };
+        let mut date_at =
+            |col: usize, name: &str, optional: bool| -> Result<Option<NaiveDate>, CohortError> {
+                if optional && record[col].iter().all(u8::is_ascii_whitespace) {
+                    return Ok(None);
+                }
+                match check_date(&record[col]) {
+                    Ok(d) => Ok(Some(d)),
+                    Err(reason) => {
+                        issues.row(line, Some((col, name)), reason)?;
+                        bad = true;
+                        Ok(None)
+                    }
+                }
+            };
+        let start = date_at(start_col, "start", false)?;
+        let end = date_at(end_col, "end", false)?;
+        let symptom_onset = match onset_col {
+            Some(col) => date_at(col, "symptom_onset", true)?,
+            None => None,
+        };
+        if let (Some(start), Some(end)) = (start, end)
+            && end < start
+        {
+            let reason = format!("end {end} is before start {start}");
+            issues.row(line, Some((end_col, "end")), reason)?;
+            bad = true;
+        }
+        if let (false, Some(start), Some(end)) = (bad, start, end) {
+            events.push(Event {
+                participant,
+                kind,
+                start,
+                end,
+                symptom_onset,
+            });
+        }
+    }
+    Ok((events, issues.found))
+}
+
+/// Copies the quarantined rows of `source` (every record whose line is named
+/// by a row issue of that file) to `out`: the original columns followed by
+/// `quarantine_line` and `quarantine_reason` (reasons of one row joined by
+/// `; `). Returns the number of rows written.
+pub fn write_quarantine(
+    source: &Path,
+    issues: &[InputIssue],
+    out: &Path,
+) -> Result<usize, CohortError> {
+    let mut reasons: BTreeMap<u64, Vec<String>> = BTreeMap::new();
+    for issue in issues
+        .iter()
+        .filter(|i| i.file == source && i.is_row_error())
+    {
+        let text = match &issue.column {
+            Some((_, name)) => format!("{name}: {}", issue.reason),
+            None => issue.reason.clone(),
+        };
+        reasons.entry(issue.line).or_default().push(text);
+    }
+    fn csv_err(path: &Path) -> impl Fn(csv::Error) -> CohortError + '_ {
+        move |e| CohortError::Csv {
+            path: path.to_owned(),
+            source: e,
+        }
+    }
+    let file = File::open(source).map_err(|e| CohortError::io(source, e))?;
+    let mut reader = csv::ReaderBuilder::new()
+        .flexible(true)
+        .from_reader(BufReader::new(file));
+    let out_file = File::create(out).map_err(|e| CohortError::io(out, e))?;
+    let mut writer = csv::WriterBuilder::new()
+        .flexible(true)
+        .terminator(csv::Terminator::Any(b'\n'))
+        .from_writer(std::io::BufWriter::new(out_file));
+    let mut header = reader.byte_headers().map_err(csv_err(source))?.clone();
+    header.push_field(b"quarantine_line");
+    header.push_field(b"quarantine_reason");
+    writer.write_byte_record(&header).map_err(csv_err(out))?;
+    let mut lines = LineCounter::open(source)?;
+    let mut record = csv::ByteRecord::new();
+    let mut written = 0;
+    while reader
+        .read_byte_record(&mut record)
+        .map_err(csv_err(source))?
+    {
+        let line = lines.line_of(record.position())?;
+        if let Some(why) = reasons.get(&line) {
+            record.push_field(line.to_string().as_bytes());
+            record.push_field(why.join("; ").as_bytes());
+            writer.write_byte_record(&record).map_err(csv_err(out))?;
+            written += 1;
+        }
+    }
+    let mut inner = writer
+        .into_inner()
+        .map_err(|e| CohortError::io(out, e.into_error()))?;
+    inner.flush().map_err(|e| CohortError::io(out, e))?;
+    Ok(written)
+}
