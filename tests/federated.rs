@@ -105,10 +105,8 @@ async fn federated_prior_is_within_one_percent_of_the_centralised_optimum() {
     let central = fit_centralised(&start, &local, 0.0, &LbfgsConfig::default()).unwrap();
     let (f_start, _) = pooled_objective(&start, &local, 0.0).unwrap();
 
-    let mut config = study_config("fed-vs-central", &[signal], 100, 30);
-    config.training.local_steps = 10;
-    config.training.learning_rate = 0.05;
-    config.training.window_days = 0;
+    // Default local training (plain SGD, 2 steps per round, full series).
+    let config = study_config("fed-vs-central", &[signal], 100, 40);
     let dir = tempfile::tempdir().unwrap();
     let run = run_federated(
         &cohort_from(signal, &series),
@@ -136,7 +134,7 @@ async fn federated_prior_is_within_one_percent_of_the_centralised_optimum() {
         central.f
     );
     assert_eq!(run.reports.len(), 100);
-    assert!(run.reports.iter().all(|r| r.rounds_trained == 30));
+    assert!(run.reports.iter().all(|r| r.rounds_trained == 40));
 }
 
 /// Two devices, `A·sin(t/10)` and `−A·sin(t/10)` plus noise, share one prior.
@@ -177,9 +175,7 @@ async fn one_prior_personalises_to_opposite_series() {
         "best shared mean RMS {shared_best_rms}"
     );
 
-    let mut config = study_config("personal", &[signal], 2, 40);
-    config.training.local_steps = 10;
-    config.training.learning_rate = 0.08;
+    let config = study_config("personal", &[signal], 2, 60);
     let dir = tempfile::tempdir().unwrap();
     let cohort = cohort_from(signal, &series);
     let run = run_federated(

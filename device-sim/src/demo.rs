@@ -168,7 +168,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         signals: initial_layouts(&signals),
         rounds: opts.rounds,
         training: LocalTraining {
-            optimizer: Optimizer::Adam,
+            optimizer: Optimizer::Sgd,
             local_steps: opts.local_steps,
             learning_rate: opts.learning_rate,
             window_days: opts.window_days,

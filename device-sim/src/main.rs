@@ -3,6 +3,8 @@
 use std::path::PathBuf;
 
 use clap::{Parser, Subcommand};
+use indicatif::{ProgressBar, ProgressStyle};
+use plimsoll_device::cohort::{Scenario, SimulateOptions, SimulationSummary, simulate_to_dir};
 use plimsoll_device::demo::{DemoOptions, run_demo};
 
 #[derive(Debug, Parser)]
@@ -18,6 +20,24 @@ struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
+    /// Generate a synthetic cohort with known injected events (daily.csv,
+    /// participants.csv, events.csv, scenario.toml) from a scenario file.
+    Simulate {
+        /// Scenario file (TOML), e.g. demo-data/pilot.toml.
+        scenario: PathBuf,
+        /// Output folder.
+        #[arg(long, default_value = "out/cohort")]
+        out: PathBuf,
+        /// Override the scenario's seed.
+        #[arg(long)]
+        seed: Option<u64>,
+        /// Override the number of participants.
+        #[arg(long)]
+        participants: Option<usize>,
+        /// Override the number of days.
+        #[arg(long)]
+        days: Option<usize>,
+    },
     /// Simulate a small cohort, train the shared prior over loopback gRPC, and report.
     Demo {
         /// Scenario file (TOML).
@@ -33,16 +53,16 @@ enum Command {
         #[arg(long)]
         participants: Option<usize>,
         /// Federated rounds.
-        #[arg(long, default_value_t = 25)]
+        #[arg(long, default_value_t = 80)]
         rounds: u32,
-        /// Local optimisation steps per round.
-        #[arg(long, default_value_t = 10)]
+        /// Local optimisation steps per round (plain SGD).
+        #[arg(long, default_value_t = 2)]
         local_steps: u32,
-        /// Adam step size (log-parameter space).
-        #[arg(long, default_value_t = 0.05)]
+        /// SGD step size (parameter space; the objective is per day).
+        #[arg(long, default_value_t = 1.0)]
         learning_rate: f64,
         /// Window length in days for local steps (0 = full series).
-        #[arg(long, default_value_t = 60)]
+        #[arg(long, default_value_t = 0)]
         window_days: u32,
     },
 }
@@ -56,6 +76,32 @@ async fn main() -> anyhow::Result<()> {
         .with_writer(std::io::stderr)
         .init();
     match Cli::parse().command {
+        Command::Simulate {
+            scenario,
+            out,
+            seed,
+            participants,
+            days,
+        } => {
+            let parsed = Scenario::from_path(&scenario)?;
+            std::fs::create_dir_all(&out)?;
+            let bar = ProgressBar::new(0).with_style(
+                ProgressStyle::with_template("simulating {bar:40} {pos}/{len} participants [{elapsed}]")
+                    .expect("static template"),
+            );
+            let opts = SimulateOptions {
+                seed,
+                participants,
+                days,
+            };
+            let summary = simulate_to_dir(&parsed, &opts, &out, &mut |done, total| {
+                bar.set_length(total as u64);
+                bar.set_position(done as u64);
+            })?;
+            bar.finish();
+            print_summary(&summary, &out);
+            Ok(())
+        }
         Command::Demo {
             scenario,
             out,
@@ -78,5 +124,28 @@ async fn main() -> anyhow::Result<()> {
             })
             .await
         }
+    }
+}
+
+fn print_summary(s: &SimulationSummary, out: &std::path::Path) {
+    println!(
+        "{} participants × {} days, seed {} → {}",
+        s.n_participants,
+        s.n_days,
+        s.seed,
+        out.display()
+    );
+    println!("Participants per subgroup:");
+    for (column, levels) in &s.participants_per_group {
+        let parts: Vec<String> = levels.iter().map(|(v, n)| format!("{v}: {n}")).collect();
+        println!("  {column:<14} {}", parts.join(", "));
+    }
+    println!("Events by kind:");
+    for (kind, n) in &s.events_by_kind {
+        println!("  {kind:<22} {n}");
+    }
+    println!("Missing-data rate per signal (share of participant-days without a value):");
+    for (signal, rate) in &s.missing_rate {
+        println!("  {:<20} {:>5.1}%", signal.column(), 100.0 * rate);
     }
 }
