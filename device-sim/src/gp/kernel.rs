@@ -375,7 +375,7 @@ impl Kernel {
 /// whole-day grid (see [`DayLags`]) each distinct lag is evaluated once and looked up.
 pub(crate) fn training_cov(prepared: &PreparedKernel, t: &[f64]) -> DMatrix<f64> {
     let n = t.len();
-    let mut k = DMatrix::zeros(n, n);
+    let mut k = super::cholesky::zeros(n);
     if let Some(lags) = DayLags::new(t) {
         let table: Vec<f64> = (0..lags.n_lags())
             .map(|lag| prepared.value(lag as f64, false))

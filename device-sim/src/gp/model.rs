@@ -4,6 +4,7 @@
 
 use nalgebra::{Cholesky, DMatrix, DVector, Dyn};
 
+use super::cholesky::{recycle, spd_inverse};
 use super::kernel::{DayLags, PreparedKernel, training_cov};
 use super::{GpError, Kernel, Result, cholesky_with_jitter};
 
@@ -114,6 +115,7 @@ impl GpRegression {
     pub fn nlml(&self, t: &[f64], y: &[f64]) -> Result<f64> {
         let fac = self.factorise(t, y)?;
         let value = nlml_value(&fac);
+        recycle(fac.cholesky.unpack_dirty());
         check_finite(value, "negative log marginal likelihood")?;
         Ok(value)
     }
@@ -127,8 +129,9 @@ impl GpRegression {
     ///              = -½ Σ_{i≤k} cᵢₖ (αᵢαₖ - Wᵢₖ) ∂Kᵢₖ/∂θⱼ,   cᵢₖ = 1 if i = k else 2
     /// ∂NLML/∂mean  = -1ᵀ K⁻¹ r = -Σᵢ αᵢ
     /// ```
-    /// Cost: one Cholesky (n³/6 multiply-adds), `W` from the triangular inverse and one
-    /// blocked matrix product (see `spd_inverse`), and one pass over the upper triangle that
+    /// Cost: one Cholesky (n³/6 multiply-adds), `W` from the triangular inverse and a
+    /// triangle-aware product (n³/3 more, see `spd_inverse`; all three blocked so that most
+    /// of the arithmetic runs in `matrixmultiply`), and one pass over the upper triangle that
     /// evaluates `∂Kᵢₖ/∂θ` on the fly, so no per-parameter `n × n` matrix is ever allocated.
     /// On whole-day data the pass only sums the weights `cᵢₖ (αᵢαₖ - Wᵢₖ)` per lag, and
     /// `∂k/∂θ` is evaluated once per distinct lag. Any jitter is treated as a constant.
@@ -145,6 +148,8 @@ impl GpRegression {
             Some(lags) => weighted_dk_by_lag(&fac.prepared, &lags, &w, &fac.alpha),
             None => weighted_dk_by_pair(&fac.prepared, t, &w, &fac.alpha),
         };
+        recycle(w);
+        recycle(fac.cholesky.unpack_dirty());
         let mut grad: Vec<f64> = acc.into_iter().map(|a| -0.5 * a).collect();
         grad.push(-fac.alpha.sum());
         if let Some(j) = grad.iter().position(|g| !g.is_finite()) {
@@ -309,46 +314,6 @@ fn check_finite(value: f64, what: &str) -> Result<()> {
     } else {
         Err(GpError::NonFinite(format!("{what} = {value}")))
     }
-}
-
-/// `W = K⁻¹ = L⁻ᵀ L⁻¹` from the Cholesky factor `L` (only its lower triangle is read).
-///
-/// ```text
-/// X = L⁻¹      lower triangular, column j by forward substitution on e_j  (n³/6 multiply-adds)
-/// W = Xᵀ X     one general matrix product                                  (n³ multiply-adds)
-/// ```
-/// The product does more arithmetic than the triangle-aware `Σ_{k ≥ max(i,j)} X_ki X_kj`, but
-/// nalgebra hands it to the cache-blocked `matrixmultiply` kernel, which at n = 365 is about
-/// twice as fast as hand-written triangular dot products (measured). Both are far cheaper
-/// than solving `K W = I` column by column with the Cholesky factor.
-fn spd_inverse(l: &DMatrix<f64>) -> DMatrix<f64> {
-    let x = lower_triangular_inverse(l);
-    x.transpose() * &x
-}
-
-/// `L⁻¹` for a lower-triangular `L` with non-zero diagonal (strict upper triangle ignored).
-fn lower_triangular_inverse(l: &DMatrix<f64>) -> DMatrix<f64> {
-    let n = l.nrows();
-    let ls = l.as_slice();
-    let mut x = DMatrix::<f64>::zeros(n, n);
-    for (j, col) in x
-        .as_mut_slice()
-        .chunks_exact_mut(n.max(1))
-        .enumerate()
-        .take(n)
-    {
-        col[j] = 1.0;
-        for k in j..n {
-            let l_col = &ls[k * n..(k + 1) * n];
-            let x_k = col[k] / l_col[k];
-            col[k] = x_k;
-            col[k + 1..]
-                .iter_mut()
-                .zip(&l_col[k + 1..])
-                .for_each(|(c, l_mk)| *c -= x_k * l_mk);
-        }
-    }
-    x
 }
 
 #[cfg(test)]
