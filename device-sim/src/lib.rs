@@ -12,9 +12,14 @@
 pub mod client;
 pub mod cohort;
 pub mod demo;
+pub mod device_report;
+pub mod evaluate;
+pub mod flags;
 pub mod gp;
+pub mod packets;
 pub mod personal;
 pub mod prior;
+pub mod prospective;
 pub mod signal;
 pub mod training;
 pub mod wire;

@@ -1,0 +1,341 @@
+//! What a device writes about its own participant after detection: the
+//! prospective days (CSV), the flags (CSV and JSON) and a self-contained HTML
+//! report that opens without network access.
+//!
+//! Everything here stays on the device. The report carries the
+//! non-diagnostic caution on its first screen.
+
+use std::fmt::Write as _;
+use std::io::Write as _;
+use std::path::Path;
+
+use chrono::NaiveDate;
+
+use crate::flags::{DayStatus, Detection, Flag, FlagLevel, ProspectiveDay};
+use crate::signal::Signal;
+
+/// The caution shown wherever a flag is shown to a person.
+pub const CAUTION: &str = "Decision support only — this is not a diagnosis. Flags mark days that \
+depart from this person's own expected range; they support, and never replace, the judgement of a \
+qualified clinician who knows the clinical context. Local protocols and regulations govern any action.";
+
+/// One sentence on what the bands mean.
+pub const BANDS_EXPLAINED: &str = "The shaded bands are where a day's value was expected to fall, \
+predicted each day from earlier days only: the darker band holds half of expected values, the \
+lighter band 95 of 100.";
+
+fn csv_field(v: &str) -> String {
+    if v.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", v.replace('"', "\"\""))
+    } else {
+        v.to_owned()
+    }
+}
+
+/// `flags.csv`: one row per flag.
+pub fn write_flags_csv(path: &Path, flags: &[Flag]) -> std::io::Result<()> {
+    let mut out = std::io::BufWriter::new(std::fs::File::create(path)?);
+    writeln!(
+        out,
+        "participant,date,signal,kind,level,first_day,last_day,score,reason"
+    )?;
+    for f in flags {
+        writeln!(
+            out,
+            "{},{},{},{},{},{},{},{:.4},{}",
+            csv_field(&f.participant),
+            f.date,
+            f.signal.map_or("multi_signal", |s| s.column()),
+            serde_json::to_value(f.kind)
+                .ok()
+                .and_then(|v| v.as_str().map(str::to_owned))
+                .unwrap_or_default(),
+            level_name(f.level),
+            f.first_day,
+            f.last_day,
+            f.score,
+            csv_field(&f.reason)
+        )?;
+    }
+    out.flush()
+}
+
+/// `flags.json`: the flags with the caution, as an object
+/// `{ "caution": …, "flags": [ … ] }`.
+pub fn write_flags_json(path: &Path, flags: &[Flag]) -> std::io::Result<()> {
+    let doc = serde_json::json!({ "caution": CAUTION, "flags": flags });
+    let text = serde_json::to_string_pretty(&doc).map_err(std::io::Error::other)?;
+    std::fs::write(path, text + "\n")
+}
+
+/// `prospective.csv`: every scored day.
+pub fn write_days_csv(path: &Path, days: &[ProspectiveDay]) -> std::io::Result<()> {
+    let mut out = std::io::BufWriter::new(std::fs::File::create(path)?);
+    writeln!(
+        out,
+        "date,signal,observed,mean,sd,lo50,hi50,lo95,hi95,z,tail_p,conditioned,status"
+    )?;
+    for d in days {
+        writeln!(
+            out,
+            "{},{},{},{:.4},{:.4},{:.4},{:.4},{:.4},{:.4},{:.4},{:.6},{},{}",
+            d.date,
+            d.signal,
+            d.observed,
+            d.mean,
+            d.sd,
+            d.lo50,
+            d.hi50,
+            d.lo95,
+            d.hi95,
+            d.z,
+            d.tail_p,
+            d.conditioned,
+            status_name(d.status)
+        )?;
+    }
+    out.flush()
+}
+
+fn level_name(l: FlagLevel) -> &'static str {
+    match l {
+        FlagLevel::Watch => "watch",
+        FlagLevel::Alert => "alert",
+    }
+}
+
+fn status_name(s: DayStatus) -> &'static str {
+    match s {
+        DayStatus::BuildingBaseline => "building_baseline",
+        DayStatus::Normal => "normal",
+        DayStatus::Flagged => "flagged",
+    }
+}
+
+fn escape(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+        .replace('"', "&quot;")
+}
+
+// Okabe & Ito (2008) colour-blind-safe palette.
+const BLUE: &str = "#0072B2";
+const VERMILION: &str = "#D55E00";
+const GREY: &str = "#555555";
+
+/// Inline SVG of one signal: bands, mean, observations; flagged days marked;
+/// missing days leave gaps.
+fn signal_svg(signal: Signal, days: &[&ProspectiveDay], flag_dates: &[NaiveDate]) -> String {
+    let (w, h, left, right, top, bottom) = (860.0, 220.0, 56.0, 12.0, 12.0, 28.0);
+    let (Some(first), Some(last)) = (days.first(), days.last()) else {
+        return String::new();
+    };
+    let span = ((last.date - first.date).num_days().max(1)) as f64;
+    let lo = days
+        .iter()
+        .map(|d| d.lo95.min(d.observed))
+        .fold(f64::INFINITY, f64::min);
+    let hi = days
+        .iter()
+        .map(|d| d.hi95.max(d.observed))
+        .fold(f64::NEG_INFINITY, f64::max);
+    let pad = ((hi - lo) * 0.05).max(1e-9);
+    let (lo, hi) = (lo - pad, hi + pad);
+    let sx = |d: NaiveDate| left + (w - left - right) * ((d - first.date).num_days() as f64 / span);
+    let sy = |v: f64| top + (h - top - bottom) * (1.0 - (v - lo) / (hi - lo));
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<svg viewBox="0 0 {w} {h}" role="img" aria-label="{} over time with expected bands; see the table below for the values" preserveAspectRatio="none">"#,
+        escape(signal.label())
+    );
+    // Runs of consecutive days: bands and the mean line break at missing days.
+    let mut runs: Vec<Vec<&ProspectiveDay>> = Vec::new();
+    for d in days
+        .iter()
+        .filter(|d| d.status != DayStatus::BuildingBaseline)
+    {
+        match runs.last_mut() {
+            Some(run) if (d.date - run.last().expect("non-empty").date).num_days() <= 1 => {
+                run.push(d)
+            }
+            _ => runs.push(vec![d]),
+        }
+    }
+    for run in &runs {
+        for (wide, opacity) in [(true, 0.18), (false, 0.35)] {
+            let bounds = |d: &ProspectiveDay| {
+                if wide {
+                    (d.lo95, d.hi95)
+                } else {
+                    (d.lo50, d.hi50)
+                }
+            };
+            let mut pts: Vec<String> = run
+                .iter()
+                .map(|d| format!("{:.1},{:.1}", sx(d.date), sy(bounds(d).1)))
+                .collect();
+            pts.extend(
+                run.iter()
+                    .rev()
+                    .map(|d| format!("{:.1},{:.1}", sx(d.date), sy(bounds(d).0))),
+            );
+            let _ = write!(
+                s,
+                r#"<polygon points="{}" fill="{BLUE}" fill-opacity="{opacity}"/>"#,
+                pts.join(" ")
+            );
+        }
+        let line: Vec<String> = run
+            .iter()
+            .map(|d| format!("{:.1},{:.1}", sx(d.date), sy(d.mean)))
+            .collect();
+        let _ = write!(
+            s,
+            r#"<polyline points="{}" fill="none" stroke="{BLUE}" stroke-width="1.5"/>"#,
+            line.join(" ")
+        );
+    }
+    for date in flag_dates {
+        let x = sx(*date);
+        let _ = write!(
+            s,
+            r#"<line x1="{x:.1}" x2="{x:.1}" y1="{top}" y2="{:.1}" stroke="{VERMILION}" stroke-dasharray="3 2"/>"#,
+            h - bottom
+        );
+    }
+    for d in days {
+        let (x, y) = (sx(d.date), sy(d.observed));
+        if d.status == DayStatus::Flagged {
+            let _ = write!(
+                s,
+                r#"<rect x="{:.1}" y="{:.1}" width="7" height="7" fill="{VERMILION}"><title>{} {:.2}</title></rect>"#,
+                x - 3.5,
+                y - 3.5,
+                d.date,
+                d.observed
+            );
+        } else {
+            let fill = if d.conditioned { GREY } else { "none" };
+            let _ = write!(
+                s,
+                r#"<circle cx="{x:.1}" cy="{y:.1}" r="2.6" fill="{fill}" stroke="{GREY}"><title>{} {:.2}</title></circle>"#,
+                d.date, d.observed
+            );
+        }
+    }
+    let _ = write!(
+        s,
+        r#"<text x="4" y="{:.1}" font-size="11">{:.1}</text><text x="4" y="{:.1}" font-size="11">{:.1}</text>"#,
+        top + 10.0,
+        hi,
+        h - bottom,
+        lo
+    );
+    let _ = write!(
+        s,
+        r#"<text x="{left}" y="{:.1}" font-size="11">{}</text><text x="{:.1}" y="{:.1}" font-size="11" text-anchor="end">{}</text>"#,
+        h - 8.0,
+        first.date,
+        w - right,
+        h - 8.0,
+        last.date
+    );
+    s.push_str("</svg>");
+    s
+}
+
+/// The self-contained HTML report of one participant.
+pub fn render_report_html(participant: &str, detection: &Detection) -> String {
+    let mut signals: Vec<Signal> = detection.days.iter().map(|d| d.signal).collect();
+    signals.sort_unstable();
+    signals.dedup();
+    let mut body = String::new();
+    let _ = write!(
+        body,
+        r#"<section class="caution" role="note"><strong>Please read:</strong> {}<br>{}</section>"#,
+        escape(CAUTION),
+        escape(BANDS_EXPLAINED)
+    );
+    let _ = write!(body, "<h2>Flags ({})</h2>", detection.flags.len());
+    if detection.flags.is_empty() {
+        body.push_str("<p>No flags were raised.</p>");
+    } else {
+        body.push_str("<table><thead><tr><th>Date</th><th>Signal</th><th>Level</th><th>Reason</th></tr></thead><tbody>");
+        for f in &detection.flags {
+            let _ = write!(
+                body,
+                "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+                f.date,
+                f.signal.map_or("several signals", |s| s.label()),
+                level_name(f.level),
+                escape(&f.reason)
+            );
+        }
+        body.push_str("</tbody></table>");
+    }
+    for signal in signals {
+        let days: Vec<&ProspectiveDay> = detection
+            .days
+            .iter()
+            .filter(|d| d.signal == signal)
+            .collect();
+        let flag_dates: Vec<NaiveDate> = detection
+            .flags
+            .iter()
+            .filter(|f| f.signal == Some(signal) || f.signal.is_none())
+            .map(|f| f.date)
+            .collect();
+        let _ = write!(
+            body,
+            "<h2>{} ({})</h2>",
+            escape(signal.label()),
+            escape(signal.unit())
+        );
+        body.push_str("<figure>");
+        body.push_str(&signal_svg(signal, &days, &flag_dates));
+        let _ = write!(
+            body,
+            "<figcaption>Dots: observed days (hollow: kept out of the baseline while unusual). Squares: flagged days. \
+Line: expected value. Gaps: no data. The first {} days build the baseline and carry no band.</figcaption>",
+            days.iter()
+                .filter(|d| d.status == DayStatus::BuildingBaseline)
+                .count()
+        );
+        body.push_str("</figure><details><summary>Values as a table</summary><table><thead><tr><th>Date</th><th>Observed</th><th>Expected</th><th>95% band</th><th>Status</th></tr></thead><tbody>");
+        for d in &days {
+            let _ = write!(
+                body,
+                "<tr><td>{}</td><td>{:.2}</td><td>{:.2}</td><td>{:.2} – {:.2}</td><td>{}</td></tr>",
+                d.date,
+                d.observed,
+                d.mean,
+                d.lo95,
+                d.hi95,
+                status_name(d.status).replace('_', " ")
+            );
+        }
+        body.push_str("</tbody></table></details>");
+    }
+    format!(
+        r#"<!doctype html>
+<html lang="en"><head><meta charset="utf-8"><meta name="viewport" content="width=device-width, initial-scale=1">
+<title>Plimsoll — participant {p}</title>
+<style>
+body{{font-family:system-ui,sans-serif;margin:0 auto;max-width:920px;padding:1rem 1.25rem;color:#1b1b1b;background:#fbfaf7;line-height:1.45}}
+h1{{font-size:1.35rem;margin:.2rem 0 1rem}} h2{{font-size:1.1rem;margin-top:1.6rem;border-bottom:1px solid #d8d3c8}}
+.caution{{background:#fff4d6;border-left:6px solid #E69F00;padding:.7rem .9rem;margin:.5rem 0 1rem}}
+table{{border-collapse:collapse;width:100%;font-size:.9rem}} td,th{{border-bottom:1px solid #e4e0d6;padding:.25rem .4rem;text-align:left}}
+svg{{width:100%;height:auto;background:#fff;border:1px solid #e4e0d6}} figcaption{{font-size:.85rem;color:#444}}
+summary:focus,a:focus{{outline:3px solid #0072B2;outline-offset:2px}}
+</style></head><body>
+<h1>Daily measures of participant {p}</h1>
+{body}
+<p class="caution">{caution}</p>
+</body></html>
+"#,
+        p = escape(participant),
+        caution = escape(CAUTION)
+    )
+}

@@ -1,0 +1,419 @@
+//! The evaluation report: a terminal table, a CSV, a JSON with stable keys,
+//! and an SVG plot of sensitivity against false alarms per method as the
+//! thresholds vary.
+
+use std::fmt::Write as _;
+use std::path::Path;
+
+use serde::Serialize;
+
+use super::metrics::{Metrics, Subgroup};
+
+/// JSON schema identifier; bump when a key changes meaning.
+pub const SCHEMA: &str = "plimsoll.evaluation.v1";
+
+/// One point of a method's threshold sweep.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct CurvePoint {
+    /// Multiplier applied to every detector threshold (1 = the calibrated setting).
+    pub threshold_scale: f64,
+    pub sensitivity: f64,
+    pub false_alarms_per_participant_month: f64,
+}
+
+/// One subgroup's metrics.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct SubgroupMetrics {
+    /// Group column from participants.csv, or "all".
+    pub column: String,
+    /// Level of that column, or "all".
+    pub level: String,
+    #[serde(flatten)]
+    pub metrics: Metrics,
+}
+
+/// Everything measured for one method.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct MethodSummary {
+    /// Short stable key: `federated`, `local_only`, `population`, `rolling_z`.
+    pub method: String,
+    pub description: String,
+    /// Metrics at the calibrated thresholds, "all" first, then each subgroup.
+    pub subgroups: Vec<SubgroupMetrics>,
+    /// Threshold sweep, ordered by `threshold_scale`.
+    pub curve: Vec<CurvePoint>,
+}
+
+/// The whole report.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct EvaluationReport {
+    pub schema: String,
+    pub cohort: String,
+    pub participants: usize,
+    /// Event kinds counted as detection targets (others are not targets;
+    /// alarms during them count as false alarms).
+    pub target_kinds: Vec<String>,
+    pub methods: Vec<MethodSummary>,
+    pub caution: String,
+}
+
+/// The caution printed with every evaluation output.
+pub const CAUTION: &str = "Evaluation of decision-support flags on the given cohort. Flags are not a diagnosis; \
+they support a qualified clinician's judgement, and local protocols and regulations govern any action.";
+
+impl MethodSummary {
+    pub fn new(
+        method: &str,
+        description: &str,
+        subgroups: Vec<(Subgroup, Metrics)>,
+        curve: Vec<CurvePoint>,
+    ) -> Self {
+        MethodSummary {
+            method: method.into(),
+            description: description.into(),
+            subgroups: subgroups
+                .into_iter()
+                .map(|((column, level), metrics)| SubgroupMetrics {
+                    column,
+                    level,
+                    metrics,
+                })
+                .collect(),
+            curve,
+        }
+    }
+}
+
+fn opt(v: Option<f64>, decimals: usize) -> String {
+    v.map_or_else(|| "–".into(), |x| format!("{x:.decimals$}"))
+}
+
+fn pct(v: Option<f64>) -> String {
+    v.map_or_else(|| "–".into(), |x| format!("{:.1}%", 100.0 * x))
+}
+
+/// The terminal table: one block for the whole cohort, then one per subgroup column.
+pub fn render_table(report: &EvaluationReport) -> String {
+    let mut s = String::new();
+    let header = format!(
+        "{:<12} {:<16} {:>6} {:>12} {:>9} {:>10} {:>10} {:>9} {:>7}\n",
+        "method",
+        "subgroup",
+        "events",
+        "sensitivity",
+        "FA/p-mo",
+        "lead start",
+        "lead onset",
+        "cover 95",
+        "NLPD"
+    );
+    let mut groups: Vec<(String, String)> = Vec::new();
+    for m in &report.methods {
+        for g in &m.subgroups {
+            let key = (g.column.clone(), g.level.clone());
+            if !groups.contains(&key) {
+                groups.push(key);
+            }
+        }
+    }
+    let mut last_column = String::new();
+    for (column, level) in &groups {
+        if *column != last_column {
+            let _ = writeln!(
+                s,
+                "{}",
+                if column == "all" {
+                    "Whole cohort".to_string()
+                } else {
+                    format!("By {column}")
+                }
+            );
+            s.push_str(&header);
+            last_column = column.clone();
+        }
+        for m in &report.methods {
+            if let Some(g) = m
+                .subgroups
+                .iter()
+                .find(|g| &g.column == column && &g.level == level)
+            {
+                let x = &g.metrics;
+                let _ = writeln!(
+                    s,
+                    "{:<12} {:<16} {:>6} {:>12} {:>9} {:>10} {:>10} {:>9} {:>7}",
+                    m.method,
+                    level,
+                    x.events,
+                    pct(x.sensitivity),
+                    opt(x.false_alarms_per_participant_month, 2),
+                    opt(x.median_lead_from_start_days, 1),
+                    opt(x.median_lead_from_onset_days, 1),
+                    pct(x.coverage_95),
+                    opt(x.mean_nlpd, 3),
+                );
+            }
+        }
+        s.push('\n');
+    }
+    s.push_str("FA/p-mo: false alarm-days per participant-month outside target events. Lead: median days from\n");
+    s.push_str("event start / symptom onset to the first alarm (negative = before). cover 95: share of event-free\n");
+    s.push_str("days inside the 95% prospective band. NLPD: mean negative log predictive density (standardised units).\n");
+    s.push_str(CAUTION);
+    s.push('\n');
+    s
+}
+
+/// CSV: one row per method and subgroup, at the calibrated thresholds.
+pub fn write_csv(report: &EvaluationReport, path: &Path) -> std::io::Result<()> {
+    let mut s = String::from(
+        "method,subgroup_column,subgroup_level,participants,events,events_detected,sensitivity,\
+false_alarms_per_participant_month,median_lead_from_start_days,median_lead_from_onset_days,coverage_95,mean_nlpd,event_free_days\n",
+    );
+    let f = |v: Option<f64>| v.map(|x| format!("{x:.6}")).unwrap_or_default();
+    for m in &report.methods {
+        for g in &m.subgroups {
+            let x = &g.metrics;
+            let _ = writeln!(
+                s,
+                "{},{},{},{},{},{},{},{},{},{},{},{},{}",
+                m.method,
+                csv_field(&g.column),
+                csv_field(&g.level),
+                x.participants,
+                x.events,
+                x.events_detected,
+                f(x.sensitivity),
+                f(x.false_alarms_per_participant_month),
+                f(x.median_lead_from_start_days),
+                f(x.median_lead_from_onset_days),
+                f(x.coverage_95),
+                f(x.mean_nlpd),
+                x.event_free_days
+            );
+        }
+    }
+    std::fs::write(path, s)
+}
+
+fn csv_field(v: &str) -> String {
+    if v.contains([',', '"', '\n']) {
+        format!("\"{}\"", v.replace('"', "\"\""))
+    } else {
+        v.to_owned()
+    }
+}
+
+pub fn write_json(report: &EvaluationReport, path: &Path) -> std::io::Result<()> {
+    let text = serde_json::to_string_pretty(report).map_err(std::io::Error::other)?;
+    std::fs::write(path, text + "\n")
+}
+
+/// Okabe & Ito (2008) colour-blind-safe palette, with a distinct marker per series.
+const PALETTE: [(&str, &str); 4] = [
+    ("#0072B2", "circle"),
+    ("#D55E00", "square"),
+    ("#009E73", "triangle"),
+    ("#CC79A7", "diamond"),
+];
+
+fn escape(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+        .replace('"', "&quot;")
+}
+
+fn marker(shape: &str, x: f64, y: f64, colour: &str) -> String {
+    match shape {
+        "square" => format!(
+            r#"<rect x="{:.1}" y="{:.1}" width="8" height="8" fill="{colour}"/>"#,
+            x - 4.0,
+            y - 4.0
+        ),
+        "triangle" => format!(
+            r#"<polygon points="{:.1},{:.1} {:.1},{:.1} {:.1},{:.1}" fill="{colour}"/>"#,
+            x,
+            y - 5.0,
+            x - 5.0,
+            y + 4.0,
+            x + 5.0,
+            y + 4.0
+        ),
+        "diamond" => format!(
+            r#"<polygon points="{:.1},{:.1} {:.1},{:.1} {:.1},{:.1} {:.1},{:.1}" fill="{colour}"/>"#,
+            x,
+            y - 5.0,
+            x + 5.0,
+            y,
+            x,
+            y + 5.0,
+            x - 5.0,
+            y
+        ),
+        _ => format!(r#"<circle cx="{x:.1}" cy="{y:.1}" r="4" fill="{colour}"/>"#),
+    }
+}
+
+/// SVG: sensitivity (y) against false alarms per participant-month (x), one
+/// line per method over the threshold sweep.
+pub fn render_svg(report: &EvaluationReport) -> String {
+    let (w, h) = (720.0, 460.0);
+    let (left, right, top, bottom) = (70.0, 190.0, 40.0, 60.0);
+    let pw = w - left - right;
+    let ph = h - top - bottom;
+    let x_max = report
+        .methods
+        .iter()
+        .flat_map(|m| m.curve.iter().map(|p| p.false_alarms_per_participant_month))
+        .fold(0.0f64, f64::max)
+        .max(0.1);
+    let x_max = nice_ceiling(x_max);
+    let sx = |x: f64| left + pw * (x / x_max).min(1.0);
+    let sy = |y: f64| top + ph * (1.0 - y.clamp(0.0, 1.0));
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" width="{w}" height="{h}" role="img" aria-labelledby="t d" font-family="sans-serif" font-size="12">"#
+    );
+    let _ = write!(
+        s,
+        r#"<title id="t">Sensitivity against false alarms per participant-month</title>"#
+    );
+    let mut desc = String::from("Threshold sweep per method. ");
+    for m in &report.methods {
+        let pts: Vec<String> = m
+            .curve
+            .iter()
+            .map(|p| {
+                format!(
+                    "×{:.2}: {:.2} FA, {:.0}%",
+                    p.threshold_scale,
+                    p.false_alarms_per_participant_month,
+                    100.0 * p.sensitivity
+                )
+            })
+            .collect();
+        let _ = write!(desc, "{}: {}. ", m.method, pts.join("; "));
+    }
+    let _ = write!(s, r#"<desc id="d">{}</desc>"#, escape(&desc));
+    let _ = write!(
+        s,
+        r##"<rect x="0" y="0" width="{w}" height="{h}" fill="#ffffff"/>"##
+    );
+    // Grid and axes.
+    for i in 0..=5 {
+        let y = i as f64 / 5.0;
+        let _ = write!(
+            s,
+            r##"<line x1="{left}" x2="{:.1}" y1="{:.1}" y2="{:.1}" stroke="#dddddd"/><text x="{:.1}" y="{:.1}" text-anchor="end">{:.0}%</text>"##,
+            left + pw,
+            sy(y),
+            sy(y),
+            left - 6.0,
+            sy(y) + 4.0,
+            100.0 * y
+        );
+        let x = x_max * i as f64 / 5.0;
+        let _ = write!(
+            s,
+            r##"<line y1="{top}" y2="{:.1}" x1="{:.1}" x2="{:.1}" stroke="#eeeeee"/><text x="{:.1}" y="{:.1}" text-anchor="middle">{}</text>"##,
+            top + ph,
+            sx(x),
+            sx(x),
+            sx(x),
+            top + ph + 18.0,
+            trim_number(x)
+        );
+    }
+    let _ = write!(
+        s,
+        r##"<rect x="{left}" y="{top}" width="{pw}" height="{ph}" fill="none" stroke="#444444"/>"##
+    );
+    let _ = write!(
+        s,
+        r#"<text x="{:.1}" y="{:.1}" text-anchor="middle">False alarm-days per participant-month (outside target events)</text>"#,
+        left + pw / 2.0,
+        h - 18.0
+    );
+    let _ = write!(
+        s,
+        r#"<text transform="translate(18 {:.1}) rotate(-90)" text-anchor="middle">Event sensitivity</text>"#,
+        top + ph / 2.0
+    );
+    let _ = write!(
+        s,
+        r#"<text x="{left}" y="24" font-size="14">Detection on {} — thresholds scaled around the calibrated setting</text>"#,
+        escape(&report.cohort)
+    );
+    for (i, m) in report.methods.iter().enumerate() {
+        let (colour, shape) = PALETTE[i % PALETTE.len()];
+        let pts: Vec<String> = m
+            .curve
+            .iter()
+            .map(|p| {
+                format!(
+                    "{:.1},{:.1}",
+                    sx(p.false_alarms_per_participant_month),
+                    sy(p.sensitivity)
+                )
+            })
+            .collect();
+        let _ = write!(
+            s,
+            r#"<polyline points="{}" fill="none" stroke="{colour}" stroke-width="2"/>"#,
+            pts.join(" ")
+        );
+        for p in &m.curve {
+            s.push_str(&marker(
+                shape,
+                sx(p.false_alarms_per_participant_month),
+                sy(p.sensitivity),
+                colour,
+            ));
+        }
+        let ly = top + 16.0 + 22.0 * i as f64;
+        let lx = left + pw + 16.0;
+        s.push_str(&marker(shape, lx, ly - 4.0, colour));
+        let _ = write!(
+            s,
+            r#"<text x="{:.1}" y="{:.1}">{}</text>"#,
+            lx + 10.0,
+            ly,
+            escape(&m.method)
+        );
+    }
+    let _ = write!(
+        s,
+        r#"<text x="{left}" y="{:.1}" font-size="10">Decision support only; not a diagnosis.</text>"#,
+        h - 4.0
+    );
+    s.push_str("</svg>\n");
+    s
+}
+
+fn nice_ceiling(x: f64) -> f64 {
+    let mag = 10f64.powf(x.log10().floor());
+    for m in [1.0, 2.0, 2.5, 5.0, 10.0] {
+        if m * mag >= x {
+            return m * mag;
+        }
+    }
+    10.0 * mag
+}
+
+fn trim_number(x: f64) -> String {
+    let s = format!("{x:.2}");
+    s.trim_end_matches('0').trim_end_matches('.').to_owned()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn nice_ceiling_rounds_up_to_a_tidy_axis_end() {
+        assert_eq!(nice_ceiling(0.37), 0.5);
+        assert_eq!(nice_ceiling(3.2), 5.0);
+        assert_eq!(nice_ceiling(1.0), 1.0);
+    }
+}
