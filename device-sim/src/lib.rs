@@ -4,7 +4,11 @@
 //! - [`gp`]: the Gaussian-process engine (plain numerics; no runtime, no wire types).
 //! - [`prior`]: the shared prior's parameter layout and the model it defines.
 //! - [`training`]: local FedAvg steps and the centralised yardstick.
-//! - [`personal`]: the personalised posterior and its bands.
+//! - [`personal`]: the personalised (retrospective) posterior and its bands.
+//! - [`prospective`]: the exact state-space filter giving one-step-ahead predictive days.
+//! - [`flags`]: single-day, CUSUM and multi-signal flags, calibration, baseline protection.
+//! - [`device_report`]: what a device writes about its participant (CSV, JSON, HTML).
+//! - [`evaluate`]: detection methods compared against ground-truth events.
 //! - [`cohort`]: the shared CSV format (reader, writer) and the simulator.
 //! - [`client`], [`wire`]: the gRPC side of a device.
 //! - [`demo`]: the end-to-end demo.
