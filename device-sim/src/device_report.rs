@@ -339,3 +339,78 @@ summary:focus,a:focus{{outline:3px solid #0072B2;outline-offset:2px}}
         caution = escape(CAUTION)
     )
 }
+
+/// Runs detection for one participant under the shared priors and writes
+/// `prospective.csv`, `flags.csv`, `flags.json` and `report.html` into
+/// `out_dir` (created if missing). Returns the detection.
+pub fn detect_and_write(
+    out_dir: &Path,
+    series: &crate::cohort::ParticipantSeries,
+    priors: &[crate::prior::PriorParams],
+    cfg: &crate::flags::FlagConfig,
+) -> anyhow::Result<Detection> {
+    use anyhow::Context;
+    let detection = crate::flags::detect(series, priors, cfg)
+        .with_context(|| format!("detection for participant {}", series.participant))?;
+    std::fs::create_dir_all(out_dir).with_context(|| format!("creating {}", out_dir.display()))?;
+    let write = |name: &str, result: std::io::Result<()>| {
+        result.with_context(|| format!("writing {}", out_dir.join(name).display()))
+    };
+    write("prospective.csv", write_days_csv(&out_dir.join("prospective.csv"), &detection.days))?;
+    write("flags.csv", write_flags_csv(&out_dir.join("flags.csv"), &detection.flags))?;
+    write("flags.json", write_flags_json(&out_dir.join("flags.json"), &detection.flags))?;
+    write(
+        "report.html",
+        std::fs::write(out_dir.join("report.html"), render_report_html(&series.participant, &detection)),
+    )?;
+    Ok(detection)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::cohort::ParticipantSeries;
+    use crate::flags::FlagConfig;
+    use crate::prior::PriorParams;
+    use std::collections::BTreeMap;
+
+    /// A 60-day resting-HR series with a step of +15 bpm from day 40.
+    fn stepped_series() -> ParticipantSeries {
+        let start = NaiveDate::from_ymd_opt(2026, 2, 2).unwrap();
+        let dates: Vec<NaiveDate> = (0..60).map(|d| start + chrono::Duration::days(d)).collect();
+        let values = (0..60)
+            .map(|d| Some(if d >= 40 { 80.0 } else { 65.0 } + if d % 2 == 0 { 1.0 } else { -1.0 }))
+            .collect();
+        ParticipantSeries {
+            participant: "demo-p1".into(),
+            dates,
+            values: BTreeMap::from([(Signal::RestingHr, values)]),
+        }
+    }
+
+    #[test]
+    fn outputs_carry_the_caution_and_need_no_network() {
+        let dir = std::env::temp_dir().join(format!("plimsoll-report-{}", std::process::id()));
+        let priors = [PriorParams::initial(Signal::RestingHr)];
+        let detection = detect_and_write(&dir, &stepped_series(), &priors, &FlagConfig::default()).unwrap();
+        assert!(!detection.flags.is_empty(), "a 15 bpm step must be flagged");
+        let html = std::fs::read_to_string(dir.join("report.html")).unwrap();
+        assert!(html.contains("not a diagnosis"));
+        assert!(html.contains("qualified clinician"));
+        assert!(html.contains("Local protocols and regulations"));
+        // Self-contained: no external resource of any kind.
+        for needle in ["http://", "https://", "<script src", "<link", "@import", "url("] {
+            assert!(!html.contains(needle), "report.html must not reference `{needle}`");
+        }
+        assert!(html.contains("<svg"));
+        let json: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(dir.join("flags.json")).unwrap()).unwrap();
+        assert_eq!(json["flags"].as_array().unwrap().len(), detection.flags.len());
+        assert!(json["caution"].as_str().unwrap().contains("not a diagnosis"));
+        let csv = std::fs::read_to_string(dir.join("flags.csv")).unwrap();
+        assert_eq!(csv.lines().count(), detection.flags.len() + 1);
+        let days = std::fs::read_to_string(dir.join("prospective.csv")).unwrap();
+        assert_eq!(days.lines().count(), 61);
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+}
