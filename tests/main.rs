@@ -3,8 +3,12 @@
 mod cohort_io;
 mod cusum_arl;
 mod federated;
+mod flag_packets;
 mod gp_reference;
 mod prospective;
+mod review_access;
+mod review_browser;
+mod review_support;
 mod server_rpc;
 mod simulator;
 mod support;

@@ -19,6 +19,7 @@ async fn enroll(client: &mut AggregatorClient<Channel>, label: &str) -> u64 {
             study_id: STUDY.into(),
             participant_label: label.into(),
             signals: vec!["resting_hr_bpm".into()],
+            consent_share_flags: false,
         })
         .await
         .unwrap()

@@ -24,6 +24,7 @@ pub fn study_config(id: &str, signals: &[Signal], devices: u32, rounds: u32) -> 
         start_when_enrolled: devices,
         round_deadline_ms: 600_000,
         selection_seed: 1,
+        aggregation: Default::default(),
     }
 }
 

@@ -3,8 +3,11 @@
 //! the device's output folder.
 //!
 //! Privacy: what leaves the device is exactly the `plimsoll.v1` requests —
-//! the participant's pseudonymous label, the names of its signals, and per
-//! round and signal a parameter vector, a day count and a scalar loss.
+//! the participant's pseudonymous label, the names of its signals, the
+//! participant's consent choice about sharing flags, and per round and
+//! signal a parameter vector, a day count and a scalar loss. With consent,
+//! and only then, one flag packet per alarm (see [`crate::packets`] for
+//! exactly what it holds), sent through a [`FlagSender`].
 
 use std::path::PathBuf;
 use std::sync::Arc;
@@ -39,6 +42,93 @@ pub struct DeviceOptions {
     pub seed: u64,
 }
 
+/// The participant's choice, recorded at enrolment, about sharing flag
+/// packets with the study's clinical reviewers.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum FlagSharing {
+    /// Nothing about flags leaves the device (the default).
+    #[default]
+    Withheld,
+    /// One packet per alarm may be sent to the aggregator.
+    Consented,
+}
+
+impl FlagSharing {
+    pub fn consented(self) -> bool {
+        self == FlagSharing::Consented
+    }
+}
+
+/// Enrols a participant's device with `signals` (column names) and the
+/// participant's flag-sharing choice; returns the device id.
+pub async fn enroll(
+    client: &mut AggregatorClient<Channel>,
+    study_id: &str,
+    participant: &str,
+    signals: Vec<String>,
+    sharing: FlagSharing,
+) -> anyhow::Result<u64> {
+    Ok(client
+        .enroll(pb::EnrollRequest {
+            study_id: study_id.to_owned(),
+            participant_label: participant.to_owned(),
+            signals,
+            consent_share_flags: sharing.consented(),
+        })
+        .await
+        .with_context(|| format!("Enroll for participant {participant}"))?
+        .into_inner()
+        .device_id)
+}
+
+/// Sends flag packets for one enrolled device. It exists only for a device
+/// whose participant consented ([`FlagSender::new`] returns `None`
+/// otherwise), so code that has no sender cannot send a packet.
+#[derive(Debug, Clone)]
+pub struct FlagSender {
+    client: AggregatorClient<Channel>,
+    study_id: String,
+    device_id: u64,
+}
+
+impl FlagSender {
+    /// A sender for `device_id`, or `None` when the participant's recorded
+    /// choice is [`FlagSharing::Withheld`].
+    pub fn new(
+        channel: Channel,
+        study_id: &str,
+        device_id: u64,
+        sharing: FlagSharing,
+    ) -> Option<FlagSender> {
+        sharing.consented().then(|| FlagSender {
+            client: AggregatorClient::new(channel),
+            study_id: study_id.to_owned(),
+            device_id,
+        })
+    }
+
+    /// Sends one packet; returns the aggregator's id for it. Resending the
+    /// same packet returns the same id.
+    pub async fn send(&mut self, packet: &crate::packets::FlagPacket) -> anyhow::Result<u64> {
+        crate::packets::check(packet)?;
+        let response = self
+            .client
+            .submit_flag_packet(pb::SubmitFlagPacketRequest {
+                study_id: self.study_id.clone(),
+                device_id: self.device_id,
+                packet: Some(crate::packets::to_pb(packet)),
+            })
+            .await
+            .with_context(|| {
+                format!(
+                    "SubmitFlagPacket for device {} (flag of {})",
+                    self.device_id, packet.flag.date
+                )
+            })?;
+        Ok(response.into_inner().packet_id)
+    }
+}
+
 /// What a device did, for the caller's report.
 #[derive(Debug, Clone)]
 pub struct DeviceReport {
@@ -50,12 +140,25 @@ pub struct DeviceReport {
     pub posterior_csv: PathBuf,
 }
 
-/// Runs one device to the end of the study. CPU-heavy work runs on the
-/// blocking pool, at most `cpu.available_permits()` at a time.
+/// Runs one device to the end of the study, enrolled without consent to
+/// share flags. CPU-heavy work runs on the blocking pool, at most
+/// `cpu.available_permits()` at a time.
 pub async fn run_device(
     channel: Channel,
     series: ParticipantSeries,
     opts: DeviceOptions,
+    cpu: Arc<Semaphore>,
+) -> anyhow::Result<DeviceReport> {
+    run_device_with(channel, series, opts, FlagSharing::Withheld, cpu).await
+}
+
+/// [`run_device`] with the participant's flag-sharing choice recorded at
+/// enrolment. (Sending packets is separate: see [`FlagSender`].)
+pub async fn run_device_with(
+    channel: Channel,
+    series: ParticipantSeries,
+    opts: DeviceOptions,
+    sharing: FlagSharing,
     cpu: Arc<Semaphore>,
 ) -> anyhow::Result<DeviceReport> {
     let participant = series.participant.clone();
@@ -78,16 +181,14 @@ pub async fn run_device(
             "participant {participant} has no signal with {MIN_DAYS_TO_ENROLL} observed days"
         ));
     }
-    let device_id = client
-        .enroll(pb::EnrollRequest {
-            study_id: opts.study_id.clone(),
-            participant_label: participant.clone(),
-            signals: local.iter().map(|(s, _)| s.column().to_owned()).collect(),
-        })
-        .await
-        .with_context(|| format!("Enroll for participant {participant}"))?
-        .into_inner()
-        .device_id;
+    let device_id = enroll(
+        &mut client,
+        &opts.study_id,
+        &participant,
+        local.iter().map(|(s, _)| s.column().to_owned()).collect(),
+        sharing,
+    )
+    .await?;
     let local = Arc::new(local);
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
     let mut rounds_trained = 0;

@@ -179,6 +179,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         start_when_enrolled: n,
         round_deadline_ms: 120_000,
         selection_seed: 7,
+        aggregation: Default::default(),
     };
     let db_path = opts.out_dir.join("aggregator.db");
     for suffix in ["", "-wal", "-shm"] {
@@ -235,7 +236,9 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         write!(out, " {:>18}", p.signal)?;
     }
     writeln!(out)?;
-    for v in run.history.iter().skip(1) {
+    let rounds: Vec<_> = run.history.iter().skip(1).collect();
+    let shown = convergence_rows(rounds.len());
+    for v in shown.iter().map(|&i| rounds[i]) {
         write!(out, "  {:>5}", v.round_id)?;
         for p in &latest.params {
             match v.contributions.iter().find(|c| c.signal == p.signal) {
@@ -270,4 +273,30 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         t0.elapsed().as_secs_f64()
     )?;
     Ok(())
+}
+
+/// Indices of the rounds to print: the first five, then roughly doubling
+/// steps, and always the last.
+fn convergence_rows(n: usize) -> Vec<usize> {
+    let mut rows: Vec<usize> = (0..n.min(5)).collect();
+    let mut next = 9;
+    while next < n {
+        rows.push(next);
+        next = next * 2 + 1;
+    }
+    if n > 0 && rows.last() != Some(&(n - 1)) {
+        rows.push(n - 1);
+    }
+    rows
+}
+
+#[cfg(test)]
+mod tests {
+    use super::convergence_rows;
+
+    #[test]
+    fn convergence_rows_keep_first_and_last() {
+        assert_eq!(convergence_rows(3), vec![0, 1, 2]);
+        assert_eq!(convergence_rows(80), vec![0, 1, 2, 3, 4, 9, 19, 39, 79]);
+    }
 }

@@ -2,10 +2,17 @@
 //! an embedded SQLite database.
 //!
 //! Architecture invariant: this crate has no dependency on the GP code. It
-//! averages opaque named parameter vectors weighted by day counts and never
-//! receives a raw observation.
+//! averages opaque named parameter vectors weighted by day counts; federated
+//! training never sends it a raw observation. Flag packets ([`packets`]) are
+//! the one exception, sent only by devices whose participant consented, and
+//! hold numbers the device already computed: the aggregator stores and shows
+//! them ([`review`]) and never fits or evaluates a model.
 
+pub mod aggregate;
 pub mod error;
+pub mod packets;
+pub mod presentation;
+pub mod review;
 pub mod rounds;
 pub mod service;
 pub mod store;
@@ -13,6 +20,7 @@ pub mod study;
 pub mod wire;
 
 pub use error::AggregatorError;
+pub use review::{RunningReview, ensure_demo_reviewer, serve_review};
 pub use rounds::Coordinator;
 pub use service::{RunningServer, serve};
 pub use study::{LocalTraining, Optimizer, SignalLayout, StudyConfig};

@@ -15,10 +15,11 @@ use rand_chacha::ChaCha8Rng;
 use tokio::sync::watch;
 
 use crate::error::{AggregatorError, Result};
+use crate::packets::FlagPacket;
 use crate::store::{Store, StoredOpenRound};
 use crate::study::{
     Contribution, PriorVersion, SignalParams, SignalUpdate, StudyConfig, StudyStatus,
-    SubmitOutcome, Work, fedavg, valid_id,
+    SubmitOutcome, Work, valid_id,
 };
 
 /// Suggested pause before a device asks again when it has nothing to do.
@@ -27,6 +28,7 @@ const RETRY_AFTER_MS: u32 = 250;
 #[derive(Debug)]
 struct Device {
     signals: Vec<String>,
+    consent_share_flags: bool,
 }
 
 #[derive(Debug)]
@@ -70,7 +72,7 @@ impl Coordinator {
     }
 
     /// Builds the coordinator from an opened store, rebuilding in-memory state.
-    pub fn from_store(store: Store) -> Result<Coordinator> {
+    pub fn from_store(mut store: Store) -> Result<Coordinator> {
         let mut studies = BTreeMap::new();
         for config in store.studies()? {
             let id = config.study_id.clone();
@@ -78,7 +80,13 @@ impl Coordinator {
             let mut labels = HashMap::new();
             for d in store.devices(&id)? {
                 labels.insert(d.label.clone(), d.device_id);
-                devices.insert(d.device_id, Device { signals: d.signals });
+                devices.insert(
+                    d.device_id,
+                    Device {
+                        signals: d.signals,
+                        consent_share_flags: d.consent_share_flags,
+                    },
+                );
             }
             let latest = store
                 .priors(&id)?
@@ -90,7 +98,7 @@ impl Coordinator {
                 members: r.members.into_iter().collect(),
                 submissions: r.submissions.into_iter().collect(),
             });
-            let runtime = StudyRuntime {
+            let mut runtime = StudyRuntime {
                 rounds_completed: store.rounds_completed(&id)?,
                 last_round_id: store.last_round_id(&id)?,
                 config,
@@ -99,6 +107,17 @@ impl Coordinator {
                 latest,
                 open,
             };
+            // A crash between the last accepted submission and the closing
+            // transaction leaves a complete round open: finish it now.
+            if runtime
+                .open
+                .as_ref()
+                .is_some_and(|r| !r.members.is_empty() && r.submissions.len() == r.members.len())
+            {
+                let now = crate::service::now_ms();
+                close_round(&mut store, &mut runtime, now)?;
+                maybe_open_round(&mut store, &mut runtime, now, None)?;
+            }
             studies.insert(id, runtime);
         }
         let (changed, _) = watch::channel(0);
@@ -184,12 +203,14 @@ impl Coordinator {
         })
     }
 
-    /// Enrols a participant's device; the same label gets the same id back.
+    /// Enrols a participant's device; the same label gets the same id back
+    /// (and its recorded consent to share flags updated to `consent_share_flags`).
     pub fn enroll(
         &self,
         study_id: &str,
         label: &str,
         signals: &[String],
+        consent_share_flags: bool,
         now_ms: i64,
     ) -> Result<u64> {
         if !valid_id(label) {
@@ -223,14 +244,20 @@ impl Coordinator {
             }
         }
         if let Some(&id) = rt.labels.get(label) {
+            let device = rt.devices.get_mut(&id).expect("labels and devices agree");
+            if device.consent_share_flags != consent_share_flags {
+                store.set_consent(id, consent_share_flags)?;
+                device.consent_share_flags = consent_share_flags;
+            }
             return Ok(id);
         }
-        let id = store.insert_device(study_id, label, signals, now_ms)?;
+        let id = store.insert_device(study_id, label, signals, consent_share_flags, now_ms)?;
         rt.labels.insert(label.to_owned(), id);
         rt.devices.insert(
             id,
             Device {
                 signals: signals.to_vec(),
+                consent_share_flags,
             },
         );
         let opened = maybe_open_round(store, rt, now_ms, None)?;
@@ -445,6 +472,32 @@ impl Coordinator {
         state.store.priors(study_id)
     }
 
+    /// Stores a flag packet from a device whose participant consented to
+    /// share flags; returns the packet's id. Refused (FAILED_PRECONDITION
+    /// naming `consent_share_flags`) without consent, before any validation.
+    pub fn submit_flag_packet(
+        &self,
+        study_id: &str,
+        device_id: u64,
+        packet: &FlagPacket,
+        now_ms: i64,
+    ) -> Result<u64> {
+        let mut state = self.lock();
+        let State { store, studies } = &mut *state;
+        let rt = study(studies, study_id)?;
+        check_flag_consent(rt, study_id, device_id)?;
+        packet.validate(&rt.config)?;
+        store.insert_flag_packet(study_id, device_id, packet, now_ms)
+    }
+
+    /// `Ok` when `device_id` is enrolled in `study_id` with consent to share
+    /// flags; FAILED_PRECONDITION naming `consent_share_flags` otherwise.
+    pub fn require_flag_consent(&self, study_id: &str, device_id: u64) -> Result<()> {
+        let state = self.lock();
+        let rt = study(&state.studies, study_id)?;
+        check_flag_consent(rt, study_id, device_id)
+    }
+
     /// SQLite's integrity report (`["ok"]` when sound).
     pub fn integrity_check(&self) -> Result<Vec<String>> {
         self.lock().store.integrity_check()
@@ -464,6 +517,21 @@ fn study_mut<'a>(
     studies
         .get_mut(id)
         .ok_or_else(|| AggregatorError::NotFound(format!("study_id: no study `{id}`")))
+}
+
+fn check_flag_consent(rt: &StudyRuntime, study_id: &str, device_id: u64) -> Result<()> {
+    let device = rt
+        .devices
+        .get(&device_id)
+        .ok_or_else(|| unknown_device(study_id, device_id))?;
+    if device.consent_share_flags {
+        Ok(())
+    } else {
+        Err(AggregatorError::FailedPrecondition(format!(
+            "consent_share_flags: device {device_id} enrolled without the participant's consent \
+             to share flags; no flag packet is accepted from it"
+        )))
+    }
 }
 
 fn unknown_device(study_id: &str, device_id: u64) -> AggregatorError {
@@ -606,7 +674,7 @@ fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<
             .iter()
             .map(|u| (u.values.as_slice(), u.n_days))
             .collect();
-        match fedavg(&weighted) {
+        match rt.config.aggregation.combine(&current.values, &weighted) {
             Some(values) => {
                 let n_days: u64 = entries.iter().map(|u| u64::from(u.n_days)).sum();
                 let loss = entries

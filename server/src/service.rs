@@ -65,9 +65,16 @@ impl Aggregator for AggregatorService {
     ) -> Result<Response<pb::EnrollResponse>, Status> {
         let c = self.coordinator.clone();
         let r = req.into_inner();
-        let device_id =
-            blocking(move || c.enroll(&r.study_id, &r.participant_label, &r.signals, now_ms()))
-                .await?;
+        let device_id = blocking(move || {
+            c.enroll(
+                &r.study_id,
+                &r.participant_label,
+                &r.signals,
+                r.consent_share_flags,
+                now_ms(),
+            )
+        })
+        .await?;
         Ok(Response::new(pb::EnrollResponse { device_id }))
     }
 
@@ -119,6 +126,23 @@ impl Aggregator for AggregatorService {
         let study_id = r.study_id.clone();
         let prior = blocking(move || c.prior(&study_id, version)).await?;
         Ok(Response::new(wire::prior_to_pb(&r.study_id, &prior)))
+    }
+
+    async fn submit_flag_packet(
+        &self,
+        req: Request<pb::SubmitFlagPacketRequest>,
+    ) -> Result<Response<pb::SubmitFlagPacketResponse>, Status> {
+        let c = self.coordinator.clone();
+        let r = req.into_inner();
+        let packet = wire::flag_packet_from_pb(r.packet);
+        let packet_id = blocking(move || {
+            // Consent is checked before the packet is even decoded, so a
+            // device without consent is always told about consent first.
+            c.require_flag_consent(&r.study_id, r.device_id)?;
+            c.submit_flag_packet(&r.study_id, r.device_id, &packet?, now_ms())
+        })
+        .await?;
+        Ok(Response::new(pb::SubmitFlagPacketResponse { packet_id }))
     }
 }
 

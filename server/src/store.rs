@@ -2,20 +2,29 @@
 //!
 //! Every state change a round goes through is one transaction, so a crash
 //! leaves either the old state or the new one (SQLite's atomic commit, WAL
-//! mode, `synchronous=FULL`). Nothing here stores a raw observation: only
-//! study configuration, enrolment, round membership, submitted parameter
-//! vectors with their day counts and losses, and published priors.
+//! mode, `synchronous=FULL`). Federated training stores no raw observation:
+//! only study configuration, enrolment, round membership, submitted parameter
+//! vectors with their day counts and losses, and published priors. The one
+//! place observed values are kept is `flag_packets`, filled only from devices
+//! whose participant consented to share flags (see [`crate::packets`]).
+//!
+//! Schema versions: 1 is the federated-training schema; 2 adds the recorded
+//! consent on `devices`, flag packets, and the review tables (reviewers,
+//! their study assignments, sessions, and the append-only action log).
+//! Opening a version-1 database migrates it in one transaction.
 
 use std::path::Path;
 
 use rusqlite::{Connection, OptionalExtension, params};
 
 use crate::error::{AggregatorError, Result};
+use crate::packets::FlagPacket;
 use crate::study::{PriorVersion, SignalUpdate, StudyConfig};
 
-const SCHEMA_VERSION: i64 = 1;
+const SCHEMA_VERSION: i64 = 2;
 
-const SCHEMA: &str = "
+/// Version 1: federated training.
+const SCHEMA_V1: &str = "
 CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL);
 CREATE TABLE IF NOT EXISTS studies (
     study_id    TEXT PRIMARY KEY,
@@ -67,12 +76,62 @@ CREATE TABLE IF NOT EXISTS priors (
 );
 ";
 
+/// Version 1 → 2: consent, flag packets and clinician review.
+const MIGRATE_V1_TO_V2: &str = "
+ALTER TABLE devices ADD COLUMN consent_share_flags INTEGER NOT NULL DEFAULT 0;
+CREATE TABLE flag_packets (
+    packet_id    INTEGER PRIMARY KEY AUTOINCREMENT,
+    study_id     TEXT NOT NULL REFERENCES studies(study_id),
+    device_id    INTEGER NOT NULL REFERENCES devices(device_id),
+    signal       TEXT NOT NULL,
+    kind         TEXT NOT NULL,
+    level        TEXT NOT NULL CHECK (level IN ('watch', 'alert')),
+    flag_date    TEXT NOT NULL,
+    payload_json TEXT NOT NULL,
+    received_ms  INTEGER NOT NULL,
+    UNIQUE (device_id, signal, kind, flag_date)
+);
+CREATE INDEX flag_packets_by_study ON flag_packets (study_id, flag_date);
+CREATE TABLE reviewers (
+    name          TEXT PRIMARY KEY,
+    password_hash TEXT NOT NULL,
+    created_ms    INTEGER NOT NULL
+);
+CREATE TABLE reviewer_studies (
+    name     TEXT NOT NULL REFERENCES reviewers(name),
+    study_id TEXT NOT NULL REFERENCES studies(study_id),
+    PRIMARY KEY (name, study_id)
+);
+CREATE TABLE review_sessions (
+    token_hash TEXT PRIMARY KEY,
+    reviewer   TEXT NOT NULL REFERENCES reviewers(name),
+    csrf_token TEXT NOT NULL,
+    created_ms INTEGER NOT NULL,
+    expires_ms INTEGER NOT NULL
+);
+CREATE TABLE review_actions (
+    action_id INTEGER PRIMARY KEY AUTOINCREMENT,
+    packet_id INTEGER NOT NULL REFERENCES flag_packets(packet_id),
+    reviewer  TEXT NOT NULL REFERENCES reviewers(name),
+    action    TEXT NOT NULL CHECK (action IN ('acknowledge', 'dismiss', 'escalate')),
+    note      TEXT NOT NULL,
+    at_ms     INTEGER NOT NULL
+);
+CREATE TRIGGER review_actions_append_only_update BEFORE UPDATE ON review_actions
+BEGIN SELECT RAISE(ABORT, 'review_actions is append-only'); END;
+CREATE TRIGGER review_actions_append_only_delete BEFORE DELETE ON review_actions
+BEGIN SELECT RAISE(ABORT, 'review_actions is append-only'); END;
+UPDATE schema_version SET version = 2;
+";
+
 /// A device as stored.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StoredDevice {
     pub device_id: u64,
     pub label: String,
     pub signals: Vec<String>,
+    /// The participant's recorded consent to share flag packets.
+    pub consent_share_flags: bool,
 }
 
 /// The round that was open when the state was last written.
@@ -115,25 +174,48 @@ impl Store {
         conn.pragma_update(None, "synchronous", "FULL")?;
         conn.pragma_update(None, "foreign_keys", "ON")?;
         conn.busy_timeout(std::time::Duration::from_secs(5))?;
-        conn.execute_batch(SCHEMA)?;
-        let version: Option<i64> = conn
+        let mut conn = conn;
+        // IMMEDIATE: two components opening the same file at once migrate it
+        // once; the second waits (busy timeout) and then sees version 2.
+        let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
+        tx.execute_batch(SCHEMA_V1)?;
+        let version: Option<i64> = tx
             .query_row("SELECT version FROM schema_version", [], |r| r.get(0))
             .optional()?;
         match version {
             None => {
-                conn.execute(
-                    "INSERT INTO schema_version (version) VALUES (?1)",
-                    [SCHEMA_VERSION],
-                )?;
+                tx.execute("INSERT INTO schema_version (version) VALUES (1)", [])?;
+                tx.execute_batch(MIGRATE_V1_TO_V2)?;
+            }
+            Some(1) => {
+                tracing::info!("migrating the aggregator database from schema 1 to 2");
+                tx.execute_batch(MIGRATE_V1_TO_V2)?;
             }
             Some(SCHEMA_VERSION) => {}
             Some(other) => {
                 return Err(AggregatorError::Corrupt(format!(
-                    "database schema version {other}, this build reads {SCHEMA_VERSION}"
+                    "database schema version {other}, this build reads 1 to {SCHEMA_VERSION}"
                 )));
             }
         }
+        tx.commit()?;
         Ok(Store { conn })
+    }
+
+    /// The schema version of the open database.
+    pub fn schema_version(&self) -> Result<i64> {
+        Ok(self
+            .conn
+            .query_row("SELECT version FROM schema_version", [], |r| r.get(0))?)
+    }
+
+    /// The underlying connection, for the review module's queries.
+    pub(crate) fn conn(&self) -> &Connection {
+        &self.conn
+    }
+
+    pub(crate) fn conn_mut(&mut self) -> &mut Connection {
+        &mut self.conn
     }
 
     /// Creates a study with its initial prior (version 0) in one transaction.
@@ -168,24 +250,27 @@ impl Store {
 
     pub fn devices(&self, study_id: &str) -> Result<Vec<StoredDevice>> {
         let mut stmt = self.conn.prepare(
-            "SELECT device_id, label, signals_json FROM devices WHERE study_id = ?1 ORDER BY device_id",
+            "SELECT device_id, label, signals_json, consent_share_flags
+             FROM devices WHERE study_id = ?1 ORDER BY device_id",
         )?;
         let rows = stmt.query_map([study_id], |r| {
             Ok((
                 r.get::<_, i64>(0)?,
                 r.get::<_, String>(1)?,
                 r.get::<_, String>(2)?,
+                r.get::<_, bool>(3)?,
             ))
         })?;
         let mut out = Vec::new();
         for row in rows {
-            let (id, label, json) = row?;
+            let (id, label, json, consent_share_flags) = row?;
             let signals = serde_json::from_str(&json)
                 .map_err(|e| corrupt(&format!("device {id} signals"), e))?;
             out.push(StoredDevice {
                 device_id: id as u64,
                 label,
                 signals,
+                consent_share_flags,
             });
         }
         Ok(out)
@@ -197,13 +282,86 @@ impl Store {
         study_id: &str,
         label: &str,
         signals: &[String],
+        consent_share_flags: bool,
         now_ms: i64,
     ) -> Result<u64> {
         self.conn.execute(
-            "INSERT INTO devices (study_id, label, signals_json, enrolled_ms) VALUES (?1, ?2, ?3, ?4)",
-            params![study_id, label, to_json(&signals), now_ms],
+            "INSERT INTO devices (study_id, label, signals_json, enrolled_ms, consent_share_flags)
+             VALUES (?1, ?2, ?3, ?4, ?5)",
+            params![
+                study_id,
+                label,
+                to_json(&signals),
+                now_ms,
+                consent_share_flags
+            ],
         )?;
         Ok(self.conn.last_insert_rowid() as u64)
+    }
+
+    /// Records a changed consent of an enrolled device.
+    pub fn set_consent(&mut self, device_id: u64, consent_share_flags: bool) -> Result<()> {
+        self.conn.execute(
+            "UPDATE devices SET consent_share_flags = ?2 WHERE device_id = ?1",
+            params![device_id as i64, consent_share_flags],
+        )?;
+        Ok(())
+    }
+
+    /// Stores a validated flag packet and returns its id. An identical packet
+    /// already stored for the same (device, signal, kind, date) returns the
+    /// stored id; a different one is `AlreadyExists`.
+    pub fn insert_flag_packet(
+        &mut self,
+        study_id: &str,
+        device_id: u64,
+        packet: &FlagPacket,
+        now_ms: i64,
+    ) -> Result<u64> {
+        let signal = packet.signal.clone().unwrap_or_default();
+        let date = packet.date.to_string();
+        let payload = to_json(packet);
+        let tx = self.conn.transaction()?;
+        let existing: Option<(i64, String)> = tx
+            .query_row(
+                "SELECT packet_id, payload_json FROM flag_packets
+                 WHERE device_id = ?1 AND signal = ?2 AND kind = ?3 AND flag_date = ?4",
+                params![device_id as i64, signal, packet.kind.as_str(), date],
+                |r| Ok((r.get(0)?, r.get(1)?)),
+            )
+            .optional()?;
+        if let Some((id, stored)) = existing {
+            if stored == payload {
+                return Ok(id as u64);
+            }
+            return Err(AggregatorError::AlreadyExists(format!(
+                "packet: device {device_id} already sent a different {} packet for {} on {date}",
+                packet.kind.as_str(),
+                if signal.is_empty() {
+                    "several signals"
+                } else {
+                    &signal
+                }
+            )));
+        }
+        tx.execute(
+            "INSERT INTO flag_packets
+               (study_id, device_id, signal, kind, level, flag_date, payload_json, received_ms)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
+            params![
+                study_id,
+                device_id as i64,
+                signal,
+                packet.kind.as_str(),
+                packet.level.as_str(),
+                date,
+                payload,
+                now_ms
+            ],
+        )?;
+        let id = tx.last_insert_rowid() as u64;
+        tx.commit()?;
+        Ok(id)
     }
 
     /// All published priors of a study, oldest first.
@@ -401,6 +559,11 @@ impl Store {
             )));
         }
         insert_prior(&tx, study_id, prior)?;
+        if fault_injected("close-round-before-commit") {
+            // Test hook for the crash-safety test: die inside the closing
+            // transaction, as a power cut or SIGKILL would.
+            std::process::abort();
+        }
         tx.commit()?;
         Ok(())
     }
@@ -431,4 +594,77 @@ fn insert_prior(
         ],
     )?;
     Ok(())
+}
+
+/// Whether the fault named `point` is requested through the
+/// `PLIMSOLL_FAULT_INJECT` environment variable. Used only by the
+/// crash-safety test, which runs the real binary; unset in normal use.
+fn fault_injected(point: &str) -> bool {
+    std::env::var("PLIMSOLL_FAULT_INJECT").is_ok_and(|v| v == point)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A database as version 1 left it: schema 1, one study, one device.
+    fn version_1_database(path: &Path) {
+        let conn = Connection::open(path).unwrap();
+        conn.execute_batch(SCHEMA_V1).unwrap();
+        conn.execute("INSERT INTO schema_version (version) VALUES (1)", [])
+            .unwrap();
+        conn.execute(
+            "INSERT INTO studies (study_id, config_json, created_ms) VALUES ('s', '{}', 0)",
+            [],
+        )
+        .unwrap();
+        conn.execute(
+            "INSERT INTO devices (study_id, label, signals_json, enrolled_ms)
+             VALUES ('s', 'p-1', '[\"steps\"]', 0)",
+            [],
+        )
+        .unwrap();
+    }
+
+    #[test]
+    fn opens_a_version_1_database_by_migrating_it() {
+        let dir = std::env::temp_dir().join(format!("plimsoll-migrate-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = dir.join("v1.db");
+        let _ = std::fs::remove_file(&path);
+        version_1_database(&path);
+        let store = Store::open(&path).unwrap();
+        assert_eq!(store.schema_version().unwrap(), 2);
+        let devices = store.devices("s").unwrap();
+        assert_eq!(devices.len(), 1);
+        assert_eq!(devices[0].label, "p-1");
+        assert!(
+            !devices[0].consent_share_flags,
+            "old devices did not consent"
+        );
+        drop(store);
+        // Opening again is a no-op.
+        assert_eq!(Store::open(&path).unwrap().schema_version().unwrap(), 2);
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+
+    #[test]
+    fn review_actions_are_append_only() {
+        let store = Store::in_memory().unwrap();
+        let c = store.conn();
+        c.execute_batch(
+            "INSERT INTO studies VALUES ('s', '{}', 0);
+             INSERT INTO devices (study_id, label, signals_json, enrolled_ms) VALUES ('s', 'p', '[]', 0);
+             INSERT INTO flag_packets (study_id, device_id, signal, kind, level, flag_date, payload_json, received_ms)
+               VALUES ('s', 1, 'steps', 'cusum', 'alert', '2024-01-01', '{}', 0);
+             INSERT INTO reviewers VALUES ('r', 'x', 0);
+             INSERT INTO review_actions (packet_id, reviewer, action, note, at_ms)
+               VALUES (1, 'r', 'acknowledge', '', 0);",
+        )
+        .unwrap();
+        let update = c.execute("UPDATE review_actions SET action = 'dismiss'", []);
+        assert!(update.unwrap_err().to_string().contains("append-only"));
+        let delete = c.execute("DELETE FROM review_actions", []);
+        assert!(delete.unwrap_err().to_string().contains("append-only"));
+    }
 }

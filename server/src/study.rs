@@ -73,6 +73,9 @@ pub struct StudyConfig {
     pub round_deadline_ms: u64,
     /// Seed for the per-round random selection of devices.
     pub selection_seed: u64,
+    /// How submissions are combined (FedAvg unless set).
+    #[serde(default)]
+    pub aggregation: crate::aggregate::Aggregation,
 }
 
 impl StudyConfig {
@@ -124,7 +127,7 @@ impl StudyConfig {
         if self.round_deadline_ms == 0 {
             return Err("round_deadline_ms must be positive".into());
         }
-        Ok(())
+        self.aggregation.validate()
     }
 
     pub fn layout(&self, signal: &str) -> Option<&SignalLayout> {

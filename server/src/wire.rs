@@ -4,7 +4,10 @@
 use plimsoll_proto::v1 as pb;
 use tonic::Status;
 
-use crate::error::AggregatorError;
+use crate::error::{AggregatorError, Result};
+use crate::packets::{
+    DayStatus, FlagKind, FlagLevel, FlagPacket, PopulationBand, SignalWindow, WindowDay,
+};
 use crate::study::{
     Contribution, LocalTraining, Optimizer, PriorVersion, SignalParams, SignalUpdate, StudyStatus,
     Work,
@@ -128,4 +131,103 @@ pub fn prior_to_pb(study_id: &str, p: &PriorVersion) -> pb::PublishedPrior {
         contributions: p.contributions.iter().map(contribution_to_pb).collect(),
         created_unix_ms: p.created_unix_ms,
     }
+}
+
+/// An ISO 8601 calendar date (`YYYY-MM-DD`).
+fn date_from_pb(field: &str, text: &str) -> Result<chrono::NaiveDate> {
+    chrono::NaiveDate::parse_from_str(text, "%Y-%m-%d").map_err(|e| {
+        AggregatorError::invalid(
+            field,
+            format!("`{text}` is not an ISO 8601 date (YYYY-MM-DD): {e}"),
+        )
+    })
+}
+
+fn band_from_pb(field: &str, b: Option<pb::PopulationBand>) -> Result<PopulationBand> {
+    let b = b.ok_or_else(|| AggregatorError::invalid(field, "missing"))?;
+    Ok(PopulationBand {
+        mean: b.mean,
+        lo50: b.lo50,
+        hi50: b.hi50,
+        lo95: b.lo95,
+        hi95: b.hi95,
+    })
+}
+
+/// Decodes a flag packet: dates parsed, enums known. The numeric and window
+/// checks are [`FlagPacket::validate`]'s.
+pub fn flag_packet_from_pb(p: Option<pb::FlagPacket>) -> Result<FlagPacket> {
+    let p = p.ok_or_else(|| AggregatorError::invalid("packet", "missing"))?;
+    let kind = match pb::FlagKind::try_from(p.kind) {
+        Ok(pb::FlagKind::SingleDay) => FlagKind::SingleDay,
+        Ok(pb::FlagKind::Cusum) => FlagKind::Cusum,
+        Ok(pb::FlagKind::MultiSignal) => FlagKind::MultiSignal,
+        _ => {
+            return Err(AggregatorError::invalid(
+                "packet.kind",
+                format!("unknown or unspecified flag kind {}", p.kind),
+            ));
+        }
+    };
+    let level = match pb::FlagLevel::try_from(p.level) {
+        Ok(pb::FlagLevel::Watch) => FlagLevel::Watch,
+        Ok(pb::FlagLevel::Alert) => FlagLevel::Alert,
+        _ => {
+            return Err(AggregatorError::invalid(
+                "packet.level",
+                format!("unknown or unspecified flag level {}", p.level),
+            ));
+        }
+    };
+    let mut signals = Vec::with_capacity(p.signals.len());
+    for (i, w) in p.signals.into_iter().enumerate() {
+        let at = format!("packet.signals[{i}]");
+        let mut days = Vec::with_capacity(w.days.len());
+        for (j, d) in w.days.into_iter().enumerate() {
+            let at = format!("{at}.days[{j}]");
+            let status = match pb::DayStatus::try_from(d.status) {
+                Ok(pb::DayStatus::BuildingBaseline) => DayStatus::BuildingBaseline,
+                Ok(pb::DayStatus::Normal) => DayStatus::Normal,
+                Ok(pb::DayStatus::Flagged) => DayStatus::Flagged,
+                _ => {
+                    return Err(AggregatorError::invalid(
+                        format!("{at}.status"),
+                        format!("unknown or unspecified day status {}", d.status),
+                    ));
+                }
+            };
+            days.push(WindowDay {
+                date: date_from_pb(&format!("{at}.date"), &d.date)?,
+                observed: d.observed,
+                mean: d.mean,
+                sd: d.sd,
+                lo50: d.lo50,
+                hi50: d.hi50,
+                lo95: d.lo95,
+                hi95: d.hi95,
+                z: d.z,
+                tail_p: d.tail_p,
+                conditioned: d.conditioned,
+                status,
+            });
+        }
+        signals.push(SignalWindow {
+            signal: w.signal,
+            population: band_from_pb(&format!("{at}.population"), w.population)?,
+            days,
+        });
+    }
+    Ok(FlagPacket {
+        signal: (!p.signal.is_empty()).then_some(p.signal),
+        kind,
+        level,
+        first_day: date_from_pb("packet.first_day", &p.first_day)?,
+        last_day: date_from_pb("packet.last_day", &p.last_day)?,
+        date: date_from_pb("packet.date", &p.date)?,
+        score: p.score,
+        reason: p.reason,
+        window_start: date_from_pb("packet.window_start", &p.window_start)?,
+        window_end: date_from_pb("packet.window_end", &p.window_end)?,
+        signals,
+    })
 }

@@ -1,0 +1,117 @@
+//! Reading a shared prior vector in the signal's own units, for display.
+//!
+//! The aggregator treats parameters as opaque named numbers; this module only
+//! knows the naming convention the device's layout declares (see
+//! `proto/plimsoll/v1/aggregator.proto`, `SignalLayout.param_names`):
+//! `mean_z` is a mean in standardised units and every `log_*_var` is the
+//! natural log of a variance in standardised units, with `z = (y − centre) / scale`.
+//! So, with `c` = reference centre and `s` = reference scale (signal units):
+//!
+//! ```text
+//! population mean   μ0 = c + s · mean_z
+//! SD of component    σ = s · exp(log_var / 2)
+//! length (days)      ℓ = exp(log_len_days)
+//! ```
+//!
+//! It never builds a model: no kernel, no GP code.
+
+use crate::study::SignalLayout;
+
+/// A signal's shared prior in plain units; `None` where the layout does not
+/// carry the parameter.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PlainPrior {
+    pub signal: String,
+    /// Population mean μ0 (signal units).
+    pub population_mean: Option<f64>,
+    /// Between-person SD τ (signal units).
+    pub between_sd: Option<f64>,
+    /// SD of the slow personal trend (signal units).
+    pub trend_sd: Option<f64>,
+    /// Trend length scale (days).
+    pub trend_len_days: Option<f64>,
+    /// SD of the weekly rhythm (signal units).
+    pub weekly_sd: Option<f64>,
+    /// Day-to-day noise SD (signal units).
+    pub noise_sd: Option<f64>,
+}
+
+/// Reads `values` (in `layout.param_names` order) in plain units.
+pub fn plain_prior(layout: &SignalLayout, values: &[f64]) -> PlainPrior {
+    let get = |name: &str| {
+        layout
+            .param_names
+            .iter()
+            .position(|n| n == name)
+            .and_then(|i| values.get(i).copied())
+            .filter(|v| v.is_finite())
+    };
+    let c = layout.reference_center;
+    let s = layout.reference_scale;
+    let sd = |name: &str| get(name).map(|log_var| s * (0.5 * log_var).exp());
+    PlainPrior {
+        signal: layout.signal.clone(),
+        population_mean: get("mean_z").map(|m| c + s * m),
+        between_sd: sd("log_between_var"),
+        trend_sd: sd("log_trend_var"),
+        trend_len_days: get("log_trend_len_days").map(f64::exp),
+        weekly_sd: sd("log_weekly_var"),
+        noise_sd: sd("log_noise_var"),
+    }
+}
+
+/// Unit of a signal column for display (the suffix convention of the cohort
+/// data format: `_bpm`, `_ms`, `_h`, `_c`, `_brpm`, `steps`).
+pub fn unit_of(signal: &str) -> &'static str {
+    match signal.rsplit('_').next().unwrap_or("") {
+        "bpm" => "bpm",
+        "ms" => "ms",
+        "h" => "h",
+        "c" => "°C",
+        "brpm" => "breaths/min",
+        "steps" => "steps",
+        _ => "",
+    }
+}
+
+/// Plain-language name of a signal column for display.
+pub fn label_of(signal: &str) -> String {
+    match signal {
+        "resting_hr_bpm" => "Resting heart rate".into(),
+        "hrv_rmssd_ms" => "Overnight HRV (RMSSD)".into(),
+        "sleep_h" => "Sleep duration".into(),
+        "skin_temp_delta_c" => "Skin temperature deviation".into(),
+        "steps" => "Daily steps".into(),
+        "resp_rate_brpm" => "Overnight respiratory rate".into(),
+        other => other.replace('_', " "),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn reads_plain_units_from_names() {
+        // Hand computation: centre 65, scale 10; mean_z 0.5 → 70 bpm;
+        // log τ² = ln 0.25 → τ = 0.5 · 10 = 5 bpm; ℓ = exp(ln 14) = 14 days.
+        let layout = SignalLayout {
+            signal: "resting_hr_bpm".into(),
+            param_names: vec![
+                "mean_z".into(),
+                "log_between_var".into(),
+                "log_trend_len_days".into(),
+            ],
+            reference_center: 65.0,
+            reference_scale: 10.0,
+            initial: vec![0.0; 3],
+        };
+        let p = plain_prior(&layout, &[0.5, 0.25f64.ln(), 14f64.ln()]);
+        assert!((p.population_mean.unwrap() - 70.0).abs() < 1e-12);
+        assert!((p.between_sd.unwrap() - 5.0).abs() < 1e-12);
+        assert!((p.trend_len_days.unwrap() - 14.0).abs() < 1e-9);
+        assert_eq!(p.noise_sd, None);
+        assert_eq!(unit_of("resting_hr_bpm"), "bpm");
+        assert_eq!(unit_of("steps"), "steps");
+    }
+}

@@ -1,0 +1,361 @@
+//! What the review pages read from and append to the aggregator database:
+//! study overviews, the flag queue, one flag with its audit trail, and
+//! reviewer actions.
+
+use rusqlite::{OptionalExtension, params};
+
+use crate::error::{AggregatorError, Result};
+use crate::packets::{FlagKind, FlagLevel, FlagPacket};
+use crate::store::Store;
+use crate::study::{PriorVersion, StudyConfig};
+
+/// Longest note a reviewer may attach to an action, in characters.
+pub const MAX_NOTE_CHARS: usize = 2000;
+
+/// What a reviewer did with a flag.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ReviewAction {
+    Acknowledge,
+    Dismiss,
+    Escalate,
+}
+
+impl ReviewAction {
+    pub const ALL: [ReviewAction; 3] = [
+        ReviewAction::Acknowledge,
+        ReviewAction::Dismiss,
+        ReviewAction::Escalate,
+    ];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ReviewAction::Acknowledge => "acknowledge",
+            ReviewAction::Dismiss => "dismiss",
+            ReviewAction::Escalate => "escalate",
+        }
+    }
+
+    pub fn parse(s: &str) -> Option<ReviewAction> {
+        ReviewAction::ALL.into_iter().find(|a| a.as_str() == s)
+    }
+
+    /// The status a flag has after this action.
+    pub fn status(self) -> ReviewStatus {
+        match self {
+            ReviewAction::Acknowledge => ReviewStatus::Acknowledged,
+            ReviewAction::Dismiss => ReviewStatus::Dismissed,
+            ReviewAction::Escalate => ReviewStatus::Escalated,
+        }
+    }
+}
+
+/// A flag's review status: its latest action, or `New` when none.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ReviewStatus {
+    New,
+    Acknowledged,
+    Dismissed,
+    Escalated,
+}
+
+impl ReviewStatus {
+    pub const ALL: [ReviewStatus; 4] = [
+        ReviewStatus::New,
+        ReviewStatus::Escalated,
+        ReviewStatus::Acknowledged,
+        ReviewStatus::Dismissed,
+    ];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ReviewStatus::New => "new",
+            ReviewStatus::Acknowledged => "acknowledged",
+            ReviewStatus::Dismissed => "dismissed",
+            ReviewStatus::Escalated => "escalated",
+        }
+    }
+
+    pub fn parse(s: &str) -> Option<ReviewStatus> {
+        ReviewStatus::ALL.into_iter().find(|a| a.as_str() == s)
+    }
+
+    fn from_latest(action: Option<String>) -> ReviewStatus {
+        action
+            .as_deref()
+            .and_then(ReviewAction::parse)
+            .map_or(ReviewStatus::New, ReviewAction::status)
+    }
+}
+
+/// A study as its overview page shows it.
+#[derive(Debug, Clone)]
+pub struct StudyOverview {
+    pub config: StudyConfig,
+    pub devices_enrolled: usize,
+    pub devices_consenting: usize,
+    pub rounds_completed: u32,
+    /// Every published prior, oldest first.
+    pub priors: Vec<PriorVersion>,
+    pub flags_total: usize,
+    pub flags_new: usize,
+}
+
+/// One row of the flag queue.
+#[derive(Debug, Clone, PartialEq)]
+pub struct QueueEntry {
+    pub packet_id: u64,
+    pub participant: String,
+    pub signal: Option<String>,
+    pub kind: FlagKind,
+    pub level: FlagLevel,
+    pub date: String,
+    pub score: f64,
+    pub status: ReviewStatus,
+}
+
+/// Which flags the queue shows; `None` shows all.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct QueueFilter {
+    pub signal: Option<String>,
+    pub level: Option<FlagLevel>,
+    pub status: Option<ReviewStatus>,
+}
+
+/// One entry of a flag's audit trail.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ActionRecord {
+    pub reviewer: String,
+    pub action: ReviewAction,
+    pub note: String,
+    pub at_ms: i64,
+}
+
+/// A stored flag packet with what the review knows about it.
+#[derive(Debug, Clone)]
+pub struct FlagRecord {
+    pub packet_id: u64,
+    pub study_id: String,
+    pub device_id: u64,
+    pub participant: String,
+    pub packet: FlagPacket,
+    pub received_ms: i64,
+    /// Oldest first; the last one is the flag's status.
+    pub history: Vec<ActionRecord>,
+}
+
+impl FlagRecord {
+    pub fn status(&self) -> ReviewStatus {
+        self.history
+            .last()
+            .map_or(ReviewStatus::New, |a| a.action.status())
+    }
+}
+
+fn corrupt(what: String, e: impl std::fmt::Display) -> AggregatorError {
+    AggregatorError::Corrupt(format!("{what}: {e}"))
+}
+
+/// The overview of `study_id`, or `None` when no such study exists.
+pub fn overview(store: &Store, study_id: &str) -> Result<Option<StudyOverview>> {
+    let Some(config) = store
+        .studies()?
+        .into_iter()
+        .find(|s| s.study_id == study_id)
+    else {
+        return Ok(None);
+    };
+    let devices = store.devices(study_id)?;
+    let (flags_total, flags_new): (i64, i64) = store.conn().query_row(
+        "SELECT COUNT(*),
+                COALESCE(SUM(NOT EXISTS (SELECT 1 FROM review_actions a WHERE a.packet_id = p.packet_id)), 0)
+         FROM flag_packets p WHERE p.study_id = ?1",
+        [study_id],
+        |r| Ok((r.get(0)?, r.get(1)?)),
+    )?;
+    Ok(Some(StudyOverview {
+        devices_enrolled: devices.len(),
+        devices_consenting: devices.iter().filter(|d| d.consent_share_flags).count(),
+        rounds_completed: store.rounds_completed(study_id)?,
+        priors: store.priors(study_id)?,
+        flags_total: flags_total as usize,
+        flags_new: flags_new as usize,
+        config,
+    }))
+}
+
+/// Titles of the given studies, in the given order (unknown ids skipped).
+pub fn study_titles(store: &Store, ids: &[String]) -> Result<Vec<(String, String)>> {
+    let all = store.studies()?;
+    Ok(ids
+        .iter()
+        .filter_map(|id| {
+            all.iter()
+                .find(|s| &s.study_id == id)
+                .map(|s| (id.clone(), s.title.clone()))
+        })
+        .collect())
+}
+
+const LATEST_ACTION: &str = "(SELECT a.action FROM review_actions a
+                              WHERE a.packet_id = p.packet_id ORDER BY a.action_id DESC LIMIT 1)";
+
+fn queue_entry(r: &rusqlite::Row<'_>) -> rusqlite::Result<QueueEntry> {
+    let signal: String = r.get(2)?;
+    let kind: String = r.get(3)?;
+    let level: String = r.get(4)?;
+    Ok(QueueEntry {
+        packet_id: r.get::<_, i64>(0)? as u64,
+        participant: r.get(1)?,
+        signal: (!signal.is_empty()).then_some(signal),
+        kind: match kind.as_str() {
+            "cusum" => FlagKind::Cusum,
+            "multi_signal" => FlagKind::MultiSignal,
+            _ => FlagKind::SingleDay,
+        },
+        level: FlagLevel::parse(&level).unwrap_or(FlagLevel::Watch),
+        date: r.get(5)?,
+        score: r.get::<_, Option<f64>>(6)?.unwrap_or(f64::NAN),
+        status: ReviewStatus::from_latest(r.get(7)?),
+    })
+}
+
+/// The study's flags, Alert before Watch, then newest first, filtered.
+pub fn queue(store: &Store, study_id: &str, filter: &QueueFilter) -> Result<Vec<QueueEntry>> {
+    let sql = format!(
+        "SELECT p.packet_id, d.label, p.signal, p.kind, p.level, p.flag_date,
+                json_extract(p.payload_json, '$.score'), {LATEST_ACTION}
+         FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
+         WHERE p.study_id = ?1
+         ORDER BY (p.level = 'alert') DESC, p.flag_date DESC, p.packet_id DESC"
+    );
+    let mut stmt = store.conn().prepare(&sql)?;
+    let rows = stmt.query_map([study_id], queue_entry)?;
+    let mut out = Vec::new();
+    for row in rows {
+        let entry = row?;
+        let keep = filter
+            .signal
+            .as_ref()
+            .is_none_or(|s| entry.signal.as_ref() == Some(s))
+            && filter.level.is_none_or(|l| entry.level == l)
+            && filter.status.is_none_or(|s| entry.status == s);
+        if keep {
+            out.push(entry);
+        }
+    }
+    Ok(out)
+}
+
+/// Signals that appear in the study's flags, sorted (for the queue filter).
+pub fn flagged_signals(store: &Store, study_id: &str) -> Result<Vec<String>> {
+    let mut stmt = store.conn().prepare(
+        "SELECT DISTINCT signal FROM flag_packets WHERE study_id = ?1 AND signal <> '' ORDER BY signal",
+    )?;
+    let rows = stmt.query_map([study_id], |r| r.get::<_, String>(0))?;
+    Ok(rows.collect::<rusqlite::Result<Vec<_>>>()?)
+}
+
+/// One flag with its audit trail, or `None` when it does not exist.
+pub fn flag(store: &Store, packet_id: u64) -> Result<Option<FlagRecord>> {
+    let conn = store.conn();
+    let row: Option<(String, i64, String, String, i64)> = conn
+        .query_row(
+            "SELECT p.study_id, p.device_id, d.label, p.payload_json, p.received_ms
+             FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
+             WHERE p.packet_id = ?1",
+            [packet_id as i64],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?)),
+        )
+        .optional()?;
+    let Some((study_id, device_id, participant, payload, received_ms)) = row else {
+        return Ok(None);
+    };
+    let packet: FlagPacket = serde_json::from_str(&payload)
+        .map_err(|e| corrupt(format!("flag packet {packet_id}"), e))?;
+    let mut stmt = conn.prepare(
+        "SELECT reviewer, action, note, at_ms FROM review_actions
+         WHERE packet_id = ?1 ORDER BY action_id",
+    )?;
+    let rows = stmt.query_map([packet_id as i64], |r| {
+        Ok((
+            r.get::<_, String>(0)?,
+            r.get::<_, String>(1)?,
+            r.get::<_, String>(2)?,
+            r.get::<_, i64>(3)?,
+        ))
+    })?;
+    let mut history = Vec::new();
+    for row in rows {
+        let (reviewer, action, note, at_ms) = row?;
+        let action = ReviewAction::parse(&action)
+            .ok_or_else(|| corrupt(format!("action on flag {packet_id}"), action))?;
+        history.push(ActionRecord {
+            reviewer,
+            action,
+            note,
+            at_ms,
+        });
+    }
+    Ok(Some(FlagRecord {
+        packet_id,
+        study_id,
+        device_id: device_id as u64,
+        participant,
+        packet,
+        received_ms,
+        history,
+    }))
+}
+
+/// The same participant's other flags raised within `record`'s window.
+pub fn related_flags(store: &Store, record: &FlagRecord) -> Result<Vec<QueueEntry>> {
+    let sql = format!(
+        "SELECT p.packet_id, d.label, p.signal, p.kind, p.level, p.flag_date,
+                json_extract(p.payload_json, '$.score'), {LATEST_ACTION}
+         FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
+         WHERE p.device_id = ?1 AND p.packet_id <> ?2 AND p.flag_date BETWEEN ?3 AND ?4
+         ORDER BY p.flag_date, p.packet_id"
+    );
+    let mut stmt = store.conn().prepare(&sql)?;
+    let rows = stmt.query_map(
+        params![
+            record.device_id as i64,
+            record.packet_id as i64,
+            record.packet.window_start.to_string(),
+            record.packet.window_end.to_string()
+        ],
+        queue_entry,
+    )?;
+    Ok(rows.collect::<rusqlite::Result<Vec<_>>>()?)
+}
+
+/// Appends a reviewer's action to a flag's audit trail.
+pub fn record_action(
+    store: &Store,
+    packet_id: u64,
+    reviewer: &str,
+    action: ReviewAction,
+    note: &str,
+    now_ms: i64,
+) -> Result<()> {
+    let note = note.trim();
+    let note_chars = note.chars().count();
+    if note_chars > MAX_NOTE_CHARS {
+        return Err(AggregatorError::invalid(
+            "note",
+            format!("{note_chars} characters; at most {MAX_NOTE_CHARS}"),
+        ));
+    }
+    if note.is_empty() && action != ReviewAction::Acknowledge {
+        return Err(AggregatorError::invalid(
+            "note",
+            format!("a note is needed to {}", action.as_str()),
+        ));
+    }
+    store.conn().execute(
+        "INSERT INTO review_actions (packet_id, reviewer, action, note, at_ms)
+         VALUES (?1, ?2, ?3, ?4, ?5)",
+        params![packet_id as i64, reviewer, action.as_str(), note, now_ms],
+    )?;
+    Ok(())
+}

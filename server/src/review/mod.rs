@@ -1,0 +1,579 @@
+//! Clinician review of flag packets, served over HTTP by the aggregator
+//! process: study overview, flag queue, one flag with its charts, and
+//! reviewer actions kept as an append-only audit trail.
+//!
+//! Access: reviewer accounts are made on the command line
+//! (`plimsoll-aggregator reviewer add|assign`); a reviewer logs in with a
+//! password (Argon2id), gets an HttpOnly, SameSite=Strict session cookie and
+//! sees only the studies assigned to them. Every state-changing form carries
+//! the session's CSRF token. Pages load nothing from the network and run no
+//! script; charts are inline SVG with a table as text alternative.
+//!
+//! This module reads the database through its own connection (WAL lets it
+//! run beside the coordinator's). It never sees a model: packets are plain
+//! numbers computed on devices.
+
+pub mod accounts;
+pub mod charts;
+pub mod db;
+pub mod html;
+pub mod pages;
+
+use std::net::SocketAddr;
+use std::path::Path;
+use std::sync::{Arc, Mutex};
+
+use axum::Router;
+use axum::extract::{Form, Path as UrlPath, Query, State};
+use axum::http::{HeaderMap, HeaderValue, StatusCode, header};
+use axum::response::{IntoResponse, Response};
+use axum::routing::{get, post};
+use serde::Deserialize;
+use tokio::net::TcpListener;
+
+use self::accounts::Session;
+use self::db::{QueueFilter, ReviewAction, ReviewStatus};
+use crate::error::{AggregatorError, Result};
+use crate::packets::FlagLevel;
+use crate::service::now_ms;
+use crate::store::Store;
+
+/// Name of the session cookie.
+pub const SESSION_COOKIE: &str = "plimsoll_review";
+
+/// Name of the reviewer [`ensure_demo_reviewer`] creates.
+pub const DEMO_REVIEWER: &str = "demo-reviewer";
+
+/// Shared state of the review server: one database connection.
+#[derive(Debug)]
+pub struct ReviewState {
+    store: Mutex<Store>,
+}
+
+impl ReviewState {
+    pub fn new(store: Store) -> ReviewState {
+        ReviewState {
+            store: Mutex::new(store),
+        }
+    }
+
+    /// Runs `f` on the connection off the async workers.
+    async fn with_store<T: Send + 'static>(
+        self: &Arc<Self>,
+        f: impl FnOnce(&mut Store) -> Result<T> + Send + 'static,
+    ) -> std::result::Result<T, Response> {
+        let state = self.clone();
+        let joined = tokio::task::spawn_blocking(move || {
+            let mut store = state.store.lock().unwrap_or_else(|p| p.into_inner());
+            f(&mut store)
+        })
+        .await;
+        match joined {
+            Ok(Ok(v)) => Ok(v),
+            Ok(Err(e)) => Err(failure(e)),
+            Err(e) => {
+                tracing::error!(error = %e, "review worker failed");
+                Err(html(
+                    StatusCode::INTERNAL_SERVER_ERROR,
+                    pages::error(
+                        None,
+                        "Something went wrong",
+                        "The review server failed; nothing was changed.",
+                    ),
+                ))
+            }
+        }
+    }
+}
+
+fn failure(e: AggregatorError) -> Response {
+    match e {
+        AggregatorError::InvalidArgument { .. } => html(
+            StatusCode::BAD_REQUEST,
+            pages::error(None, "Request not valid", &e.to_string()),
+        ),
+        other => {
+            tracing::error!(error = %other, "review request failed");
+            html(
+                StatusCode::INTERNAL_SERVER_ERROR,
+                pages::error(
+                    None,
+                    "Something went wrong",
+                    "The review server could not read or write its database; nothing was changed.",
+                ),
+            )
+        }
+    }
+}
+
+/// Headers every response carries: no caching, no framing, nothing loaded
+/// from elsewhere, no script.
+fn secure(mut response: Response) -> Response {
+    let h = response.headers_mut();
+    h.insert(
+        header::CONTENT_SECURITY_POLICY,
+        HeaderValue::from_static(
+            "default-src 'none'; style-src 'unsafe-inline'; img-src data:; form-action 'self'; frame-ancestors 'none'; base-uri 'none'",
+        ),
+    );
+    h.insert(header::CACHE_CONTROL, HeaderValue::from_static("no-store"));
+    h.insert(
+        header::X_CONTENT_TYPE_OPTIONS,
+        HeaderValue::from_static("nosniff"),
+    );
+    h.insert(header::X_FRAME_OPTIONS, HeaderValue::from_static("DENY"));
+    h.insert(
+        header::REFERRER_POLICY,
+        HeaderValue::from_static("no-referrer"),
+    );
+    response
+}
+
+fn html(status: StatusCode, body: String) -> Response {
+    secure(
+        (
+            status,
+            [(header::CONTENT_TYPE, "text/html; charset=utf-8")],
+            body,
+        )
+            .into_response(),
+    )
+}
+
+fn redirect(to: &str) -> Response {
+    secure((StatusCode::SEE_OTHER, [(header::LOCATION, to.to_owned())]).into_response())
+}
+
+fn not_found(session: &Session) -> Response {
+    html(
+        StatusCode::NOT_FOUND,
+        pages::error(
+            Some(session),
+            "Not found",
+            "There is no such page, or it belongs to a study you are not assigned to.",
+        ),
+    )
+}
+
+fn forbidden(session: Option<&Session>) -> Response {
+    html(
+        StatusCode::FORBIDDEN,
+        pages::error(
+            session,
+            "Request refused",
+            "The form was missing its security token or it did not match your session. Reload the page and try again.",
+        ),
+    )
+}
+
+/// The session cookie's token, if the request carries one.
+fn cookie_token(headers: &HeaderMap) -> Option<String> {
+    headers
+        .get_all(header::COOKIE)
+        .iter()
+        .filter_map(|v| v.to_str().ok())
+        .flat_map(|v| v.split(';'))
+        .filter_map(|kv| kv.trim().split_once('='))
+        .find(|(k, _)| *k == SESSION_COOKIE)
+        .map(|(_, v)| v.to_owned())
+        .filter(|v| !v.is_empty() && v.len() <= 128)
+}
+
+/// The request's live session, or a redirect to the login page.
+async fn require_session(
+    state: &Arc<ReviewState>,
+    headers: &HeaderMap,
+) -> std::result::Result<Session, Response> {
+    let Some(token) = cookie_token(headers) else {
+        return Err(redirect("/login"));
+    };
+    match state
+        .with_store(move |s| accounts::session(s, &token, now_ms()))
+        .await?
+    {
+        Some(session) => Ok(session),
+        None => Err(redirect("/login")),
+    }
+}
+
+/// The refusal when a form's CSRF token is missing or not the session's.
+fn csrf_refusal(session: &Session, token: Option<&str>) -> Option<Response> {
+    match token {
+        Some(t) if accounts::constant_time_eq(t, &session.csrf_token) => None,
+        _ => Some(forbidden(Some(session))),
+    }
+}
+
+/// The review routes over `state`.
+pub fn router(state: Arc<ReviewState>) -> Router {
+    Router::new()
+        .route("/", get(home))
+        .route("/login", get(login_page).post(login))
+        .route("/logout", post(logout))
+        .route("/study/{study_id}", get(study_overview))
+        .route("/study/{study_id}/flags", get(study_queue))
+        .route("/flag/{packet_id}", get(flag_detail))
+        .route("/flag/{packet_id}/action", post(flag_action))
+        .fallback(|| async {
+            html(
+                StatusCode::NOT_FOUND,
+                pages::error(None, "Not found", "There is no such page."),
+            )
+        })
+        .with_state(state)
+}
+
+async fn home(State(state): State<Arc<ReviewState>>, headers: HeaderMap) -> Response {
+    let session = match require_session(&state, &headers).await {
+        Ok(s) => s,
+        Err(r) => return r,
+    };
+    let ids = session.studies.clone();
+    match state.with_store(move |s| db::study_titles(s, &ids)).await {
+        Ok(titles) => html(StatusCode::OK, pages::studies(&session, &titles)),
+        Err(r) => r,
+    }
+}
+
+async fn login_page() -> Response {
+    html(StatusCode::OK, pages::login(None))
+}
+
+#[derive(Debug, Deserialize)]
+struct LoginForm {
+    #[serde(default)]
+    name: String,
+    #[serde(default)]
+    password: String,
+}
+
+async fn login(State(state): State<Arc<ReviewState>>, Form(form): Form<LoginForm>) -> Response {
+    let name = form.name.trim().to_owned();
+    let result = state
+        .with_store(move |s| {
+            if accounts::verify_login(s, &name, &form.password)? {
+                accounts::create_session(s, &name, now_ms()).map(Some)
+            } else {
+                Ok(None)
+            }
+        })
+        .await;
+    match result {
+        Ok(Some(token)) => {
+            let mut r = redirect("/");
+            let cookie = format!(
+                "{SESSION_COOKIE}={token}; Path=/; HttpOnly; SameSite=Strict; Max-Age={}",
+                accounts::SESSION_TTL_MS / 1000
+            );
+            r.headers_mut().insert(
+                header::SET_COOKIE,
+                HeaderValue::from_str(&cookie).expect("hex token is a valid header"),
+            );
+            r
+        }
+        Ok(None) => html(
+            StatusCode::UNAUTHORIZED,
+            pages::login(Some("That name and password do not match an account.")),
+        ),
+        Err(r) => r,
+    }
+}
+
+#[derive(Debug, Deserialize)]
+struct CsrfForm {
+    csrf: Option<String>,
+}
+
+async fn logout(
+    State(state): State<Arc<ReviewState>>,
+    headers: HeaderMap,
+    Form(form): Form<CsrfForm>,
+) -> Response {
+    let session = match require_session(&state, &headers).await {
+        Ok(s) => s,
+        Err(r) => return r,
+    };
+    if let Some(refusal) = csrf_refusal(&session, form.csrf.as_deref()) {
+        return refusal;
+    }
+    let token = cookie_token(&headers).unwrap_or_default();
+    if let Err(r) = state
+        .with_store(move |s| accounts::end_session(s, &token))
+        .await
+    {
+        return r;
+    }
+    let mut r = redirect("/login");
+    r.headers_mut().insert(
+        header::SET_COOKIE,
+        HeaderValue::from_static("plimsoll_review=; Path=/; HttpOnly; SameSite=Strict; Max-Age=0"),
+    );
+    r
+}
+
+async fn study_overview(
+    State(state): State<Arc<ReviewState>>,
+    headers: HeaderMap,
+    UrlPath(study_id): UrlPath<String>,
+) -> Response {
+    let session = match require_session(&state, &headers).await {
+        Ok(s) => s,
+        Err(r) => return r,
+    };
+    if !session.may_see(&study_id) {
+        return not_found(&session);
+    }
+    match state.with_store(move |s| db::overview(s, &study_id)).await {
+        Ok(Some(o)) => html(StatusCode::OK, pages::overview(&session, &o)),
+        Ok(None) => not_found(&session),
+        Err(r) => r,
+    }
+}
+
+#[derive(Debug, Deserialize)]
+struct QueueQuery {
+    signal: Option<String>,
+    level: Option<String>,
+    status: Option<String>,
+}
+
+async fn study_queue(
+    State(state): State<Arc<ReviewState>>,
+    headers: HeaderMap,
+    UrlPath(study_id): UrlPath<String>,
+    Query(q): Query<QueueQuery>,
+) -> Response {
+    let session = match require_session(&state, &headers).await {
+        Ok(s) => s,
+        Err(r) => return r,
+    };
+    if !session.may_see(&study_id) {
+        return not_found(&session);
+    }
+    let filter = QueueFilter {
+        signal: q.signal.filter(|s| !s.is_empty()),
+        level: q.level.as_deref().and_then(FlagLevel::parse),
+        status: q.status.as_deref().and_then(ReviewStatus::parse),
+    };
+    let id = study_id.clone();
+    let f = filter.clone();
+    let loaded = state
+        .with_store(move |s| {
+            let title = db::study_titles(s, std::slice::from_ref(&id))?
+                .pop()
+                .map(|(_, t)| t);
+            Ok((title, db::queue(s, &id, &f)?, db::flagged_signals(s, &id)?))
+        })
+        .await;
+    match loaded {
+        Ok((Some(title), entries, signals)) => html(
+            StatusCode::OK,
+            pages::queue(&session, &study_id, &title, &entries, &filter, &signals),
+        ),
+        Ok((None, _, _)) => not_found(&session),
+        Err(r) => r,
+    }
+}
+
+#[derive(Debug, Deserialize)]
+struct FlagQuery {
+    done: Option<String>,
+}
+
+async fn flag_detail(
+    State(state): State<Arc<ReviewState>>,
+    headers: HeaderMap,
+    UrlPath(packet_id): UrlPath<u64>,
+    Query(q): Query<FlagQuery>,
+) -> Response {
+    let session = match require_session(&state, &headers).await {
+        Ok(s) => s,
+        Err(r) => return r,
+    };
+    let message = q
+        .done
+        .as_deref()
+        .and_then(ReviewAction::parse)
+        .map(|a| match a {
+            ReviewAction::Acknowledge => "Recorded: acknowledged.",
+            ReviewAction::Dismiss => "Recorded: dismissed.",
+            ReviewAction::Escalate => "Recorded: escalated.",
+        });
+    render_flag(
+        &state,
+        &session,
+        packet_id,
+        message.map(|m| (m, true)),
+        StatusCode::OK,
+    )
+    .await
+}
+
+async fn render_flag(
+    state: &Arc<ReviewState>,
+    session: &Session,
+    packet_id: u64,
+    message: Option<(&str, bool)>,
+    status: StatusCode,
+) -> Response {
+    let loaded = state
+        .with_store(move |s| {
+            let Some(record) = db::flag(s, packet_id)? else {
+                return Ok(None);
+            };
+            let related = db::related_flags(s, &record)?;
+            let title = db::study_titles(s, std::slice::from_ref(&record.study_id))?
+                .pop()
+                .map_or_else(|| record.study_id.clone(), |(_, t)| t);
+            Ok(Some((record, related, title)))
+        })
+        .await;
+    match loaded {
+        Ok(Some((record, related, title))) if session.may_see(&record.study_id) => html(
+            status,
+            pages::flag(session, &title, &record, &related, message),
+        ),
+        Ok(_) => not_found(session),
+        Err(r) => r,
+    }
+}
+
+#[derive(Debug, Deserialize)]
+struct ActionForm {
+    csrf: Option<String>,
+    action: Option<String>,
+    #[serde(default)]
+    note: String,
+}
+
+async fn flag_action(
+    State(state): State<Arc<ReviewState>>,
+    headers: HeaderMap,
+    UrlPath(packet_id): UrlPath<u64>,
+    Form(form): Form<ActionForm>,
+) -> Response {
+    let session = match require_session(&state, &headers).await {
+        Ok(s) => s,
+        Err(r) => return r,
+    };
+    if let Some(refusal) = csrf_refusal(&session, form.csrf.as_deref()) {
+        return refusal;
+    }
+    let Some(action) = form.action.as_deref().and_then(ReviewAction::parse) else {
+        return render_flag(
+            &state,
+            &session,
+            packet_id,
+            Some(("Choose acknowledge, dismiss or escalate.", false)),
+            StatusCode::BAD_REQUEST,
+        )
+        .await;
+    };
+    let reviewer = session.reviewer.clone();
+    let studies = session.studies.clone();
+    let outcome = state
+        .with_store(move |s| {
+            let Some(record) = db::flag(s, packet_id)? else {
+                return Ok(None);
+            };
+            if !studies.contains(&record.study_id) {
+                return Ok(None);
+            }
+            match db::record_action(s, packet_id, &reviewer, action, &form.note, now_ms()) {
+                Ok(()) => Ok(Some(Ok(()))),
+                Err(AggregatorError::InvalidArgument { reason, .. }) => Ok(Some(Err(reason))),
+                Err(e) => Err(e),
+            }
+        })
+        .await;
+    match outcome {
+        Ok(Some(Ok(()))) => redirect(&format!(
+            "/flag/{packet_id}?done={}#history",
+            action.as_str()
+        )),
+        Ok(Some(Err(reason))) => {
+            let text = format!("Not recorded: {reason}.");
+            render_flag(
+                &state,
+                &session,
+                packet_id,
+                Some((&text, false)),
+                StatusCode::BAD_REQUEST,
+            )
+            .await
+        }
+        Ok(None) => not_found(&session),
+        Err(r) => r,
+    }
+}
+
+/// A running review server: its bound address and a handle to stop it.
+#[derive(Debug)]
+pub struct RunningReview {
+    pub addr: SocketAddr,
+    shutdown: Option<tokio::sync::oneshot::Sender<()>>,
+    task: tokio::task::JoinHandle<std::io::Result<()>>,
+}
+
+impl RunningReview {
+    /// The page a browser should open first.
+    pub fn url(&self) -> String {
+        format!("http://{}/", self.addr)
+    }
+
+    /// Stops accepting requests, finishes the ones in flight and waits.
+    pub async fn shutdown(mut self) -> anyhow::Result<()> {
+        if let Some(tx) = self.shutdown.take() {
+            let _ = tx.send(());
+        }
+        self.task.await??;
+        Ok(())
+    }
+}
+
+/// Serves the review pages on `listener`, reading the aggregator database at
+/// `db_path` through its own connection (migrating it to the current schema
+/// if needed). The caller chooses the address; use a loopback one unless a
+/// TLS-terminating proxy is in front (cookies are not marked `Secure`).
+pub async fn serve_review(db_path: &Path, listener: TcpListener) -> anyhow::Result<RunningReview> {
+    let store = Store::open(db_path)?;
+    serve_review_on(Arc::new(ReviewState::new(store)), listener).await
+}
+
+/// Serves the review pages of `state` on `listener`.
+pub async fn serve_review_on(
+    state: Arc<ReviewState>,
+    listener: TcpListener,
+) -> anyhow::Result<RunningReview> {
+    let addr = listener.local_addr()?;
+    let (tx, rx) = tokio::sync::oneshot::channel::<()>();
+    let app = router(state);
+    let task = tokio::spawn(async move {
+        axum::serve(listener, app)
+            .with_graceful_shutdown(async {
+                let _ = rx.await;
+            })
+            .await
+    });
+    tracing::info!(%addr, "review pages listening");
+    Ok(RunningReview {
+        addr,
+        shutdown: Some(tx),
+        task,
+    })
+}
+
+/// Makes sure the demo reviewer exists and is assigned to `study_id`, with a
+/// fresh random password (any earlier one stops working and its sessions
+/// end). Returns (name, password) for the caller to print once.
+pub fn ensure_demo_reviewer(db_path: &Path, study_id: &str) -> Result<(String, String)> {
+    let mut store = Store::open(db_path)?;
+    let password = accounts::generate_password();
+    if accounts::reviewer_exists(&store, DEMO_REVIEWER)? {
+        accounts::set_password(&mut store, DEMO_REVIEWER, &password)?;
+    } else {
+        accounts::add_reviewer(&mut store, DEMO_REVIEWER, &password, now_ms())?;
+    }
+    accounts::assign(&mut store, DEMO_REVIEWER, study_id)?;
+    Ok((DEMO_REVIEWER.to_owned(), password))
+}

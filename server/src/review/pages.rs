@@ -1,0 +1,645 @@
+//! The review pages: login, studies, study overview, flag queue and one flag.
+
+use std::fmt::Write;
+
+use chrono::NaiveDate;
+
+use super::accounts::Session;
+use super::charts::{ConvergenceChart, SeriesChart, fmt_num, marker, palette};
+use super::db::{FlagRecord, QueueEntry, QueueFilter, ReviewAction, ReviewStatus, StudyOverview};
+use super::html::{esc, page};
+use crate::packets::{DayStatus, FlagLevel, SignalWindow};
+use crate::presentation::{label_of, plain_prior, unit_of};
+
+/// A UTC timestamp for display.
+pub fn utc(ms: i64) -> String {
+    chrono::DateTime::from_timestamp_millis(ms).map_or_else(
+        || "–".into(),
+        |t| t.format("%Y-%m-%d %H:%M UTC").to_string(),
+    )
+}
+
+fn level_badge(level: FlagLevel) -> String {
+    let (class, text) = match level {
+        FlagLevel::Alert => ("level-alert", "Alert"),
+        FlagLevel::Watch => ("level-watch", "Watch"),
+    };
+    format!(r#"<span class="badge {class}">{text}</span>"#)
+}
+
+fn status_badge(status: ReviewStatus) -> String {
+    let text = match status {
+        ReviewStatus::New => "New",
+        ReviewStatus::Acknowledged => "Acknowledged",
+        ReviewStatus::Dismissed => "Dismissed",
+        ReviewStatus::Escalated => "Escalated",
+    };
+    format!(
+        r#"<span class="badge status-{}">{text}</span>"#,
+        status.as_str()
+    )
+}
+
+fn signal_name(signal: Option<&str>) -> String {
+    signal.map_or_else(|| "Several signals".into(), label_of)
+}
+
+pub fn login(error: Option<&str>) -> String {
+    let mut body = String::new();
+    if let Some(e) = error {
+        let _ = write!(body, r#"<p class="error" role="alert">{}</p>"#, esc(e));
+    }
+    body.push_str(
+        r#"<form method="post" action="/login" class="panel login">
+<p><label for="name">Reviewer name</label><input type="text" id="name" name="name" autocomplete="username" required autofocus></p>
+<p><label for="password">Password</label><input type="password" id="password" name="password" autocomplete="current-password" required></p>
+<p><button type="submit">Sign in</button></p>
+</form>"#,
+    );
+    page("Sign in", None, &[], &body)
+}
+
+pub fn studies(session: &Session, titles: &[(String, String)]) -> String {
+    let mut body = String::new();
+    if titles.is_empty() {
+        body.push_str(r#"<p>You are not assigned to any study yet. An administrator assigns reviewers with <code>plimsoll-aggregator reviewer assign</code>.</p>"#);
+    } else {
+        body.push_str("<p>Studies you are assigned to:</p><ul>");
+        for (id, title) in titles {
+            let _ = write!(
+                body,
+                r#"<li><a href="/study/{id}">{}</a> <span class="muted">({})</span> — <a href="/study/{id}/flags">flag queue</a></li>"#,
+                esc(title),
+                esc(id),
+                id = esc(id)
+            );
+        }
+        body.push_str("</ul>");
+    }
+    page("Your studies", Some(session), &[], &body)
+}
+
+pub fn overview(session: &Session, o: &StudyOverview) -> String {
+    let id = &o.config.study_id;
+    let latest = o.priors.last();
+    let mut body = String::new();
+    let _ = write!(
+        body,
+        r#"<p class="muted">Study <code>{}</code>. <a href="/study/{}/flags">Open the flag queue</a> ({} flags, {} not yet reviewed).</p>
+<dl class="facts">
+<div><dt>Participants enrolled</dt><dd>{}</dd></div>
+<div><dt>Sharing flags (consented)</dt><dd>{}</dd></div>
+<div><dt>Rounds run</dt><dd>{} of {}</dd></div>
+<div><dt>Shared prior version</dt><dd>{}</dd></div>
+</dl>"#,
+        esc(id),
+        esc(id),
+        o.flags_total,
+        o.flags_new,
+        o.devices_enrolled,
+        o.devices_consenting,
+        o.rounds_completed,
+        o.config.rounds,
+        latest.map_or(0, |p| p.version)
+    );
+    body.push_str(r#"<h2>Shared prior, in plain units</h2>
+<p class="muted">What the study learned about the population, without any participant's data leaving their device: the typical level, how much people differ from each other, and how much one person's days vary.</p>
+<table><caption>Shared prior per signal (latest version)</caption>
+<thead><tr><th scope="col">Signal</th><th scope="col" class="num">Population mean</th><th scope="col" class="num">Between-person SD</th><th scope="col" class="num">Slow-trend SD</th><th scope="col" class="num">Trend length</th><th scope="col" class="num">Weekly rhythm SD</th><th scope="col" class="num">Day-to-day SD</th></tr></thead><tbody>"#);
+    for layout in &o.config.signals {
+        let values = latest
+            .and_then(|p| p.params.iter().find(|s| s.signal == layout.signal))
+            .map(|p| p.values.as_slice())
+            .unwrap_or(&layout.initial);
+        let plain = plain_prior(layout, values);
+        let unit = unit_of(&layout.signal);
+        let dec = super::charts::decimals_for(layout.reference_scale * 4.0);
+        let v = |x: Option<f64>, unit: &str| {
+            x.map_or_else(|| "–".into(), |x| format!("{} {unit}", fmt_num(x, dec)))
+        };
+        let _ = write!(
+            body,
+            r#"<tr><th scope="row">{}</th><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td></tr>"#,
+            esc(&label_of(&layout.signal)),
+            v(plain.population_mean, unit),
+            v(plain.between_sd, unit),
+            v(plain.trend_sd, unit),
+            plain
+                .trend_len_days
+                .map_or_else(|| "–".into(), |d| format!("{d:.1} days")),
+            v(plain.weekly_sd, unit),
+            v(plain.noise_sd, unit),
+        );
+    }
+    body.push_str("</tbody></table>");
+
+    body.push_str("<h2>Convergence of federated training</h2>");
+    let signals: Vec<String> = o.config.signals.iter().map(|s| s.signal.clone()).collect();
+    let rounds: Vec<(u64, Vec<Option<f64>>)> = o
+        .priors
+        .iter()
+        .filter(|p| p.round_id > 0)
+        .map(|p| {
+            let per_signal = signals
+                .iter()
+                .map(|s| {
+                    p.contributions
+                        .iter()
+                        .find(|c| &c.signal == s)
+                        .map(|c| c.mean_local_loss)
+                })
+                .collect();
+            (p.round_id, per_signal)
+        })
+        .collect();
+    if rounds.is_empty() {
+        body.push_str("<p>No round has closed yet.</p>");
+    } else {
+        body.push_str(r#"<p class="muted">Each point is the pooled objective (average negative log-likelihood per day, across the devices that took part) of the prior a round started from. Lines that flatten mean the shared prior has settled.</p><figure>"#);
+        body.push_str(
+            &ConvergenceChart {
+                id: "convergence",
+                signals: &signals,
+                rounds: &rounds,
+            }
+            .svg(),
+        );
+        body.push_str(r#"<ul class="legend" aria-hidden="true">"#);
+        for (i, s) in signals.iter().enumerate() {
+            let colour = palette::SERIES[i % palette::SERIES.len()];
+            let _ = write!(
+                body,
+                r#"<li><svg width="14" height="14" viewBox="0 0 14 14">{}</svg>{}</li>"#,
+                marker(i, 7.0, 7.0, colour),
+                esc(&label_of(s))
+            );
+        }
+        body.push_str("</ul><details><summary>Convergence as a table</summary><table><caption>Pooled objective per round (nats/day)</caption><thead><tr><th scope=\"col\">Round</th>");
+        for s in &signals {
+            let _ = write!(
+                body,
+                r#"<th scope="col" class="num">{}</th>"#,
+                esc(&label_of(s))
+            );
+        }
+        body.push_str("</tr></thead><tbody>");
+        for (r, values) in &rounds {
+            let _ = write!(body, r#"<tr><th scope="row">{r}</th>"#);
+            for v in values {
+                let _ = write!(
+                    body,
+                    r#"<td class="num">{}</td>"#,
+                    v.map_or_else(|| "–".into(), |v| format!("{v:.4}"))
+                );
+            }
+            body.push_str("</tr>");
+        }
+        body.push_str("</tbody></table></details></figure>");
+    }
+    page(
+        &o.config.title,
+        Some(session),
+        &[("Studies", "/"), (&o.config.title, "")],
+        &body,
+    )
+}
+
+fn option(value: &str, label: &str, selected: bool) -> String {
+    format!(
+        r#"<option value="{}"{}>{}</option>"#,
+        esc(value),
+        if selected { " selected" } else { "" },
+        esc(label)
+    )
+}
+
+pub fn queue(
+    session: &Session,
+    study_id: &str,
+    title: &str,
+    entries: &[QueueEntry],
+    filter: &QueueFilter,
+    signals: &[String],
+) -> String {
+    let mut body = String::new();
+    let _ = write!(
+        body,
+        r#"<form method="get" action="/study/{}/flags" class="filters" aria-label="Filter flags">
+<div><label for="f-signal">Signal</label><select id="f-signal" name="signal">{}"#,
+        esc(study_id),
+        option("", "All signals", filter.signal.is_none())
+    );
+    for s in signals {
+        body.push_str(&option(
+            s,
+            &label_of(s),
+            filter.signal.as_deref() == Some(s),
+        ));
+    }
+    let _ = write!(
+        body,
+        r#"</select></div>
+<div><label for="f-level">Level</label><select id="f-level" name="level">{}{}{}</select></div>
+<div><label for="f-status">Status</label><select id="f-status" name="status">{}"#,
+        option("", "All levels", filter.level.is_none()),
+        option("alert", "Alert", filter.level == Some(FlagLevel::Alert)),
+        option("watch", "Watch", filter.level == Some(FlagLevel::Watch)),
+        option("", "Any status", filter.status.is_none()),
+    );
+    for s in ReviewStatus::ALL {
+        let label = match s {
+            ReviewStatus::New => "New (not reviewed)",
+            ReviewStatus::Acknowledged => "Acknowledged",
+            ReviewStatus::Dismissed => "Dismissed",
+            ReviewStatus::Escalated => "Escalated",
+        };
+        body.push_str(&option(s.as_str(), label, filter.status == Some(s)));
+    }
+    let _ = write!(
+        body,
+        r#"</select></div>
+<div><button type="submit" class="secondary">Apply filters</button></div>
+</form>
+<p class="muted" role="status">{} flag{} shown, alerts first, newest first.</p>"#,
+        entries.len(),
+        if entries.len() == 1 { "" } else { "s" }
+    );
+    if entries.is_empty() {
+        body.push_str("<p>No flags match these filters.</p>");
+    } else {
+        body.push_str(r#"<table id="queue"><caption>Flags</caption><thead><tr><th scope="col">Level</th><th scope="col">Date</th><th scope="col">Participant</th><th scope="col">Signal</th><th scope="col">What was seen</th><th scope="col" class="num">Score</th><th scope="col">Status</th></tr></thead><tbody>"#);
+        for e in entries {
+            let _ = write!(
+                body,
+                r#"<tr><td>{}</td><td><a href="/flag/{}">{}</a></td><td>{}</td><td>{}</td><td>{}</td><td class="num">{}</td><td>{}</td></tr>"#,
+                level_badge(e.level),
+                e.packet_id,
+                esc(&e.date),
+                esc(&e.participant),
+                esc(&signal_name(e.signal.as_deref())),
+                esc(e.kind.label()),
+                fmt_num(e.score, 2),
+                status_badge(e.status)
+            );
+        }
+        body.push_str("</tbody></table>");
+    }
+    let heading = format!("Flag queue — {title}");
+    page(
+        &heading,
+        Some(session),
+        &[
+            ("Studies", "/"),
+            (title, &format!("/study/{study_id}")),
+            ("Flag queue", ""),
+        ],
+        &body,
+    )
+}
+
+fn series_legend(with_flag: bool) -> String {
+    let mut out = String::from(r#"<ul class="legend" aria-hidden="true">"#);
+    let item = |swatch: &str, text: &str| {
+        format!(r#"<li><svg width="26" height="14" viewBox="0 0 26 14">{swatch}</svg>{text}</li>"#)
+    };
+    out.push_str(&item(
+        &format!(
+            r#"<circle cx="13" cy="7" r="3.2" fill="{}"/>"#,
+            palette::BLACK
+        ),
+        "measured value",
+    ));
+    out.push_str(&item(
+        &format!(
+            r##"<circle cx="13" cy="7" r="3.2" fill="#fff" stroke="{}" stroke-width="1.2"/>"##,
+            palette::BLACK
+        ),
+        "measured, baseline still building",
+    ));
+    if with_flag {
+        out.push_str(&item(
+            &format!(
+                r#"<path d="M13 1 L19 7 L13 13 L7 7 Z" fill="{}" stroke="{}"/>"#,
+                palette::VERMILLION,
+                palette::BLACK
+            ),
+            "flagged day",
+        ));
+        out.push_str(&item(
+            &format!(
+                r#"<rect x="1" y="1" width="24" height="12" fill="{}" fill-opacity="0.25"/>"#,
+                palette::ORANGE
+            ),
+            "flagged stretch",
+        ));
+    }
+    out.push_str(&item(
+        &format!(
+            r#"<line x1="1" x2="25" y1="7" y2="7" stroke="{}" stroke-width="2"/>"#,
+            palette::BLUE
+        ),
+        "expected (personal)",
+    ));
+    out.push_str(&item(
+        &format!(
+            r#"<rect x="1" y="2" width="24" height="10" fill="{}" fill-opacity="0.6"/>"#,
+            palette::BLUE
+        ),
+        "personal 50% band",
+    ));
+    out.push_str(&item(
+        &format!(
+            r#"<rect x="1" y="2" width="24" height="10" fill="{}" fill-opacity="0.35"/>"#,
+            palette::SKY_BLUE
+        ),
+        "personal 95% band",
+    ));
+    out.push_str(&item(
+        &format!(
+            r#"<line x1="1" x2="25" y1="7" y2="7" stroke="{}" stroke-width="1.6" stroke-dasharray="7 4"/>"#,
+            palette::REDDISH_PURPLE
+        ),
+        "population-only 95% band",
+    ));
+    out.push_str(&item(
+        &format!(
+            r#"<rect x="9" y="4" width="8" height="6" fill="{}"/>"#,
+            palette::GREY
+        ),
+        "no measurement that day",
+    ));
+    out.push_str("</ul>");
+    out
+}
+
+fn data_table(chart: &SeriesChart<'_>) -> String {
+    let dec = chart.decimals();
+    let u = chart.unit;
+    let mut out = format!(
+        r#"<details><summary>{} as a table</summary><table><caption>{} ({}), every day of the window</caption><thead><tr><th scope="col">Date</th><th scope="col" class="num">Measured</th><th scope="col" class="num">Expected</th><th scope="col" class="num">50% band</th><th scope="col" class="num">95% band</th><th scope="col" class="num">z</th><th scope="col">Day</th></tr></thead><tbody>"#,
+        esc(chart.title),
+        esc(chart.title),
+        esc(u)
+    );
+    let mut day = chart.window_start;
+    while day <= chart.window_end {
+        match chart.window.days.iter().find(|d| d.date == day) {
+            Some(d) => {
+                let status = match d.status {
+                    DayStatus::BuildingBaseline => "baseline building",
+                    DayStatus::Normal => "scored",
+                    DayStatus::Flagged => "flagged",
+                };
+                let _ = write!(
+                    out,
+                    r#"<tr><th scope="row">{day}</th><td class="num">{}</td><td class="num">{}</td><td class="num">{} – {}</td><td class="num">{} – {}</td><td class="num">{:.2}</td><td>{status}{}</td></tr>"#,
+                    fmt_num(d.observed, dec),
+                    fmt_num(d.mean, dec),
+                    fmt_num(d.lo50, dec),
+                    fmt_num(d.hi50, dec),
+                    fmt_num(d.lo95, dec),
+                    fmt_num(d.hi95, dec),
+                    d.z,
+                    if d.conditioned {
+                        ""
+                    } else {
+                        ", held out of baseline"
+                    }
+                );
+            }
+            None => {
+                let _ = write!(
+                    out,
+                    r#"<tr><th scope="row">{day}</th><td colspan="6" class="muted">no measurement</td></tr>"#
+                );
+            }
+        }
+        day += chrono::Duration::days(1);
+    }
+    out.push_str("</tbody></table></details>");
+    out
+}
+
+fn chart_block(
+    id: &str,
+    window: &SignalWindow,
+    start: NaiveDate,
+    end: NaiveDate,
+    flagged: Option<(NaiveDate, NaiveDate)>,
+    height: f64,
+) -> String {
+    let title = label_of(&window.signal);
+    let chart = SeriesChart {
+        id,
+        title: &title,
+        unit: unit_of(&window.signal),
+        window,
+        window_start: start,
+        window_end: end,
+        flagged,
+        height,
+    };
+    let mut out = String::from("<figure>");
+    out.push_str(&chart.svg());
+    let _ = write!(
+        out,
+        "<figcaption>{}</figcaption>{}{}</figure>",
+        esc(&chart.description()),
+        series_legend(flagged.is_some()),
+        data_table(&chart)
+    );
+    out
+}
+
+/// The numbers behind the reason, read from the flag day's row.
+fn reason_numbers(record: &FlagRecord) -> String {
+    let p = &record.packet;
+    let mut out = format!(
+        "Detector score {:.2}; flagged stretch {} to {}",
+        p.score, p.first_day, p.last_day
+    );
+    let flagged_window = p
+        .signal
+        .as_ref()
+        .and_then(|s| p.signals.iter().find(|w| &w.signal == s));
+    if let Some(w) = flagged_window
+        && let Some(d) = w.days.iter().find(|d| d.date == p.date)
+    {
+        let unit = unit_of(&w.signal);
+        let dec = super::charts::decimals_for(w.population.hi95 - w.population.lo95);
+        let _ = write!(
+            out,
+            "; on {}: measured {} {unit}, expected {} {unit} (50% band {}–{}, 95% band {}–{}), z = {:.2}, two-sided p {}",
+            d.date,
+            fmt_num(d.observed, dec),
+            fmt_num(d.mean, dec),
+            fmt_num(d.lo50, dec),
+            fmt_num(d.hi50, dec),
+            fmt_num(d.lo95, dec),
+            fmt_num(d.hi95, dec),
+            d.z,
+            match super::charts::fmt_p(d.tail_p) {
+                p if p.starts_with('<') => p,
+                p => format!("= {p}"),
+            }
+        );
+    }
+    out.push('.');
+    out
+}
+
+pub fn flag(
+    session: &Session,
+    study_title: &str,
+    record: &FlagRecord,
+    related: &[QueueEntry],
+    message: Option<(&str, bool)>,
+) -> String {
+    let p = &record.packet;
+    let mut body = String::new();
+    if let Some((text, ok)) = message {
+        let _ = write!(
+            body,
+            r#"<p class="{}" role="{}">{}</p>"#,
+            if ok { "notice" } else { "error" },
+            if ok { "status" } else { "alert" },
+            esc(text)
+        );
+    }
+    let _ = write!(
+        body,
+        r#"<p>{} {} <span class="muted">·</span> {} <span class="muted">· participant</span> <strong>{}</strong> <span class="muted">· flag day</span> <strong>{}</strong> <span class="muted">· received {}</span></p>
+<h2>Why this was flagged</h2>
+<p class="reason">{}</p>
+<p class="muted">{}</p>"#,
+        level_badge(p.level),
+        status_badge(record.status()),
+        esc(p.kind.label()),
+        esc(&record.participant),
+        p.date,
+        utc(record.received_ms),
+        esc(&p.reason),
+        esc(&reason_numbers(record)),
+    );
+    let flagged_span = Some((p.first_day, p.last_day));
+    let (main, others): (Vec<&SignalWindow>, Vec<&SignalWindow>) = match &p.signal {
+        Some(s) => p.signals.iter().partition(|w| &w.signal == s),
+        None => (p.signals.iter().collect(), Vec::new()),
+    };
+    let _ = write!(
+        body,
+        "<h2>Trend over the window {} to {} ({} days)</h2>",
+        p.window_start,
+        p.window_end,
+        p.window_days()
+    );
+    for (i, w) in main.iter().enumerate() {
+        if main.len() > 1 {
+            let _ = write!(body, "<h3>{}</h3>", esc(&label_of(&w.signal)));
+        }
+        body.push_str(&chart_block(
+            &format!("chart-main-{i}"),
+            w,
+            p.window_start,
+            p.window_end,
+            flagged_span,
+            300.0,
+        ));
+    }
+    if !others.is_empty() {
+        body.push_str("<h2>The participant's other signals, same window</h2>");
+        for (i, w) in others.iter().enumerate() {
+            let _ = write!(body, "<h3>{}</h3>", esc(&label_of(&w.signal)));
+            body.push_str(&chart_block(
+                &format!("chart-other-{i}"),
+                w,
+                p.window_start,
+                p.window_end,
+                flagged_span,
+                200.0,
+            ));
+        }
+    }
+    if !related.is_empty() {
+        body.push_str("<h2>Other flags for this participant in this window</h2><ul>");
+        for e in related {
+            let _ = write!(
+                body,
+                r#"<li><a href="/flag/{}">{} — {}</a> {} {}</li>"#,
+                e.packet_id,
+                esc(&e.date),
+                esc(&signal_name(e.signal.as_deref())),
+                level_badge(e.level),
+                status_badge(e.status)
+            );
+        }
+        body.push_str("</ul>");
+    }
+
+    let _ = write!(
+        body,
+        r#"<h2 id="review">Review</h2>
+<form method="post" action="/flag/{}/action" class="panel" aria-labelledby="review">
+<input type="hidden" name="csrf" value="{}">
+<label for="note">Note (needed to dismiss or escalate; kept in the audit trail)</label>
+<textarea id="note" name="note" maxlength="2000"></textarea>
+<div class="actions">
+<button type="submit" name="action" value="acknowledge">Acknowledge</button>
+<button type="submit" name="action" value="dismiss" class="secondary">Dismiss</button>
+<button type="submit" name="action" value="escalate" class="secondary">Escalate</button>
+</div>
+</form>
+<h2>History</h2>"#,
+        record.packet_id,
+        esc(&session.csrf_token)
+    );
+    if record.history.is_empty() {
+        body.push_str(r#"<p id="history">No review action yet: status <strong>new</strong>.</p>"#);
+    } else {
+        body.push_str(r#"<table id="history"><caption>Audit trail, oldest first; the latest action is the flag's status</caption><thead><tr><th scope="col">When</th><th scope="col">Reviewer</th><th scope="col">Action</th><th scope="col">Note</th></tr></thead><tbody>"#);
+        for a in &record.history {
+            let action = match a.action {
+                ReviewAction::Acknowledge => "Acknowledged",
+                ReviewAction::Dismiss => "Dismissed",
+                ReviewAction::Escalate => "Escalated",
+            };
+            let _ = write!(
+                body,
+                "<tr><td>{}</td><td>{}</td><td>{action}</td><td>{}</td></tr>",
+                utc(a.at_ms),
+                esc(&a.reviewer),
+                esc(&a.note)
+            );
+        }
+        body.push_str("</tbody></table>");
+    }
+    let title = format!(
+        "{} — {} on {}",
+        signal_name(p.signal.as_deref()),
+        record.participant,
+        p.date
+    );
+    page(
+        &title,
+        Some(session),
+        &[
+            ("Studies", "/"),
+            (study_title, &format!("/study/{}", record.study_id)),
+            ("Flag queue", &format!("/study/{}/flags", record.study_id)),
+            (&format!("Flag {}", record.packet_id), ""),
+        ],
+        &body,
+    )
+}
+
+pub fn error(session: Option<&Session>, title: &str, message: &str) -> String {
+    page(
+        title,
+        session,
+        &[("Studies", "/")],
+        &format!(
+            r#"<p role="alert">{}</p><p><a href="/">Back to your studies</a></p>"#,
+            esc(message)
+        ),
+    )
+}
