@@ -22,6 +22,9 @@ use tokio::sync::Semaphore;
 use tonic::transport::Channel;
 
 use crate::cohort::ParticipantSeries;
+use crate::device_report::detect_and_write;
+use crate::flags::{FlagConfig, FlagLevel};
+use crate::packets::{DayRow, FlagFacts, build_packet};
 use crate::personal::{DayBand, posterior_bands, standardised, write_posterior_csv};
 use crate::signal::Signal;
 use crate::training::{LocalSeries, LocalUpdate, train_local};
@@ -138,6 +141,12 @@ pub struct DeviceReport {
     pub prior_version: u32,
     pub bands: Vec<(Signal, Vec<DayBand>)>,
     pub posterior_csv: PathBuf,
+    /// Flags raised on the device (all levels).
+    pub flags: usize,
+    /// Of those, Alerts.
+    pub alerts: usize,
+    /// Flag packets sent to reviewers (0 without consent).
+    pub packets_sent: usize,
 }
 
 /// Runs one device to the end of the study, enrolled without consent to
@@ -162,7 +171,7 @@ pub async fn run_device_with(
     cpu: Arc<Semaphore>,
 ) -> anyhow::Result<DeviceReport> {
     let participant = series.participant.clone();
-    let mut client = AggregatorClient::new(channel);
+    let mut client = AggregatorClient::new(channel.clone());
     let origin = *series
         .dates
         .first()
@@ -249,22 +258,41 @@ pub async fn run_device_with(
     let priors = wire::prior_from_pb(&prior).context("published prior")?;
     let permit = cpu.clone().acquire_owned().await?;
     let out_dir = opts.out_dir.clone();
-    let (bands, posterior_csv) = tokio::task::spawn_blocking(move || -> anyhow::Result<_> {
-        let _permit = permit;
-        let mut bands = Vec::new();
-        for p in priors.iter() {
-            if series.values.contains_key(&p.signal) {
-                bands.push((p.signal, posterior_bands(&series, p)?));
+    let packet_priors = priors.clone();
+    let (bands, posterior_csv, detection) =
+        tokio::task::spawn_blocking(move || -> anyhow::Result<_> {
+            let _permit = permit;
+            let mut bands = Vec::new();
+            for p in priors.iter() {
+                if series.values.contains_key(&p.signal) {
+                    bands.push((p.signal, posterior_bands(&series, p)?));
+                }
             }
+            std::fs::create_dir_all(&out_dir)
+                .with_context(|| format!("creating {}", out_dir.display()))?;
+            let path = out_dir.join("posterior.csv");
+            write_posterior_csv(&path, &bands)
+                .with_context(|| format!("writing {}", path.display()))?;
+            let detection = detect_and_write(&out_dir, &series, &priors, &FlagConfig::default())?;
+            Ok((bands, path, detection))
+        })
+        .await??;
+    // With consent, one packet per Alert (the alarm level) goes to the
+    // reviewers; without it `FlagSender::new` gives no sender and nothing
+    // leaves the device.
+    let mut packets_sent = 0;
+    if let Some(mut sender) = FlagSender::new(channel, &opts.study_id, device_id, sharing) {
+        let rows: Vec<DayRow> = detection.days.iter().map(DayRow::from).collect();
+        for flag in detection
+            .flags
+            .iter()
+            .filter(|f| f.level == FlagLevel::Alert)
+        {
+            let packet = build_packet(&FlagFacts::from(flag), &rows, &packet_priors)?;
+            sender.send(&packet).await?;
+            packets_sent += 1;
         }
-        std::fs::create_dir_all(&out_dir)
-            .with_context(|| format!("creating {}", out_dir.display()))?;
-        let path = out_dir.join("posterior.csv");
-        write_posterior_csv(&path, &bands)
-            .with_context(|| format!("writing {}", path.display()))?;
-        Ok((bands, path))
-    })
-    .await??;
+    }
     Ok(DeviceReport {
         participant,
         device_id,
@@ -272,6 +300,13 @@ pub async fn run_device_with(
         prior_version,
         bands,
         posterior_csv,
+        flags: detection.flags.len(),
+        alerts: detection
+            .flags
+            .iter()
+            .filter(|f| f.level == FlagLevel::Alert)
+            .count(),
+        packets_sent,
     })
 }
 

@@ -13,7 +13,7 @@ use indicatif::{ProgressBar, ProgressStyle};
 use plimsoll_server::{Coordinator, LocalTraining, Optimizer, SignalLayout, StudyConfig};
 use tokio::sync::Semaphore;
 
-use crate::client::{DeviceOptions, DeviceReport, connect_lazy, run_device};
+use crate::client::{DeviceOptions, DeviceReport, FlagSharing, connect_lazy, run_device_with};
 use crate::cohort::{self, BadRowPolicy, Cohort, Scenario, SimulateOptions};
 use crate::prior::{PARAM_NAMES, PriorParams};
 use crate::signal::Signal;
@@ -29,6 +29,10 @@ pub struct DemoOptions {
     pub local_steps: u32,
     pub learning_rate: f64,
     pub window_days: u32,
+    /// Keep the review page serving after the report until interrupted.
+    pub serve: bool,
+    /// Loopback port of the review page (0 = any free port).
+    pub review_port: u16,
 }
 
 /// Study layouts for `signals`, starting from [`PriorParams::initial`].
@@ -77,6 +81,26 @@ pub async fn run_federated(
     devices_dir: &Path,
     progress: Option<&ProgressBar>,
 ) -> anyhow::Result<FederatedRun> {
+    run_federated_with(
+        cohort,
+        config,
+        db_path,
+        devices_dir,
+        FlagSharing::Withheld,
+        progress,
+    )
+    .await
+}
+
+/// [`run_federated`] with every participant's flag-sharing choice set to `sharing`.
+pub async fn run_federated_with(
+    cohort: &Cohort,
+    config: StudyConfig,
+    db_path: &Path,
+    devices_dir: &Path,
+    sharing: FlagSharing,
+    progress: Option<&ProgressBar>,
+) -> anyhow::Result<FederatedRun> {
     let started = Instant::now();
     let coordinator = Arc::new(
         Coordinator::open(db_path).with_context(|| format!("opening {}", db_path.display()))?,
@@ -98,10 +122,11 @@ pub async fn run_federated(
             wait_ms: 5_000,
             seed: 0x5eed_0000 + i as u64,
         };
-        tasks.spawn(run_device(
+        tasks.spawn(run_device_with(
             channel.clone(),
             series.clone(),
             opts,
+            sharing,
             cpu.clone(),
         ));
     }
@@ -194,7 +219,16 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
             .expect("static template"),
     );
     let devices_dir = opts.out_dir.join("devices");
-    let run = run_federated(&cohort, config, &db_path, &devices_dir, Some(&bar)).await?;
+    // Every demo participant consented to share flag packets with reviewers.
+    let run = run_federated_with(
+        &cohort,
+        config,
+        &db_path,
+        &devices_dir,
+        FlagSharing::Consented,
+        Some(&bar),
+    )
+    .await?;
     bar.finish();
 
     let mut out = std::io::stdout().lock();
@@ -267,11 +301,41 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     )?;
     writeln!(
         out,
+        "  per-device flags and report:    {}/<participant>/{{flags.csv,flags.json,prospective.csv,report.html}}",
+        devices_dir.display()
+    )?;
+    let flags: usize = run.reports.iter().map(|r| r.flags).sum();
+    let alerts: usize = run.reports.iter().map(|r| r.alerts).sum();
+    let sent: usize = run.reports.iter().map(|r| r.packets_sent).sum();
+    writeln!(
+        out,
+        "Flags: {flags} raised on devices ({alerts} Alerts); {sent} flag packets sent for review (participants consented)."
+    )?;
+    writeln!(
+        out,
         "Devices: {}; federated training took {:.1} s; whole demo {:.1} s.",
         run.reports.len(),
         run.wall.as_secs_f64(),
         t0.elapsed().as_secs_f64()
     )?;
+    drop(out);
+
+    let (name, password) = plimsoll_server::ensure_demo_reviewer(&db_path, "demo")?;
+    let listener = tokio::net::TcpListener::bind(("127.0.0.1", opts.review_port)).await?;
+    let review = plimsoll_server::serve_review(&db_path, listener).await?;
+    println!();
+    println!("Clinician review page: {}", review.url());
+    println!("  sign in as `{name}` with password `{password}` (a new one each demo run)");
+    println!("  {}", crate::device_report::CAUTION);
+    if opts.serve {
+        println!("Serving the review page until interrupted (Ctrl-C).");
+        tokio::signal::ctrl_c().await?;
+    } else {
+        println!(
+            "(Run the demo with --serve to keep the page open; it closes when the demo exits.)"
+        );
+    }
+    review.shutdown().await?;
     Ok(())
 }
 

@@ -356,12 +356,24 @@ pub fn detect_and_write(
     let write = |name: &str, result: std::io::Result<()>| {
         result.with_context(|| format!("writing {}", out_dir.join(name).display()))
     };
-    write("prospective.csv", write_days_csv(&out_dir.join("prospective.csv"), &detection.days))?;
-    write("flags.csv", write_flags_csv(&out_dir.join("flags.csv"), &detection.flags))?;
-    write("flags.json", write_flags_json(&out_dir.join("flags.json"), &detection.flags))?;
+    write(
+        "prospective.csv",
+        write_days_csv(&out_dir.join("prospective.csv"), &detection.days),
+    )?;
+    write(
+        "flags.csv",
+        write_flags_csv(&out_dir.join("flags.csv"), &detection.flags),
+    )?;
+    write(
+        "flags.json",
+        write_flags_json(&out_dir.join("flags.json"), &detection.flags),
+    )?;
     write(
         "report.html",
-        std::fs::write(out_dir.join("report.html"), render_report_html(&series.participant, &detection)),
+        std::fs::write(
+            out_dir.join("report.html"),
+            render_report_html(&series.participant, &detection),
+        ),
     )?;
     Ok(detection)
 }
@@ -392,21 +404,41 @@ mod tests {
     fn outputs_carry_the_caution_and_need_no_network() {
         let dir = std::env::temp_dir().join(format!("plimsoll-report-{}", std::process::id()));
         let priors = [PriorParams::initial(Signal::RestingHr)];
-        let detection = detect_and_write(&dir, &stepped_series(), &priors, &FlagConfig::default()).unwrap();
+        let detection =
+            detect_and_write(&dir, &stepped_series(), &priors, &FlagConfig::default()).unwrap();
         assert!(!detection.flags.is_empty(), "a 15 bpm step must be flagged");
         let html = std::fs::read_to_string(dir.join("report.html")).unwrap();
         assert!(html.contains("not a diagnosis"));
         assert!(html.contains("qualified clinician"));
         assert!(html.contains("Local protocols and regulations"));
         // Self-contained: no external resource of any kind.
-        for needle in ["http://", "https://", "<script src", "<link", "@import", "url("] {
-            assert!(!html.contains(needle), "report.html must not reference `{needle}`");
+        for needle in [
+            "http://",
+            "https://",
+            "<script src",
+            "<link",
+            "@import",
+            "url(",
+        ] {
+            assert!(
+                !html.contains(needle),
+                "report.html must not reference `{needle}`"
+            );
         }
         assert!(html.contains("<svg"));
         let json: serde_json::Value =
-            serde_json::from_str(&std::fs::read_to_string(dir.join("flags.json")).unwrap()).unwrap();
-        assert_eq!(json["flags"].as_array().unwrap().len(), detection.flags.len());
-        assert!(json["caution"].as_str().unwrap().contains("not a diagnosis"));
+            serde_json::from_str(&std::fs::read_to_string(dir.join("flags.json")).unwrap())
+                .unwrap();
+        assert_eq!(
+            json["flags"].as_array().unwrap().len(),
+            detection.flags.len()
+        );
+        assert!(
+            json["caution"]
+                .as_str()
+                .unwrap()
+                .contains("not a diagnosis")
+        );
         let csv = std::fs::read_to_string(dir.join("flags.csv")).unwrap();
         assert_eq!(csv.lines().count(), detection.flags.len() + 1);
         let days = std::fs::read_to_string(dir.join("prospective.csv")).unwrap();

@@ -3,6 +3,8 @@
 //! stated false-alarm rate; the cold start; and baseline protection during alarms.
 //!
 //! Entry point: [`detect`]. Everything here runs on the device, on one participant's data.
+//! [`detect_with`] runs the same detectors and rules on any other one-step-ahead
+//! [`Predictor`] (the evaluation's comparison methods); only the predictive differs.
 //!
 //! # Residuals
 //! For each signal and observed day, [`crate::prospective::DailyFilter`] gives the one-step-ahead
@@ -96,6 +98,7 @@ use statrs::distribution::{ChiSquared, ContinuousCDF, Normal};
 
 use crate::cohort::ParticipantSeries;
 use crate::prior::PriorParams;
+pub use crate::prospective::Predictor;
 use crate::prospective::{
     DailyFilter, ProspectiveError, Result, StateSpacePrior, serialize_signal, tail_probability,
 };
@@ -552,12 +555,12 @@ struct Withheld {
     record: usize,
 }
 
-/// Per-signal state of [`detect`].
+/// Per-signal state of [`detect_with`].
 #[derive(Debug)]
-struct Track<'a> {
+struct Track<'a, P> {
     signal: Signal,
     column: &'a [Option<f64>],
-    filter: DailyFilter,
+    filter: P,
     n_observed: usize,
     cusum: TabularCusum,
     excursions: [Excursion; 2],
@@ -565,7 +568,7 @@ struct Track<'a> {
     withheld: Vec<Withheld>,
 }
 
-impl Track<'_> {
+impl<P> Track<'_, P> {
     fn restart_cusum(&mut self) {
         self.cusum.reset();
         self.excursions = [Excursion::default(); 2];
@@ -584,8 +587,9 @@ struct Scored {
     flagged: bool,
 }
 
-/// Scores every observed day of every signal of `series` prospectively and raises flags
-/// (module docs for every rule).
+/// Scores every observed day of every signal of `series` prospectively under the shared prior
+/// (the exact filter [`DailyFilter`]) and raises flags (module docs for every rule). This is
+/// [`detect_with`] with one [`DailyFilter`] per signal.
 ///
 /// Signals analysed: those with at least one value in `series` and a prior in `priors`
 /// (signals without a prior are skipped). Day indices count from the first date of the series.
@@ -606,14 +610,61 @@ pub fn detect(
             return Err(ProspectiveError::DuplicatePrior(p.signal));
         }
     }
+    let mut filters = Vec::with_capacity(priors.len());
+    for (&signal, column) in &series.values {
+        let Some(prior) = priors.iter().find(|p| p.signal == signal) else {
+            continue;
+        };
+        if column.len() == series.dates.len() && column.iter().all(Option::is_none) {
+            continue;
+        }
+        let model = StateSpacePrior::new(prior).map_err(|e| ProspectiveError::InSeries {
+            participant: series.participant.clone(),
+            signal,
+            source: Box::new(e),
+        })?;
+        filters.push((signal, DailyFilter::new(&model)));
+    }
+    detect_with(series, filters, cfg)
+}
+
+/// Scores every observed day of every signal of `series` prospectively with the given
+/// predictors, one per signal, and raises flags with exactly the detectors, thresholds, cold
+/// start and baseline-protection rules of [`detect`] (module docs). Only the one-step-ahead
+/// predictive differs between predictors; this is what lets the evaluation compare methods
+/// like for like.
+///
+/// Signals analysed: those with a predictor and at least one value in `series` (predictors of
+/// other signals are dropped). Day indices count from the first date of the series.
+///
+/// # Errors
+/// - [`ProspectiveError::Config`] if `cfg` fails [`FlagConfig::validate`];
+/// - [`ProspectiveError::DuplicatePrior`] if two predictors share a signal;
+/// - [`ProspectiveError::InSeries`] wrapping a column of the wrong length, a non-finite value
+///   or a predictor error, with the participant and signal.
+pub fn detect_with<P: Predictor>(
+    series: &ParticipantSeries,
+    predictors: Vec<(Signal, P)>,
+    cfg: &FlagConfig,
+) -> Result<Detection> {
+    cfg.validate()?;
+    for (i, (signal, _)) in predictors.iter().enumerate() {
+        if predictors[..i].iter().any(|(other, _)| other == signal) {
+            return Err(ProspectiveError::DuplicatePrior(*signal));
+        }
+    }
     let in_series = |signal: Signal, source: ProspectiveError| ProspectiveError::InSeries {
         participant: series.participant.clone(),
         signal,
         source: Box::new(source),
     };
+    let mut predictors: Vec<Option<(Signal, P)>> = predictors.into_iter().map(Some).collect();
     let mut tracks = Vec::new();
     for (&signal, column) in &series.values {
-        let Some(prior) = priors.iter().find(|p| p.signal == signal) else {
+        let Some(slot) = predictors
+            .iter_mut()
+            .find(|p| p.as_ref().is_some_and(|(s, _)| *s == signal))
+        else {
             continue;
         };
         if column.len() != series.dates.len() {
@@ -629,11 +680,11 @@ pub fn detect(
         if column.iter().all(Option::is_none) {
             continue;
         }
-        let model = StateSpacePrior::new(prior).map_err(|e| in_series(signal, e))?;
+        let (_, filter) = slot.take().expect("found above");
         tracks.push(Track {
             signal,
             column,
-            filter: DailyFilter::new(&model),
+            filter,
             n_observed: 0,
             cusum: TabularCusum::new(cfg.cusum_k),
             excursions: [Excursion::default(); 2],
@@ -833,8 +884,8 @@ type CusumFlag = (FlagLevel, CusumSide, f64, Excursion);
 
 /// Advances one signal's CUSUM (or its active alarm) by one day. Returns whether an Alert is
 /// active after today (so today is withheld) and the flag raised today, if any.
-fn step_cusum(
-    track: &mut Track<'_>,
+fn step_cusum<P>(
+    track: &mut Track<'_, P>,
     record: &ProspectiveDay,
     cfg: &FlagConfig,
 ) -> (bool, Option<CusumFlag>) {

@@ -1,4 +1,4 @@
-//! `plimsoll`: the device-side command line (demo, cohort simulation).
+//! `plimsoll`: the device-side command line (demo, cohort simulation, evaluation).
 
 use std::path::PathBuf;
 
@@ -6,6 +6,12 @@ use clap::{Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressStyle};
 use plimsoll_device::cohort::{Scenario, SimulateOptions, SimulationSummary, simulate_to_dir};
 use plimsoll_device::demo::{DemoOptions, run_demo};
+use plimsoll_device::evaluate::command::{EvaluateOptions, run_evaluation};
+use plimsoll_device::evaluate::report::render_table;
+use plimsoll_device::evaluate::run::{
+    DEFAULT_LOCAL_FIT_DAYS, DEFAULT_TARGET_KIND, EvaluationSettings,
+};
+use plimsoll_device::flags::{FalseAlarmTarget, FlagConfig, FlagLevel};
 
 #[derive(Debug, Parser)]
 #[command(
@@ -64,7 +70,78 @@ enum Command {
         /// Window length in days for local steps (0 = full series).
         #[arg(long, default_value_t = 0)]
         window_days: u32,
+        /// Keep serving the clinician review page after the report, until Ctrl-C.
+        #[arg(long)]
+        serve: bool,
+        /// Loopback port for the review page (0 picks a free port).
+        #[arg(long, default_value_t = 8080)]
+        review_port: u16,
     },
+    /// Compare detection methods on a cohort in the shared format (daily.csv, optional
+    /// participants.csv and events.csv): federated prior + personal posterior, the same GP fit
+    /// on each participant alone, one population model, and a rolling z-score. Writes
+    /// evaluation.csv, evaluation.json, evaluation.svg and prior.json (see docs/evaluation.md).
+    Evaluate {
+        /// Cohort folder.
+        cohort: PathBuf,
+        /// Output folder.
+        #[arg(long, default_value = "out/evaluation")]
+        out: PathBuf,
+        /// Use this prior.json instead of learning the prior by federated rounds.
+        #[arg(long)]
+        prior: Option<PathBuf>,
+        /// Federated rounds when learning the prior (all devices per round up to 100, else 100).
+        #[arg(long, default_value_t = 80)]
+        rounds: u32,
+        /// Event kind counted as a detection target (repeatable); alarms inside other events
+        /// are false alarms.
+        #[arg(long = "target-kind", default_value = DEFAULT_TARGET_KIND)]
+        target_kinds: Vec<String>,
+        /// False-alarm budget ALERTS/DAYS the thresholds are calibrated to (default 1/365:
+        /// one false Alert per participant-year across all detectors).
+        #[arg(long, value_parser = parse_budget)]
+        false_alarm_budget: Option<FalseAlarmTarget>,
+        /// Observed days per signal the local-only method fits its hyperparameters on (also
+        /// its cold start).
+        #[arg(long, default_value_t = DEFAULT_LOCAL_FIT_DAYS)]
+        local_fit_days: usize,
+        /// Lowest flag level that counts as an alarm.
+        #[arg(long, value_enum, default_value_t = AlarmLevel::Alert)]
+        alarm_level: AlarmLevel,
+    },
+}
+
+/// `--alarm-level`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+enum AlarmLevel {
+    /// Alert flags only.
+    Alert,
+    /// Watch and Alert flags.
+    Watch,
+}
+
+/// Parses `ALERTS/DAYS`, e.g. `1/365`.
+fn parse_budget(text: &str) -> Result<FalseAlarmTarget, String> {
+    let (a, d) = text
+        .split_once('/')
+        .ok_or_else(|| format!("expected ALERTS/DAYS such as 1/365, got `{text}`"))?;
+    let alerts: f64 = a.trim().parse().map_err(|e| format!("`{a}`: {e}"))?;
+    let per_days: f64 = d.trim().parse().map_err(|e| format!("`{d}`: {e}"))?;
+    let target = FalseAlarmTarget { alerts, per_days };
+    FlagConfig::from_target(target).map_err(|e| e.to_string())?;
+    Ok(target)
+}
+
+/// Arguments of `plimsoll evaluate` after parsing.
+struct EvaluateArgs {
+    cohort: PathBuf,
+    out: PathBuf,
+    prior: Option<PathBuf>,
+    rounds: u32,
+    target_kinds: Vec<String>,
+    false_alarm_budget: Option<FalseAlarmTarget>,
+    local_fit_days: usize,
+    alarm_level: AlarmLevel,
 }
 
 #[tokio::main]
@@ -86,8 +163,10 @@ async fn main() -> anyhow::Result<()> {
             let parsed = Scenario::from_path(&scenario)?;
             std::fs::create_dir_all(&out)?;
             let bar = ProgressBar::new(0).with_style(
-                ProgressStyle::with_template("simulating {bar:40} {pos}/{len} participants [{elapsed}]")
-                    .expect("static template"),
+                ProgressStyle::with_template(
+                    "simulating {bar:40} {pos}/{len} participants [{elapsed}]",
+                )
+                .expect("static template"),
             );
             let opts = SimulateOptions {
                 seed,
@@ -111,6 +190,8 @@ async fn main() -> anyhow::Result<()> {
             local_steps,
             learning_rate,
             window_days,
+            serve,
+            review_port,
         } => {
             run_demo(&DemoOptions {
                 scenario,
@@ -121,10 +202,98 @@ async fn main() -> anyhow::Result<()> {
                 local_steps,
                 learning_rate,
                 window_days,
+                serve,
+                review_port,
+            })
+            .await
+        }
+        Command::Evaluate {
+            cohort,
+            out,
+            prior,
+            rounds,
+            target_kinds,
+            false_alarm_budget,
+            local_fit_days,
+            alarm_level,
+        } => {
+            evaluate(EvaluateArgs {
+                cohort,
+                out,
+                prior,
+                rounds,
+                target_kinds,
+                false_alarm_budget,
+                local_fit_days,
+                alarm_level,
             })
             .await
         }
     }
+}
+
+async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
+    let t0 = std::time::Instant::now();
+    let mut settings = EvaluationSettings::new("");
+    if let Some(target) = args.false_alarm_budget {
+        settings.flag_config = FlagConfig::from_target(target)?;
+    }
+    settings.target_kinds = args.target_kinds;
+    settings.local_fit_days = args.local_fit_days;
+    settings.alarm_level = match args.alarm_level {
+        AlarmLevel::Alert => FlagLevel::Alert,
+        AlarmLevel::Watch => FlagLevel::Watch,
+    };
+    let outcome = run_evaluation(&EvaluateOptions {
+        cohort_dir: args.cohort,
+        out_dir: args.out,
+        prior: args.prior,
+        rounds: args.rounds,
+        settings,
+        progress: true,
+    })
+    .await?;
+    if !outcome.issues.is_empty() {
+        println!("{} input issues (rows quarantined):", outcome.issues.len());
+        for issue in outcome.issues.iter().take(20) {
+            println!("  {issue}");
+        }
+        if outcome.issues.len() > 20 {
+            println!("  … and {} more", outcome.issues.len() - 20);
+        }
+    }
+    let report = &outcome.report;
+    println!();
+    println!(
+        "{} participants; targets: {}; alarms: {} level and above",
+        report.participants,
+        report.target_kinds.join(", "),
+        match report.settings.alarm_level {
+            FlagLevel::Alert => "alert",
+            FlagLevel::Watch => "watch",
+        },
+    );
+    println!("Prior: {}", report.settings.prior_source);
+    for m in &report.methods {
+        for note in &m.notes {
+            println!("{}: {note}", m.method);
+        }
+    }
+    println!();
+    print!("{}", render_table(report));
+    println!();
+    println!("Outputs:");
+    println!("  table (CSV):   {}", outcome.csv.display());
+    println!("  report (JSON): {}", outcome.json.display());
+    println!("  curves (SVG):  {}", outcome.svg.display());
+    println!("  shared prior:  {}", outcome.prior.display());
+    println!(
+        "Prior {:.1} s; detection {:.1} s; total {:.1} s.",
+        outcome.training.as_secs_f64(),
+        outcome.detection.as_secs_f64(),
+        t0.elapsed().as_secs_f64()
+    );
+    Ok(())
 }
 
 fn print_summary(s: &SimulationSummary, out: &std::path::Path) {

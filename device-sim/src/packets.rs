@@ -320,3 +320,51 @@ mod tests {
         assert!((b.lo50 - (65.0 - 6.744_897_501_960_817)).abs() < 1e-9);
     }
 }
+
+impl From<&crate::flags::Flag> for FlagFacts {
+    fn from(f: &crate::flags::Flag) -> FlagFacts {
+        use crate::flags::{FlagKind, FlagLevel};
+        FlagFacts {
+            signal: f.signal,
+            kind: match f.kind {
+                FlagKind::SingleDay => PacketKind::SingleDay,
+                FlagKind::Cusum => PacketKind::Cusum,
+                FlagKind::MultiSignal => PacketKind::MultiSignal,
+            },
+            level: match f.level {
+                FlagLevel::Watch => PacketLevel::Watch,
+                FlagLevel::Alert => PacketLevel::Alert,
+            },
+            first_day: f.first_day,
+            last_day: f.last_day,
+            date: f.date,
+            score: f.score,
+            reason: f.reason.clone(),
+        }
+    }
+}
+
+impl From<&crate::flags::ProspectiveDay> for DayRow {
+    fn from(d: &crate::flags::ProspectiveDay) -> DayRow {
+        use crate::flags::DayStatus;
+        DayRow {
+            signal: d.signal,
+            date: d.date,
+            observed: d.observed,
+            mean: d.mean,
+            sd: d.sd,
+            lo50: d.lo50,
+            hi50: d.hi50,
+            lo95: d.lo95,
+            hi95: d.hi95,
+            z: d.z,
+            tail_p: d.tail_p,
+            conditioned: d.conditioned,
+            status: match d.status {
+                DayStatus::BuildingBaseline => PacketDayStatus::BuildingBaseline,
+                DayStatus::Normal => PacketDayStatus::Normal,
+                DayStatus::Flagged => PacketDayStatus::Flagged,
+            },
+        }
+    }
+}

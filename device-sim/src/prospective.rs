@@ -574,6 +574,40 @@ impl DailyFilter {
     }
 }
 
+/// Anything that gives a one-step-ahead predictive of a signal's next standardised value from
+/// the values it has been given, and can be told a new value. [`crate::flags::detect_with`]
+/// runs the same detectors, thresholds and baseline-protection rules on top of any predictor:
+/// the exact filter of the shared prior ([`DailyFilter`]) or the comparison methods of
+/// [`crate::evaluate::methods`].
+///
+/// Contract: `predict` never changes the predictor ("predict without update"); days passed to
+/// `update` are whole days since the participant's first day and never decrease; both work in
+/// standardised units `(y − centre) / scale` ([`Signal::reference`]).
+pub trait Predictor {
+    /// Predictive distribution of an observation on `day` given every value conditioned so far.
+    ///
+    /// # Errors
+    /// [`ProspectiveError::DaysOutOfOrder`] if `day` is before the last conditioned day.
+    fn predict(&self, day: i64) -> Result<OneStep>;
+
+    /// Conditions on the value `z` observed on `day`.
+    ///
+    /// # Errors
+    /// [`ProspectiveError::DaysOutOfOrder`] as for `predict`; [`ProspectiveError::NonFinite`]
+    /// for a non-finite `z` (the predictor is then unchanged).
+    fn update(&mut self, day: i64, z: f64) -> Result<()>;
+}
+
+impl Predictor for DailyFilter {
+    fn predict(&self, day: i64) -> Result<OneStep> {
+        DailyFilter::predict(self, day)
+    }
+
+    fn update(&mut self, day: i64, z: f64) -> Result<()> {
+        DailyFilter::update(self, day, z).map(|_| ())
+    }
+}
+
 /// Converts day offsets given as `f64` to whole days, checking that each is a finite whole
 /// number and that they never decrease.
 ///

@@ -1,22 +1,32 @@
 //! Detection metrics against ground-truth event windows, accumulated one
 //! participant at a time so a large cohort never sits in memory.
 //!
-//! Definitions (stable; the JSON report uses these names):
+//! Definitions (stable; the JSON report uses these names, see `docs/evaluation.md`):
 //! - `sensitivity`: detected target events / target events, where an event is
 //!   detected when an alarm fires on a day from its `start` to its `end`
 //!   (inclusive).
 //! - `false_alarms_per_participant_month`: alarm-days outside every target
-//!   event window, divided by event-free observed participant-days / 30.4375.
-//!   An alarm-day is a (participant, date) with at least one flag; several
-//!   flags on one day count once.
+//!   event window, divided by `days_outside_targets / 30.4375`, where
+//!   `days_outside_targets` counts the participant-days with at least one scored
+//!   signal (past the method's cold start) outside every target event. An
+//!   alarm-day is a (participant, date) with at least one alarm; several alarms
+//!   on one day count once. Alarms during non-target events (stressors,
+//!   artifacts) are false alarms: telling them from illness is the point.
 //! - `median_lead_from_start_days`, `median_lead_from_onset_days`: median over
-//!   detected events of (first alarm date − event start) and (first alarm date
-//!   − symptom onset); negative = before onset.
-//! - `coverage_95`: share of scored, event-free observed days whose value lies
-//!   inside the nominal 95% prospective band.
-//! - `mean_nlpd`: mean negative log predictive density of those days under
-//!   N(mean, sd²), in standardised units `(y − centre) / scale` so signals
-//!   are comparable (nats per observation).
+//!   detected events of (first alarm date in the window − event start) and
+//!   (first alarm date in the window − symptom onset); negative = before onset.
+//! - `coverage_95`: share of calibration days (scored signal-days outside
+//!   *every* event, target or not) whose value lies inside the nominal 95%
+//!   prospective band. Days inside any event are left out because no method
+//!   is meant to predict them; `calibration_signal_days` counts the days used.
+//! - `mean_nlpd`: mean negative log predictive density of the calibration days
+//!   under N(mean, sd²), in standardised units `(y − centre) / scale` so
+//!   signals are comparable (nats per observation).
+//!
+//! Per-period cells: with [`Accumulator::with_periods`], every quantity above
+//! is also accumulated for windows of days since the participant's first date
+//! (column [`PERIOD_COLUMN`]); an event belongs to the period its start falls
+//! in, and a participant counts in a period where it has a scored day.
 
 use std::collections::{BTreeMap, BTreeSet};
 
@@ -40,10 +50,46 @@ pub struct ScoredDay {
 /// Everything one method produced for one participant.
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct ParticipantResult {
+    /// The participant's first date in the data (origin of the periods); `None`
+    /// leaves the participant out of the per-period cells.
+    pub first_date: Option<NaiveDate>,
     /// Days past the method's cold start (only these are scored).
     pub days: Vec<ScoredDay>,
-    /// Dates with at least one flag (any level, any detector).
+    /// Dates with at least one alarm (a flag at the evaluated level or above).
     pub alarm_dates: BTreeSet<NaiveDate>,
+}
+
+/// Group column under which per-period cells are reported.
+pub const PERIOD_COLUMN: &str = "days_since_start";
+
+/// A window of days since a participant's first date (0 = the first date),
+/// inclusive at both ends; `last_day: None` is open-ended.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Period {
+    /// Level shown in reports, e.g. `1-28` (1-based days).
+    pub label: String,
+    pub first_day: i64,
+    pub last_day: Option<i64>,
+}
+
+impl Period {
+    /// Days `first..=last` counted from 1, labelled `first-last` (or `first+`
+    /// when open-ended).
+    pub fn days(first: i64, last: Option<i64>) -> Period {
+        Period {
+            label: match last {
+                Some(l) => format!("{first}-{l}"),
+                None => format!("{first}+"),
+            },
+            first_day: first - 1,
+            last_day: last.map(|l| l - 1),
+        }
+    }
+
+    fn contains(&self, origin: NaiveDate, date: NaiveDate) -> bool {
+        let d = (date - origin).num_days();
+        d >= self.first_day && self.last_day.is_none_or(|l| d <= l)
+    }
 }
 
 /// Running sums for one (method, subgroup) cell.
@@ -55,7 +101,7 @@ struct Cell {
     lead_from_start: Vec<f64>,
     lead_from_onset: Vec<f64>,
     false_alarm_days: usize,
-    event_free_days: usize,
+    days_outside_targets: usize,
     covered: usize,
     coverage_n: usize,
     nlpd_sum: f64,
@@ -73,7 +119,11 @@ pub struct Metrics {
     pub median_lead_from_onset_days: Option<f64>,
     pub coverage_95: Option<f64>,
     pub mean_nlpd: Option<f64>,
-    pub event_free_days: usize,
+    /// Participant-days with a scored signal outside every target event (the
+    /// false-alarm denominator).
+    pub days_outside_targets: usize,
+    /// Signal-days outside every event used for `coverage_95` and `mean_nlpd`.
+    pub calibration_signal_days: usize,
 }
 
 /// Subgroup key: `("all", "all")` or `(group column, level)`.
@@ -83,6 +133,7 @@ pub type Subgroup = (String, String);
 #[derive(Debug, Clone, Default)]
 pub struct Accumulator {
     cells: BTreeMap<Subgroup, Cell>,
+    periods: Vec<Period>,
 }
 
 /// Two-sided 97.5% standard-normal quantile (1.959963984540054; from memory,
@@ -102,22 +153,19 @@ fn median(values: &mut [f64]) -> Option<f64> {
     })
 }
 
-impl Accumulator {
-    /// Adds one participant's result. `groups` are the participant's group
-    /// columns (`participants.csv`); `targets` its target events.
-    pub fn add(
-        &mut self,
-        groups: &BTreeMap<String, String>,
+impl Cell {
+    /// One participant's contribution, restricted to the dates `within` accepts.
+    fn of_participant(
         targets: &[&Event],
+        others: &[&Event],
         result: &ParticipantResult,
-    ) {
-        let inside = |d: NaiveDate| targets.iter().any(|e| e.start <= d && d <= e.end);
-        let mut cell = Cell {
-            participants: 1,
-            events: targets.len(),
-            ..Cell::default()
-        };
-        for e in targets {
+        within: impl Fn(NaiveDate) -> bool,
+    ) -> Cell {
+        let in_target = |d: NaiveDate| targets.iter().any(|e| e.start <= d && d <= e.end);
+        let in_other = |d: NaiveDate| others.iter().any(|e| e.start <= d && d <= e.end);
+        let mut cell = Cell::default();
+        for e in targets.iter().filter(|e| within(e.start)) {
+            cell.events += 1;
             if let Some(first) = result.alarm_dates.range(e.start..=e.end).next() {
                 cell.detected += 1;
                 cell.lead_from_start
@@ -128,10 +176,24 @@ impl Accumulator {
                 }
             }
         }
-        cell.false_alarm_days = result.alarm_dates.iter().filter(|d| !inside(**d)).count();
-        let scored_dates: BTreeSet<NaiveDate> = result.days.iter().map(|d| d.date).collect();
-        cell.event_free_days = scored_dates.iter().filter(|d| !inside(**d)).count();
-        for d in result.days.iter().filter(|d| !inside(d.date)) {
+        cell.false_alarm_days = result
+            .alarm_dates
+            .iter()
+            .filter(|d| within(**d) && !in_target(**d))
+            .count();
+        let scored_dates: BTreeSet<NaiveDate> = result
+            .days
+            .iter()
+            .map(|d| d.date)
+            .filter(|d| within(*d))
+            .collect();
+        cell.participants = usize::from(!scored_dates.is_empty());
+        cell.days_outside_targets = scored_dates.iter().filter(|d| !in_target(**d)).count();
+        for d in result
+            .days
+            .iter()
+            .filter(|d| within(d.date) && !in_target(d.date) && !in_other(d.date))
+        {
             if !(d.sd > 0.0 && d.sd.is_finite()) {
                 continue;
             }
@@ -145,47 +207,78 @@ impl Accumulator {
             cell.nlpd_sum +=
                 0.5 * (2.0 * std::f64::consts::PI * sd * sd).ln() + 0.5 * (r / sd).powi(2);
         }
+        cell
+    }
+
+    fn absorb(&mut self, o: Cell) {
+        self.participants += o.participants;
+        self.events += o.events;
+        self.detected += o.detected;
+        self.lead_from_start.extend(o.lead_from_start);
+        self.lead_from_onset.extend(o.lead_from_onset);
+        self.false_alarm_days += o.false_alarm_days;
+        self.days_outside_targets += o.days_outside_targets;
+        self.covered += o.covered;
+        self.coverage_n += o.coverage_n;
+        self.nlpd_sum += o.nlpd_sum;
+    }
+}
+
+impl Accumulator {
+    /// An accumulator that also reports each of `periods` under [`PERIOD_COLUMN`].
+    pub fn with_periods(periods: Vec<Period>) -> Self {
+        Accumulator {
+            cells: BTreeMap::new(),
+            periods,
+        }
+    }
+
+    /// Adds one participant's result. `groups` are the participant's group
+    /// columns (`participants.csv`); `targets` its target events; `others` its
+    /// other events (their days are false-alarm days but not calibration days).
+    pub fn add(
+        &mut self,
+        groups: &BTreeMap<String, String>,
+        targets: &[&Event],
+        others: &[&Event],
+        result: &ParticipantResult,
+    ) {
+        let mut whole = Cell::of_participant(targets, others, result, |_| true);
+        // A participant counts in the whole cohort even without a scored day.
+        whole.participants = 1;
         let mut keys: Vec<Subgroup> = vec![("all".into(), "all".into())];
         keys.extend(groups.iter().map(|(k, v)| (k.clone(), v.clone())));
         for key in keys {
-            let c = self.cells.entry(key).or_default();
-            c.participants += cell.participants;
-            c.events += cell.events;
-            c.detected += cell.detected;
-            c.lead_from_start.extend(&cell.lead_from_start);
-            c.lead_from_onset.extend(&cell.lead_from_onset);
-            c.false_alarm_days += cell.false_alarm_days;
-            c.event_free_days += cell.event_free_days;
-            c.covered += cell.covered;
-            c.coverage_n += cell.coverage_n;
-            c.nlpd_sum += cell.nlpd_sum;
+            self.cells.entry(key).or_default().absorb(whole.clone());
+        }
+        if let Some(origin) = result.first_date {
+            for period in &self.periods {
+                let cell =
+                    Cell::of_participant(targets, others, result, |d| period.contains(origin, d));
+                self.cells
+                    .entry((PERIOD_COLUMN.into(), period.label.clone()))
+                    .or_default()
+                    .absorb(cell);
+            }
         }
     }
 
-    /// Merges another accumulator (e.g. from another thread).
+    /// Merges another accumulator (e.g. from another thread) with the same periods.
     pub fn merge(&mut self, other: Accumulator) {
         for (key, o) in other.cells {
-            let c = self.cells.entry(key).or_default();
-            c.participants += o.participants;
-            c.events += o.events;
-            c.detected += o.detected;
-            c.lead_from_start.extend(o.lead_from_start);
-            c.lead_from_onset.extend(o.lead_from_onset);
-            c.false_alarm_days += o.false_alarm_days;
-            c.event_free_days += o.event_free_days;
-            c.covered += o.covered;
-            c.coverage_n += o.coverage_n;
-            c.nlpd_sum += o.nlpd_sum;
+            self.cells.entry(key).or_default().absorb(o);
         }
     }
 
-    /// Final metrics per subgroup, `("all", "all")` first.
+    /// Final metrics per subgroup: `("all", "all")` first, then group columns
+    /// and their levels in alphabetical order, then the periods in their order.
     pub fn finish(self) -> Vec<(Subgroup, Metrics)> {
+        let periods = self.periods;
         let mut out: Vec<(Subgroup, Metrics)> = self
             .cells
             .into_iter()
             .map(|(key, mut c)| {
-                let months = c.event_free_days as f64 / 30.4375;
+                let months = c.days_outside_targets as f64 / 30.4375;
                 let m = Metrics {
                     participants: c.participants,
                     events: c.events,
@@ -197,12 +290,25 @@ impl Accumulator {
                     median_lead_from_onset_days: median(&mut c.lead_from_onset),
                     coverage_95: (c.coverage_n > 0).then(|| c.covered as f64 / c.coverage_n as f64),
                     mean_nlpd: (c.coverage_n > 0).then(|| c.nlpd_sum / c.coverage_n as f64),
-                    event_free_days: c.event_free_days,
+                    days_outside_targets: c.days_outside_targets,
+                    calibration_signal_days: c.coverage_n,
                 };
                 (key, m)
             })
             .collect();
-        out.sort_by_key(|((col, lvl), _)| (col != "all", col.clone(), lvl.clone()));
+        let rank = |(col, lvl): &Subgroup| {
+            let period = (col == PERIOD_COLUMN)
+                .then(|| periods.iter().position(|p| &p.label == lvl))
+                .flatten();
+            (
+                col != "all",
+                col == PERIOD_COLUMN,
+                col.clone(),
+                period,
+                lvl.clone(),
+            )
+        };
+        out.sort_by_key(|(key, _)| rank(key));
         out
     }
 }
@@ -244,12 +350,13 @@ mod tests {
             })
             .collect();
         let result = ParticipantResult {
+            first_date: Some(date(1)),
             days,
             alarm_dates: [date(3), date(11), date(20)].into_iter().collect(),
         };
         let groups = BTreeMap::from([("sex".to_string(), "female".to_string())]);
         let mut acc = Accumulator::default();
-        acc.add(&groups, &[&event], &result);
+        acc.add(&groups, &[&event], &[], &result);
         let out = acc.finish();
         assert_eq!(out[0].0, ("all".to_string(), "all".to_string()));
         let m = &out[0].1;
@@ -259,7 +366,8 @@ mod tests {
         assert_eq!(m.median_lead_from_start_days, Some(1.0));
         assert_eq!(m.median_lead_from_onset_days, Some(-1.0));
         // Event-free scored days: 30 − 5 = 25; false alarm-days: 2 (days 3, 20).
-        assert_eq!(m.event_free_days, 25);
+        assert_eq!(m.days_outside_targets, 25);
+        assert_eq!(m.calibration_signal_days, 25);
         let fa = m.false_alarms_per_participant_month.unwrap();
         assert!((fa - 2.0 / (25.0 / 30.4375)).abs() < 1e-12);
         // Coverage 24/25; NLPD: 24 days at r = 0 (0.5 ln 2π) and one at r = 2.5.
@@ -268,5 +376,54 @@ mod tests {
         let expected = (25.0 * half_ln_2pi + 0.5 * 2.5f64.powi(2)) / 25.0;
         assert!((m.mean_nlpd.unwrap() - expected).abs() < 1e-12);
         assert_eq!(out[1].0, ("sex".to_string(), "female".to_string()));
+    }
+
+    /// The same participant with a non-target event on days 20–21 and two
+    /// periods (days 1–14, 15+): the alarm on day 20 stays a false alarm, days
+    /// 20–21 leave the calibration set, and each period gets its own share.
+    #[test]
+    fn other_events_and_periods() {
+        let event = |kind: &str, start: u32, end: u32| Event {
+            participant: "p1".into(),
+            kind: kind.into(),
+            start: date(start),
+            end: date(end),
+            symptom_onset: None,
+        };
+        let illness = event("acute_illness", 10, 14);
+        let stressor = event("late_night_alcohol", 20, 21);
+        let result = ParticipantResult {
+            first_date: Some(date(1)),
+            days: (1..=30)
+                .map(|d| ScoredDay {
+                    signal: Signal::Sleep,
+                    date: date(d),
+                    observed: 7.0,
+                    mean: 7.0,
+                    sd: 1.0,
+                })
+                .collect(),
+            alarm_dates: [date(3), date(11), date(20)].into_iter().collect(),
+        };
+        let mut acc =
+            Accumulator::with_periods(vec![Period::days(1, Some(14)), Period::days(15, None)]);
+        acc.add(&BTreeMap::new(), &[&illness], &[&stressor], &result);
+        let out = acc.finish();
+        let labels: Vec<&str> = out.iter().map(|((_, l), _)| l.as_str()).collect();
+        assert_eq!(labels, ["all", "1-14", "15+"]);
+        let all = &out[0].1;
+        assert_eq!(all.days_outside_targets, 25);
+        assert_eq!(all.calibration_signal_days, 23);
+        let fa = all.false_alarms_per_participant_month.unwrap();
+        assert!((fa - 2.0 / (25.0 / 30.4375)).abs() < 1e-12);
+        let first = &out[1].1;
+        assert_eq!((first.events, first.events_detected), (1, 1));
+        // Days 1–14 minus the event days 10–14: 9 days, one false alarm (day 3).
+        assert_eq!(first.days_outside_targets, 9);
+        assert!((first.false_alarms_per_participant_month.unwrap() - 30.4375 / 9.0).abs() < 1e-12);
+        let second = &out[2].1;
+        assert_eq!((second.events, second.sensitivity), (0, None));
+        assert_eq!(second.days_outside_targets, 16);
+        assert_eq!(second.calibration_signal_days, 14);
     }
 }

@@ -8,6 +8,7 @@ use std::path::Path;
 use serde::Serialize;
 
 use super::metrics::{Metrics, Subgroup};
+use crate::flags::{FalseAlarmTarget, FlagConfig, FlagLevel};
 
 /// JSON schema identifier; bump when a key changes meaning.
 pub const SCHEMA: &str = "plimsoll.evaluation.v1";
@@ -17,8 +18,10 @@ pub const SCHEMA: &str = "plimsoll.evaluation.v1";
 pub struct CurvePoint {
     /// Multiplier applied to every detector threshold (1 = the calibrated setting).
     pub threshold_scale: f64,
-    pub sensitivity: f64,
-    pub false_alarms_per_participant_month: f64,
+    /// `null` when the cohort has no target events.
+    pub sensitivity: Option<f64>,
+    /// `null` when no day was scored outside target events.
+    pub false_alarms_per_participant_month: Option<f64>,
 }
 
 /// One subgroup's metrics.
@@ -38,6 +41,10 @@ pub struct MethodSummary {
     /// Short stable key: `federated`, `local_only`, `population`, `rolling_z`.
     pub method: String,
     pub description: String,
+    /// Observed days of a signal before the method scores or flags it.
+    pub cold_start_observed_days: usize,
+    /// Facts about the run worth knowing (e.g. local fits that failed).
+    pub notes: Vec<String>,
     /// Metrics at the calibrated thresholds, "all" first, then each subgroup.
     pub subgroups: Vec<SubgroupMetrics>,
     /// Threshold sweep, ordered by `threshold_scale`.
@@ -53,8 +60,34 @@ pub struct EvaluationReport {
     /// Event kinds counted as detection targets (others are not targets;
     /// alarms during them count as false alarms).
     pub target_kinds: Vec<String>,
+    /// Row-level problems the reader quarantined (see the command's output).
+    pub input_issues: usize,
+    pub settings: ReportSettings,
     pub methods: Vec<MethodSummary>,
     pub caution: String,
+}
+
+/// How the evaluation was run.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ReportSettings {
+    /// Lowest flag level that counts as an alarm (`alert` or `watch`).
+    pub alarm_level: FlagLevel,
+    /// The false-alarm budget the calibrated thresholds come from.
+    pub false_alarm_target: Option<FalseAlarmTarget>,
+    /// Detectors, thresholds and rules shared by every method (scale 1).
+    pub flag_config: FlagConfig,
+    /// Threshold multipliers of the sweep (the curves).
+    pub threshold_scales: Vec<f64>,
+    /// Where the shared prior of `federated` and `population` came from.
+    pub prior_source: String,
+    /// Observed days per signal that `local_only` fits its hyperparameters on.
+    pub local_fit_days: usize,
+    /// `rolling_z`: most recent conditioned values in the baseline.
+    pub rolling_window_values: usize,
+    /// `rolling_z`: fewest conditioned values before it scores.
+    pub rolling_min_values: usize,
+    /// `rolling_z`: SD floor in standardised units.
+    pub rolling_sd_floor: f64,
 }
 
 /// The caution printed with every evaluation output.
@@ -65,12 +98,15 @@ impl MethodSummary {
     pub fn new(
         method: &str,
         description: &str,
+        cold_start_observed_days: usize,
         subgroups: Vec<(Subgroup, Metrics)>,
         curve: Vec<CurvePoint>,
     ) -> Self {
         MethodSummary {
             method: method.into(),
             description: description.into(),
+            cold_start_observed_days,
+            notes: Vec::new(),
             subgroups: subgroups
                 .into_iter()
                 .map(|((column, level), metrics)| SubgroupMetrics {
@@ -167,7 +203,7 @@ pub fn render_table(report: &EvaluationReport) -> String {
 pub fn write_csv(report: &EvaluationReport, path: &Path) -> std::io::Result<()> {
     let mut s = String::from(
         "method,subgroup_column,subgroup_level,participants,events,events_detected,sensitivity,\
-false_alarms_per_participant_month,median_lead_from_start_days,median_lead_from_onset_days,coverage_95,mean_nlpd,event_free_days\n",
+false_alarms_per_participant_month,median_lead_from_start_days,median_lead_from_onset_days,coverage_95,mean_nlpd,days_outside_targets,calibration_signal_days\n",
     );
     let f = |v: Option<f64>| v.map(|x| format!("{x:.6}")).unwrap_or_default();
     for m in &report.methods {
@@ -175,7 +211,7 @@ false_alarms_per_participant_month,median_lead_from_start_days,median_lead_from_
             let x = &g.metrics;
             let _ = writeln!(
                 s,
-                "{},{},{},{},{},{},{},{},{},{},{},{},{}",
+                "{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
                 m.method,
                 csv_field(&g.column),
                 csv_field(&g.level),
@@ -188,7 +224,8 @@ false_alarms_per_participant_month,median_lead_from_start_days,median_lead_from_
                 f(x.median_lead_from_onset_days),
                 f(x.coverage_95),
                 f(x.mean_nlpd),
-                x.event_free_days
+                x.days_outside_targets,
+                x.calibration_signal_days
             );
         }
     }
@@ -261,14 +298,29 @@ pub fn render_svg(report: &EvaluationReport) -> String {
     let (left, right, top, bottom) = (70.0, 190.0, 40.0, 60.0);
     let pw = w - left - right;
     let ph = h - top - bottom;
-    let x_max = report
+    // Logarithmic x axis: the sweep spans two orders of magnitude of false alarms, and the
+    // region that matters (well under one a month) would be squeezed on a linear one.
+    let rates: Vec<f64> = report
         .methods
         .iter()
-        .flat_map(|m| m.curve.iter().map(|p| p.false_alarms_per_participant_month))
-        .fold(0.0f64, f64::max)
-        .max(0.1);
-    let x_max = nice_ceiling(x_max);
-    let sx = |x: f64| left + pw * (x / x_max).min(1.0);
+        .flat_map(|m| {
+            m.curve
+                .iter()
+                .filter_map(|p| p.false_alarms_per_participant_month)
+        })
+        .collect();
+    let x_max = nice_ceiling(rates.iter().copied().fold(0.1f64, f64::max));
+    let x_min = nice_floor(
+        rates
+            .iter()
+            .copied()
+            .filter(|r| *r > 0.0)
+            .fold(x_max / 10.0, f64::min),
+    );
+    let (log_min, log_max) = (x_min.log10(), x_max.log10());
+    let sx = |x: f64| {
+        left + pw * ((x.max(x_min).log10() - log_min) / (log_max - log_min)).clamp(0.0, 1.0)
+    };
     let sy = |y: f64| top + ph * (1.0 - y.clamp(0.0, 1.0));
     let mut s = String::new();
     let _ = write!(
@@ -286,10 +338,10 @@ pub fn render_svg(report: &EvaluationReport) -> String {
             .iter()
             .map(|p| {
                 format!(
-                    "×{:.2}: {:.2} FA, {:.0}%",
+                    "×{:.2}: {} FA, {}",
                     p.threshold_scale,
-                    p.false_alarms_per_participant_month,
-                    100.0 * p.sensitivity
+                    opt(p.false_alarms_per_participant_month, 2),
+                    pct(p.sensitivity)
                 )
             })
             .collect();
@@ -313,7 +365,8 @@ pub fn render_svg(report: &EvaluationReport) -> String {
             sy(y) + 4.0,
             100.0 * y
         );
-        let x = x_max * i as f64 / 5.0;
+    }
+    for x in log_ticks(x_min, x_max) {
         let _ = write!(
             s,
             r##"<line y1="{top}" y2="{:.1}" x1="{:.1}" x2="{:.1}" stroke="#eeeeee"/><text x="{:.1}" y="{:.1}" text-anchor="middle">{}</text>"##,
@@ -331,7 +384,7 @@ pub fn render_svg(report: &EvaluationReport) -> String {
     );
     let _ = write!(
         s,
-        r#"<text x="{:.1}" y="{:.1}" text-anchor="middle">False alarm-days per participant-month (outside target events)</text>"#,
+        r#"<text x="{:.1}" y="{:.1}" text-anchor="middle">False alarm-days per participant-month outside target events (log scale)</text>"#,
         left + pw / 2.0,
         h - 18.0
     );
@@ -345,31 +398,41 @@ pub fn render_svg(report: &EvaluationReport) -> String {
         r#"<text x="{left}" y="24" font-size="14">Detection on {} — thresholds scaled around the calibrated setting</text>"#,
         escape(&report.cohort)
     );
+    let mut any_point = false;
     for (i, m) in report.methods.iter().enumerate() {
         let (colour, shape) = PALETTE[i % PALETTE.len()];
-        let pts: Vec<String> = m
+        let xy: Vec<(f64, f64)> = m
             .curve
             .iter()
-            .map(|p| {
-                format!(
-                    "{:.1},{:.1}",
-                    sx(p.false_alarms_per_participant_month),
-                    sy(p.sensitivity)
-                )
+            .filter_map(|p| {
+                Some((
+                    sx(p.false_alarms_per_participant_month?),
+                    sy(p.sensitivity?),
+                ))
             })
             .collect();
-        let _ = write!(
-            s,
-            r#"<polyline points="{}" fill="none" stroke="{colour}" stroke-width="2"/>"#,
-            pts.join(" ")
-        );
-        for p in &m.curve {
-            s.push_str(&marker(
-                shape,
-                sx(p.false_alarms_per_participant_month),
-                sy(p.sensitivity),
-                colour,
-            ));
+        if !xy.is_empty() {
+            any_point = true;
+            let pts: Vec<String> = xy.iter().map(|(x, y)| format!("{x:.1},{y:.1}")).collect();
+            let _ = write!(
+                s,
+                r#"<polyline points="{}" fill="none" stroke="{colour}" stroke-width="2"/>"#,
+                pts.join(" ")
+            );
+        }
+        for &(x, y) in &xy {
+            s.push_str(&marker(shape, x, y, colour));
+        }
+        // Ring the calibrated setting (scale 1).
+        if let Some(p) = m.curve.iter().find(|p| p.threshold_scale == 1.0)
+            && let (Some(fa), Some(sens)) = (p.false_alarms_per_participant_month, p.sensitivity)
+        {
+            let _ = write!(
+                s,
+                r#"<circle cx="{:.1}" cy="{:.1}" r="9" fill="none" stroke="{colour}" stroke-width="1.5"/>"#,
+                sx(fa),
+                sy(sens)
+            );
         }
         let ly = top + 16.0 + 22.0 * i as f64;
         let lx = left + pw + 16.0;
@@ -380,6 +443,24 @@ pub fn render_svg(report: &EvaluationReport) -> String {
             lx + 10.0,
             ly,
             escape(&m.method)
+        );
+    }
+    if any_point {
+        let _ = write!(
+            s,
+            r#"<text x="{:.1}" y="{:.1}" font-size="11">ring: calibrated</text><text x="{:.1}" y="{:.1}" font-size="11">thresholds (×1)</text>"#,
+            left + pw + 16.0,
+            top + 16.0 + 22.0 * report.methods.len() as f64 + 8.0,
+            left + pw + 16.0,
+            top + 16.0 + 22.0 * report.methods.len() as f64 + 22.0
+        );
+    }
+    if !any_point {
+        let _ = write!(
+            s,
+            r#"<text x="{:.1}" y="{:.1}" text-anchor="middle">No target events in this cohort: sensitivity is undefined.</text>"#,
+            left + pw / 2.0,
+            top + ph / 2.0
         );
     }
     let _ = write!(
@@ -401,8 +482,35 @@ fn nice_ceiling(x: f64) -> f64 {
     10.0 * mag
 }
 
+/// The largest of 1, 2, 5 × 10^k not above `x` (positive).
+fn nice_floor(x: f64) -> f64 {
+    let mag = 10f64.powf(x.log10().floor());
+    for m in [5.0, 2.0, 1.0] {
+        if m * mag <= x {
+            return m * mag;
+        }
+    }
+    mag
+}
+
+/// Ticks 1, 2, 5 × 10^k from `lo` to `hi` inclusive.
+fn log_ticks(lo: f64, hi: f64) -> Vec<f64> {
+    let mut out = Vec::new();
+    let mut k = lo.log10().floor() as i32;
+    while 10f64.powi(k) <= hi * (1.0 + 1e-9) {
+        for m in [1.0, 2.0, 5.0] {
+            let t = m * 10f64.powi(k);
+            if t >= lo * (1.0 - 1e-9) && t <= hi * (1.0 + 1e-9) {
+                out.push(t);
+            }
+        }
+        k += 1;
+    }
+    out
+}
+
 fn trim_number(x: f64) -> String {
-    let s = format!("{x:.2}");
+    let s = format!("{x:.4}");
     s.trim_end_matches('0').trim_end_matches('.').to_owned()
 }
 
@@ -415,5 +523,12 @@ mod tests {
         assert_eq!(nice_ceiling(0.37), 0.5);
         assert_eq!(nice_ceiling(3.2), 5.0);
         assert_eq!(nice_ceiling(1.0), 1.0);
+        assert_eq!(nice_floor(0.12), 0.1);
+        assert_eq!(nice_floor(0.37), 0.2);
+        assert_eq!(nice_floor(6.0), 5.0);
+        assert_eq!(
+            log_ticks(0.1, 20.0),
+            [0.1, 0.2, 0.5, 1.0, 2.0, 5.0, 10.0, 20.0]
+        );
     }
 }

@@ -1,0 +1,230 @@
+//! `plimsoll evaluate`: read a cohort in the shared format, learn the shared prior by real
+//! federated rounds over loopback gRPC (or load a `prior.json`), evaluate the four methods and
+//! write `evaluation.csv`, `evaluation.json`, `evaluation.svg` and `prior.json`.
+//!
+//! The prior is learned on the cohort being evaluated, each device training only on its own
+//! data, as a pilot would run it (a run-in during which the prior is learned, then detection).
+//! To evaluate on participants the prior never saw, learn it on another cohort and pass its
+//! `prior.json` with `--prior`.
+
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, bail};
+use indicatif::{ProgressBar, ProgressStyle};
+use plimsoll_server::{LocalTraining, Optimizer, StudyConfig};
+
+use super::prior_file::{read_prior_file, write_prior_file};
+use super::report::{EvaluationReport, render_svg, write_csv, write_json};
+use super::run::{EvaluationSettings, evaluate_cohort};
+use crate::client::MIN_DAYS_TO_ENROLL;
+use crate::cohort::{BadRowPolicy, Cohort, read_cohort};
+use crate::demo::{cohort_signals, initial_layouts, run_federated};
+use crate::prior::PriorParams;
+use crate::signal::Signal;
+
+/// Devices per federated round when the cohort has more than this many.
+pub const MAX_DEVICES_PER_ROUND: usize = 100;
+
+/// Settings of `plimsoll evaluate`.
+#[derive(Debug, Clone)]
+pub struct EvaluateOptions {
+    pub cohort_dir: PathBuf,
+    pub out_dir: PathBuf,
+    /// Load this `prior.json` instead of learning the prior.
+    pub prior: Option<PathBuf>,
+    /// Federated rounds when learning the prior.
+    pub rounds: u32,
+    /// Everything about detection and metrics.
+    pub settings: EvaluationSettings,
+    /// Show progress bars.
+    pub progress: bool,
+}
+
+/// Paths and timings of a finished evaluation.
+#[derive(Debug)]
+pub struct EvaluationOutcome {
+    pub report: EvaluationReport,
+    pub csv: PathBuf,
+    pub json: PathBuf,
+    pub svg: PathBuf,
+    pub prior: PathBuf,
+    /// Input problems the reader quarantined, as printable lines.
+    pub issues: Vec<String>,
+    pub training: Duration,
+    pub detection: Duration,
+}
+
+/// Runs the whole command (see the module docs).
+///
+/// # Errors
+/// An unreadable cohort, no participant able to enrol (when learning), a bad `--prior` file,
+/// an evaluation error, or a failed write; each with context.
+pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<EvaluationOutcome> {
+    let cohort = read_cohort(&opts.cohort_dir, BadRowPolicy::Quarantine)
+        .with_context(|| format!("reading the cohort in {}", opts.cohort_dir.display()))?;
+    if cohort.participants.is_empty() {
+        bail!("{}: no participant in daily.csv", opts.cohort_dir.display());
+    }
+    let issues: Vec<String> = cohort.issues.iter().map(ToString::to_string).collect();
+    std::fs::create_dir_all(&opts.out_dir)
+        .with_context(|| format!("creating {}", opts.out_dir.display()))?;
+    let prior_path = opts.out_dir.join("prior.json");
+
+    let t_train = Instant::now();
+    let (priors, source) = match &opts.prior {
+        Some(path) => {
+            let (priors, source) = read_prior_file(path)?;
+            (priors, format!("file {} ({source})", path.display()))
+        }
+        None => {
+            let work = opts.out_dir.join("federated");
+            learn_prior(&cohort, opts.rounds, &work, opts.progress).await?
+        }
+    };
+    let training = t_train.elapsed();
+    if opts.prior.as_deref() != Some(prior_path.as_path()) {
+        write_prior_file(&prior_path, &priors, &source)?;
+    }
+
+    let mut settings = opts.settings.clone();
+    settings.prior_source = source;
+    let name = opts.cohort_dir.file_name().map_or_else(
+        || opts.cohort_dir.display().to_string(),
+        |n| n.to_string_lossy().into_owned(),
+    );
+    let bar = opts.progress.then(|| {
+        ProgressBar::new(cohort.participants.len() as u64).with_style(
+            ProgressStyle::with_template(
+                "detection (4 methods × thresholds) {bar:40} {pos}/{len} participants [{elapsed}]",
+            )
+            .expect("static template"),
+        )
+    });
+    let t_detect = Instant::now();
+    // Detection is CPU-bound and runs on its own threads; nothing else runs on the async
+    // runtime by now (the aggregator has shut down), so blocking here is harmless.
+    let report = evaluate_cohort(&cohort, &name, &priors, &settings, bar.as_ref())?;
+    let detection = t_detect.elapsed();
+    if let Some(b) = &bar {
+        b.finish();
+    }
+
+    let csv = opts.out_dir.join("evaluation.csv");
+    let json = opts.out_dir.join("evaluation.json");
+    let svg = opts.out_dir.join("evaluation.svg");
+    write_csv(&report, &csv).with_context(|| format!("writing {}", csv.display()))?;
+    write_json(&report, &json).with_context(|| format!("writing {}", json.display()))?;
+    std::fs::write(&svg, render_svg(&report))
+        .with_context(|| format!("writing {}", svg.display()))?;
+    Ok(EvaluationOutcome {
+        report,
+        csv,
+        json,
+        svg,
+        prior: prior_path,
+        issues,
+        training,
+        detection,
+    })
+}
+
+/// Learns the shared prior with the real federated path ([`run_federated`]: an aggregator
+/// and one device per participant over loopback gRPC, each training on its own data only),
+/// with the demo's local training (2 plain-SGD steps of size 1 per round on the full series),
+/// all devices per round up to [`MAX_DEVICES_PER_ROUND`] and that many above. Participants
+/// without a signal of `MIN_DAYS_TO_ENROLL` observed days cannot enrol and are left out of
+/// training (not of the evaluation). The aggregator database and the devices' outputs go to
+/// `work_dir`. Returns the last published prior and a description of how it was learned.
+///
+/// # Errors
+/// No participant can enrol, or the federated run fails.
+pub async fn learn_prior(
+    cohort: &Cohort,
+    rounds: u32,
+    work_dir: &Path,
+    progress: bool,
+) -> anyhow::Result<(Vec<PriorParams>, String)> {
+    let participants: Vec<_> = cohort
+        .participants
+        .iter()
+        .filter(|p| {
+            p.values
+                .values()
+                .any(|c| c.iter().flatten().count() >= MIN_DAYS_TO_ENROLL)
+        })
+        .cloned()
+        .collect();
+    if participants.is_empty() {
+        bail!(
+            "no participant has a signal with {MIN_DAYS_TO_ENROLL} observed days, so none can enrol in federated training; pass a prior with --prior"
+        );
+    }
+    let n = participants.len();
+    let training_cohort = Cohort {
+        participants,
+        ..Cohort::default()
+    };
+    let per_round = n.min(MAX_DEVICES_PER_ROUND);
+    let signals = cohort_signals(&training_cohort);
+    let config = StudyConfig {
+        study_id: "evaluation".into(),
+        title: "Shared prior for plimsoll evaluate".into(),
+        signals: initial_layouts(&signals),
+        rounds,
+        training: LocalTraining {
+            optimizer: Optimizer::Sgd,
+            local_steps: 2,
+            learning_rate: 1.0,
+            window_days: 0,
+            hyperprior_weight_per_day: 0.0,
+        },
+        fraction_per_round: per_round as f64 / n as f64,
+        min_quorum: (per_round as u32 / 2).max(1),
+        start_when_enrolled: n as u32,
+        round_deadline_ms: 120_000,
+        selection_seed: 7,
+        aggregation: Default::default(),
+    };
+    std::fs::create_dir_all(work_dir)
+        .with_context(|| format!("creating {}", work_dir.display()))?;
+    let db_path = work_dir.join("aggregator.db");
+    for suffix in ["", "-wal", "-shm"] {
+        let p = PathBuf::from(format!("{}{suffix}", db_path.display()));
+        if p.exists() {
+            std::fs::remove_file(&p)
+                .with_context(|| format!("removing the previous database {}", p.display()))?;
+        }
+    }
+    let bar = progress.then(|| {
+        ProgressBar::new(u64::from(rounds)).with_style(
+            ProgressStyle::with_template("federated rounds {bar:40} {pos}/{len} [{elapsed}]")
+                .expect("static template"),
+        )
+    });
+    let run = run_federated(
+        &training_cohort,
+        config,
+        &db_path,
+        &work_dir.join("devices"),
+        bar.as_ref(),
+    )
+    .await?;
+    if let Some(b) = &bar {
+        b.finish();
+    }
+    let latest = run.history.last().context("no prior was published")?;
+    let mut priors = Vec::with_capacity(latest.params.len());
+    for p in &latest.params {
+        let signal: Signal = p.signal.parse()?;
+        priors.push(
+            PriorParams::from_slice(signal, &p.values)
+                .with_context(|| format!("published prior of {signal}"))?,
+        );
+    }
+    let source = format!(
+        "federated: {rounds} rounds over loopback gRPC on this cohort, {n} devices enrolled, {per_round} per round, prior version {}",
+        latest.version
+    );
+    Ok((priors, source))
+}

@@ -1,0 +1,246 @@
+//! `plimsoll evaluate` end to end on a small simulated cohort: the federated prior is learned
+//! over loopback gRPC (a few rounds), the four methods are evaluated, and the CSV, JSON and SVG
+//! are checked for shape, documented keys and plausible ranges; then the written `prior.json`
+//! is reused on a folder holding only `daily.csv` (no participants, no events).
+
+use std::path::{Path, PathBuf};
+
+use plimsoll_device::cohort::{Scenario, SimulateOptions, simulate_to_dir};
+use plimsoll_device::evaluate::command::{EvaluateOptions, EvaluationOutcome, run_evaluation};
+use plimsoll_device::evaluate::run::EvaluationSettings;
+use serde_json::Value;
+
+const METHODS: [&str; 4] = ["federated", "local_only", "population", "rolling_z"];
+
+/// Keys of one subgroup object in `evaluation.json` (docs/evaluation.md).
+const SUBGROUP_KEYS: [&str; 13] = [
+    "column",
+    "level",
+    "participants",
+    "events",
+    "events_detected",
+    "sensitivity",
+    "false_alarms_per_participant_month",
+    "median_lead_from_start_days",
+    "median_lead_from_onset_days",
+    "coverage_95",
+    "mean_nlpd",
+    "days_outside_targets",
+    "calibration_signal_days",
+];
+
+fn options(cohort: &Path, out: &Path, prior: Option<PathBuf>) -> EvaluateOptions {
+    let mut settings = EvaluationSettings::new("");
+    settings.threads = 2;
+    EvaluateOptions {
+        cohort_dir: cohort.to_owned(),
+        out_dir: out.to_owned(),
+        prior,
+        rounds: 3,
+        settings,
+        progress: false,
+    }
+}
+
+fn json(outcome: &EvaluationOutcome) -> Value {
+    serde_json::from_str(&std::fs::read_to_string(&outcome.json).unwrap()).unwrap()
+}
+
+fn in_unit_interval(v: &Value) -> bool {
+    v.is_null() || v.as_f64().is_some_and(|x| (0.0..=1.0).contains(&x))
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn evaluate_command_end_to_end() {
+    let root = tempfile::tempdir().unwrap();
+    let cohort = root.path().join("cohort");
+    let scenario = Scenario::from_path(
+        &PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../demo-data/quick.toml"),
+    )
+    .unwrap();
+    let sim = SimulateOptions {
+        seed: Some(11),
+        participants: Some(12),
+        days: Some(100),
+    };
+    simulate_to_dir(&scenario, &sim, &cohort, &mut |_, _| {}).unwrap();
+
+    let out = root.path().join("eval");
+    let outcome = run_evaluation(&options(&cohort, &out, None)).await.unwrap();
+    let report = json(&outcome);
+
+    // Top level.
+    assert_eq!(report["schema"], "plimsoll.evaluation.v1");
+    assert_eq!(report["participants"], 12);
+    assert_eq!(report["target_kinds"], serde_json::json!(["acute_illness"]));
+    assert_eq!(report["settings"]["alarm_level"], "alert");
+    assert!(
+        report["settings"]["prior_source"]
+            .as_str()
+            .unwrap()
+            .starts_with("federated: 3 rounds")
+    );
+    assert!(
+        report["caution"]
+            .as_str()
+            .unwrap()
+            .contains("not a diagnosis")
+    );
+    let scales = report["settings"]["threshold_scales"].as_array().unwrap();
+    assert!(scales.iter().any(|s| s.as_f64() == Some(1.0)));
+
+    // Methods, subgroups, curves.
+    let methods = report["methods"].as_array().unwrap();
+    let keys: Vec<&str> = methods
+        .iter()
+        .map(|m| m["method"].as_str().unwrap())
+        .collect();
+    assert_eq!(keys, METHODS);
+    let cold: Vec<u64> = methods
+        .iter()
+        .map(|m| m["cold_start_observed_days"].as_u64().unwrap())
+        .collect();
+    assert_eq!(cold, [14, 28, 14, 14]);
+    let n_subgroups = methods[0]["subgroups"].as_array().unwrap().len();
+    for m in methods {
+        let subgroups = m["subgroups"].as_array().unwrap();
+        assert_eq!(subgroups.len(), n_subgroups, "{}", m["method"]);
+        assert_eq!(
+            (&subgroups[0]["column"], &subgroups[0]["level"]),
+            (&Value::from("all"), &Value::from("all"))
+        );
+        assert_eq!(subgroups[0]["participants"], 12);
+        assert!(subgroups.iter().any(|g| g["column"] == "sex"));
+        assert!(subgroups.iter().any(|g| g["column"] == "days_since_start"));
+        for g in subgroups {
+            let obj = g.as_object().unwrap();
+            for key in SUBGROUP_KEYS {
+                assert!(obj.contains_key(key), "{} lacks {key}", m["method"]);
+            }
+            assert!(in_unit_interval(&g["sensitivity"]), "{g}");
+            assert!(in_unit_interval(&g["coverage_95"]), "{g}");
+            assert!(g["events_detected"].as_u64() <= g["events"].as_u64());
+            let fa = &g["false_alarms_per_participant_month"];
+            assert!(fa.is_null() || fa.as_f64().unwrap() >= 0.0);
+            let nlpd = &g["mean_nlpd"];
+            assert!(nlpd.is_null() || nlpd.as_f64().unwrap().is_finite());
+        }
+        let all = &subgroups[0];
+        assert!(
+            all["events"].as_u64().unwrap() > 0,
+            "the cohort has illnesses"
+        );
+        assert!(all["sensitivity"].is_number());
+        // Each GP or baseline band covers most event-free days.
+        assert!(all["coverage_95"].as_f64().unwrap() > 0.5, "{all}");
+        let curve = m["curve"].as_array().unwrap();
+        assert_eq!(curve.len(), scales.len());
+        for p in curve {
+            assert!(in_unit_interval(&p["sensitivity"]));
+            assert!(p["false_alarms_per_participant_month"].as_f64().unwrap() >= 0.0);
+        }
+    }
+    // Local-only scores nothing before its fitting days are over.
+    let local_first = methods[1]["subgroups"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|g| g["column"] == "days_since_start" && g["level"] == "1-28")
+        .unwrap();
+    assert_eq!(local_first["calibration_signal_days"], 0);
+    assert_eq!(local_first["participants"], 0);
+
+    // CSV: header plus one row per method × subgroup.
+    let csv = std::fs::read_to_string(&outcome.csv).unwrap();
+    let mut lines = csv.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    assert_eq!(
+        &header[..3],
+        ["method", "subgroup_column", "subgroup_level"]
+    );
+    for key in &SUBGROUP_KEYS[2..] {
+        assert!(header.contains(key), "CSV lacks {key}");
+    }
+    let rows: Vec<&str> = lines.collect();
+    assert_eq!(rows.len(), METHODS.len() * n_subgroups);
+    for method in METHODS {
+        assert_eq!(
+            rows.iter()
+                .filter(|r| r.starts_with(&format!("{method},")))
+                .count(),
+            n_subgroups
+        );
+    }
+
+    // SVG: one polyline per method.
+    let svg = std::fs::read_to_string(&outcome.svg).unwrap();
+    assert!(svg.starts_with("<svg"));
+    assert_eq!(svg.matches("<polyline").count(), METHODS.len());
+
+    // The terminal table names every method.
+    let table = plimsoll_device::evaluate::report::render_table(&outcome.report);
+    for method in METHODS {
+        assert!(table.contains(method));
+    }
+
+    // Reuse the written prior on a folder with only daily.csv: no events, so sensitivity is
+    // null everywhere, false alarms are counted over all days, and only "all" and the periods
+    // remain as subgroups.
+    let prior = out.join("prior.json");
+    assert!(prior.exists());
+    let bare = root.path().join("bare");
+    std::fs::create_dir_all(&bare).unwrap();
+    std::fs::copy(cohort.join("daily.csv"), bare.join("daily.csv")).unwrap();
+    let out2 = root.path().join("eval-bare");
+    let bare_outcome = run_evaluation(&options(&bare, &out2, Some(prior.clone())))
+        .await
+        .unwrap();
+    let report2 = json(&bare_outcome);
+    assert!(
+        report2["settings"]["prior_source"]
+            .as_str()
+            .unwrap()
+            .starts_with("file ")
+    );
+    for m in report2["methods"].as_array().unwrap() {
+        let subgroups = m["subgroups"].as_array().unwrap();
+        assert!(
+            subgroups
+                .iter()
+                .all(|g| g["column"] == "all" || g["column"] == "days_since_start")
+        );
+        let all = &subgroups[0];
+        assert_eq!(all["events"], 0);
+        assert!(all["sensitivity"].is_null());
+        assert!(all["false_alarms_per_participant_month"].as_f64().unwrap() >= 0.0);
+        // Without events.csv every scored day is a calibration day.
+        assert!(all["calibration_signal_days"].as_u64().unwrap() > 0);
+        for p in m["curve"].as_array().unwrap() {
+            assert!(p["sensitivity"].is_null());
+        }
+    }
+    let svg2 = std::fs::read_to_string(&bare_outcome.svg).unwrap();
+    assert_eq!(svg2.matches("<polyline").count(), 0);
+    assert!(svg2.contains("No target events"));
+    // Same prior, same days, same detection: without events every alarm-day is false, so the
+    // false alarm-day count (rate × days / 30.4375) can only be at least that of the run with
+    // events, over at least as many days.
+    let count = |r: &Value, i: usize| {
+        let all = &r["methods"][i]["subgroups"][0];
+        let days = all["days_outside_targets"].as_f64().unwrap();
+        (
+            all["false_alarms_per_participant_month"].as_f64().unwrap() * days / 30.4375,
+            days,
+        )
+    };
+    for i in 0..METHODS.len() {
+        let (with_events, days_with) = count(&report, i);
+        let (without, days_without) = count(&report2, i);
+        assert!(
+            without >= with_events - 1e-6,
+            "{}: {without} < {with_events}",
+            METHODS[i]
+        );
+        assert!(days_without >= days_with);
+    }
+}
