@@ -384,3 +384,88 @@ async fn unknown_signal_is_invalid_argument() {
     .await;
     server.stop().await;
 }
+
+/// Three devices, quorum two, a 300 ms deadline: the straggler is excluded
+/// and the round closes with the two that submitted; the straggler's late
+/// submission is refused.
+#[tokio::test]
+async fn stragglers_are_excluded_and_the_round_closes_with_quorum() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut config = study_config(STUDY, &[Signal::RestingHr], 3, 2);
+    config.min_quorum = 2;
+    config.round_deadline_ms = 300;
+    let server = TestServer::start(&dir.path().join("agg.db"), vec![config]).await;
+    let mut client = server.client();
+    let ids = [
+        enroll(&mut client, "p-a").await,
+        enroll(&mut client, "p-b").await,
+        enroll(&mut client, "p-c").await,
+    ];
+    let t = task(&mut client, ids[0]).await;
+    client
+        .submit_update(submission(
+            ids[0],
+            t.round_id,
+            vec![update(vec![1.0; 7], 10)],
+        ))
+        .await
+        .unwrap();
+    client
+        .submit_update(submission(
+            ids[1],
+            t.round_id,
+            vec![update(vec![3.0; 7], 10)],
+        ))
+        .await
+        .unwrap();
+    // Long-poll as device a: it is woken when the deadline closes the round
+    // and round 2 opens (no sleeping in the test).
+    let next = task(&mut client, ids[0]).await;
+    assert_eq!(next.round_id, t.round_id + 1);
+    let prior = latest_prior(&mut client).await;
+    assert_eq!(prior.version, 1);
+    assert_eq!(
+        prior.params[0].values,
+        vec![2.0; 7],
+        "the straggler did not enter the average"
+    );
+    assert_eq!(prior.contributions[0].n_devices, 2);
+    let late = client
+        .submit_update(submission(
+            ids[2],
+            t.round_id,
+            vec![update(vec![50.0; 7], 10)],
+        ))
+        .await
+        .unwrap_err();
+    assert_eq!(late.code(), Code::FailedPrecondition);
+    server.stop().await;
+}
+
+/// Without quorum at the deadline the round is retried under a new id and
+/// nothing is applied: the prior stays at version 0.
+#[tokio::test]
+async fn a_round_without_quorum_is_retried_never_half_applied() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut config = study_config(STUDY, &[Signal::RestingHr], 2, 2);
+    config.round_deadline_ms = 300;
+    let server = TestServer::start(&dir.path().join("agg.db"), vec![config]).await;
+    let mut client = server.client();
+    let a = enroll(&mut client, "p-a").await;
+    let _b = enroll(&mut client, "p-b").await;
+    let t = task(&mut client, a).await;
+    client
+        .submit_update(submission(a, t.round_id, vec![update(vec![9.0; 7], 10)]))
+        .await
+        .unwrap();
+    // Device a is woken when the failed round is replaced by a retry.
+    let retry = task(&mut client, a).await;
+    assert_eq!(retry.round_id, t.round_id + 1);
+    let prior = latest_prior(&mut client).await;
+    assert_eq!(
+        prior.version, 0,
+        "a round without quorum must not be applied"
+    );
+    assert_eq!(retry.shared[0].values, prior.params[0].values);
+    server.stop().await;
+}

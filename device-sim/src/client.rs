@@ -26,6 +26,7 @@ use crate::device_report::detect_and_write;
 use crate::flags::{FlagConfig, FlagLevel};
 use crate::packets::{DayRow, FlagFacts, build_packet};
 use crate::personal::{DayBand, posterior_bands, standardised, write_posterior_csv};
+use crate::retry::{Backoff, retry};
 use crate::signal::Signal;
 use crate::training::{LocalSeries, LocalUpdate, train_local};
 use crate::wire;
@@ -71,17 +72,21 @@ pub async fn enroll(
     signals: Vec<String>,
     sharing: FlagSharing,
 ) -> anyhow::Result<u64> {
-    Ok(client
-        .enroll(pb::EnrollRequest {
-            study_id: study_id.to_owned(),
-            participant_label: participant.to_owned(),
-            signals,
-            consent_share_flags: sharing.consented(),
-        })
-        .await
-        .with_context(|| format!("Enroll for participant {participant}"))?
-        .into_inner()
-        .device_id)
+    let request = pb::EnrollRequest {
+        study_id: study_id.to_owned(),
+        participant_label: participant.to_owned(),
+        signals,
+        consent_share_flags: sharing.consented(),
+    };
+    Ok(retry(&Backoff::default(), seed_of(participant), || {
+        let mut c = client.clone();
+        let r = request.clone();
+        async move { c.enroll(r).await }
+    })
+    .await
+    .with_context(|| format!("Enroll for participant {participant}"))?
+    .into_inner()
+    .device_id)
 }
 
 /// Sends flag packets for one enrolled device. It exists only for a device
@@ -200,17 +205,22 @@ pub async fn run_device_with(
     .await?;
     let local = Arc::new(local);
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
+    let backoff = Backoff::default();
     let mut rounds_trained = 0;
     let prior_version = loop {
-        let response = client
-            .fetch_task(pb::FetchTaskRequest {
-                study_id: opts.study_id.clone(),
-                device_id,
-                wait_ms: opts.wait_ms,
-            })
-            .await
-            .with_context(|| format!("FetchTask for device {device_id}"))?
-            .into_inner();
+        let request = pb::FetchTaskRequest {
+            study_id: opts.study_id.clone(),
+            device_id,
+            wait_ms: opts.wait_ms,
+        };
+        let response = retry(&backoff, opts.seed ^ 0xfe7c, || {
+            let mut c = client.clone();
+            let r = request.clone();
+            async move { c.fetch_task(r).await }
+        })
+        .await
+        .with_context(|| format!("FetchTask for device {device_id}"))?
+        .into_inner();
         use pb::fetch_task_response::Work;
         match response.work {
             Some(Work::Task(task)) => {
@@ -233,7 +243,15 @@ pub async fn run_device_with(
                         .map(|(s, u)| wire::update_to_pb(*s, u))
                         .collect(),
                 };
-                client.submit_update(request).await.with_context(|| {
+                // A retry after a lost answer is safe: an identical
+                // submission is answered as the first one was.
+                retry(&backoff, seed, || {
+                    let mut c = client.clone();
+                    let r = request.clone();
+                    async move { c.submit_update(r).await }
+                })
+                .await
+                .with_context(|| {
                     format!("SubmitUpdate for device {device_id}, round {round_id}")
                 })?;
                 rounds_trained += 1;
@@ -247,14 +265,18 @@ pub async fn run_device_with(
             None => return Err(anyhow!("FetchTask answered without work")),
         }
     };
-    let prior = client
-        .get_prior(pb::GetPriorRequest {
-            study_id: opts.study_id.clone(),
-            version: prior_version,
-        })
-        .await
-        .context("GetPrior")?
-        .into_inner();
+    let request = pb::GetPriorRequest {
+        study_id: opts.study_id.clone(),
+        version: prior_version,
+    };
+    let prior = retry(&backoff, opts.seed ^ 0x9e1, || {
+        let mut c = client.clone();
+        let r = request.clone();
+        async move { c.get_prior(r).await }
+    })
+    .await
+    .context("GetPrior")?
+    .into_inner();
     let priors = wire::prior_from_pb(&prior).context("published prior")?;
     let permit = cpu.clone().acquire_owned().await?;
     let out_dir = opts.out_dir.clone();
@@ -341,4 +363,11 @@ pub fn connect_lazy(addr: std::net::SocketAddr) -> anyhow::Result<Channel> {
             .connect_timeout(Duration::from_secs(5))
             .connect_lazy(),
     )
+}
+
+/// A per-participant seed for retry jitter, so devices do not retry in step.
+fn seed_of(label: &str) -> u64 {
+    label.bytes().fold(0xcbf2_9ce4_8422_2325, |h, b| {
+        (h ^ u64::from(b)).wrapping_mul(0x100_0000_01b3)
+    })
 }

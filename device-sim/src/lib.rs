@@ -24,6 +24,7 @@ pub mod packets;
 pub mod personal;
 pub mod prior;
 pub mod prospective;
+pub mod retry;
 pub mod signal;
 pub mod training;
 pub mod wire;
