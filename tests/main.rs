@@ -6,6 +6,7 @@ mod evaluation;
 mod federated;
 mod flag_packets;
 mod gp_reference;
+mod load_short;
 mod prospective;
 mod review_access;
 mod review_browser;

@@ -2,8 +2,12 @@
 //!
 //! Every state change a round goes through is one transaction, so a crash
 //! leaves either the old state or the new one (SQLite's atomic commit, WAL
-//! mode, `synchronous=FULL`). Federated training stores no raw observation:
-//! only study configuration, enrolment, round membership, submitted parameter
+//! mode). `synchronous=NORMAL`: in WAL mode a commit survives a crash of
+//! the process (the crash test kills it with SIGKILL); only an OS crash or
+//! power loss may roll back the last commits (SQLite docs, "PRAGMA
+//! synchronous"). Measured: about 2× the submissions per second of `FULL`.
+//!
+//! Federated training stores no raw observation: only study configuration, enrolment, round membership, submitted parameter
 //! vectors with their day counts and losses, and published priors. The one
 //! place observed values are kept is `flag_packets`, filled only from devices
 //! whose participant consented to share flags (see [`crate::packets`]).
@@ -171,7 +175,7 @@ impl Store {
 
     fn init(conn: Connection) -> Result<Store> {
         conn.pragma_update(None, "journal_mode", "WAL")?;
-        conn.pragma_update(None, "synchronous", "FULL")?;
+        conn.pragma_update(None, "synchronous", "NORMAL")?;
         conn.pragma_update(None, "foreign_keys", "ON")?;
         conn.busy_timeout(std::time::Duration::from_secs(5))?;
         let mut conn = conn;

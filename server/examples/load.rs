@@ -1,0 +1,173 @@
+//! Bounded load test on loopback: N simulated devices (default 10,000) enrol,
+//! fetch their task and submit one update each in a single round. Prints
+//! updates per second, p50/p99 submit latency, and the process's peak memory
+//! (server and clients share the process, so it is an upper bound on the
+//! server's), with the ratio against the 5,000 updates/s target.
+//!
+//! `cargo run --release -p plimsoll-server --example load -- [DEVICES] [CONCURRENCY]`
+
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use plimsoll_proto::v1 as pb;
+use plimsoll_proto::v1::aggregator_client::AggregatorClient;
+use plimsoll_server::{
+    Coordinator, LocalTraining, SignalLayout, StudyConfig, serve, service::now_ms,
+};
+use tokio::sync::Semaphore;
+use tonic::transport::{Channel, Endpoint};
+
+const TARGET_UPDATES_PER_S: f64 = 5_000.0;
+
+fn peak_rss_mb() -> f64 {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|s| {
+            s.lines()
+                .find(|l| l.starts_with("VmHWM:"))
+                .map(str::to_owned)
+        })
+        .and_then(|l| {
+            l.split_whitespace()
+                .nth(1)
+                .and_then(|kb| kb.parse::<f64>().ok())
+        })
+        .map_or(f64::NAN, |kb| kb / 1024.0)
+}
+
+#[tokio::main]
+async fn main() -> anyhow::Result<()> {
+    let args: Vec<String> = std::env::args().collect();
+    let n: usize = args.get(1).map_or(Ok(10_000), |s| s.parse())?;
+    let concurrency: usize = args.get(2).map_or(Ok(256), |s| s.parse())?;
+    let dir = tempfile::tempdir()?;
+    let coordinator = Arc::new(Coordinator::open(&dir.path().join("load.db"))?);
+    coordinator.create_study(
+        StudyConfig {
+            study_id: "load".into(),
+            title: "load test".into(),
+            signals: vec![SignalLayout {
+                signal: "resting_hr_bpm".into(),
+                param_names: (0..7).map(|i| format!("p{i}")).collect(),
+                reference_center: 65.0,
+                reference_scale: 10.0,
+                initial: vec![0.0; 7],
+            }],
+            rounds: 1,
+            training: LocalTraining::default(),
+            fraction_per_round: 1.0,
+            min_quorum: n as u32,
+            start_when_enrolled: n as u32,
+            round_deadline_ms: 600_000,
+            selection_seed: 1,
+            aggregation: Default::default(),
+        },
+        now_ms(),
+    )?;
+    let server = serve(
+        coordinator.clone(),
+        tokio::net::TcpListener::bind("127.0.0.1:0").await?,
+    )
+    .await?;
+    // A few HTTP/2 connections, many streams each, as a fleet behind a
+    // gateway would look; every call is a real gRPC request on loopback.
+    let channels: Vec<Channel> = (0..8)
+        .map(|_| Endpoint::from_shared(format!("http://{}", server.addr)).map(|e| e.connect_lazy()))
+        .collect::<Result<_, _>>()?;
+    let gate = Arc::new(Semaphore::new(concurrency));
+
+    let t0 = Instant::now();
+    let mut set = tokio::task::JoinSet::new();
+    for i in 0..n {
+        let mut c = AggregatorClient::new(channels[i % channels.len()].clone());
+        let gate = gate.clone();
+        set.spawn(async move {
+            let _p = gate.acquire_owned().await?;
+            let r = c
+                .enroll(pb::EnrollRequest {
+                    study_id: "load".into(),
+                    participant_label: format!("dev-{i:05}"),
+                    signals: vec!["resting_hr_bpm".into()],
+                    consent_share_flags: false,
+                })
+                .await?;
+            anyhow::Ok(r.into_inner().device_id)
+        });
+    }
+    let mut ids = Vec::with_capacity(n);
+    while let Some(r) = set.join_next().await {
+        ids.push(r??);
+    }
+    let enroll_s = t0.elapsed().as_secs_f64();
+
+    let round_id = match AggregatorClient::new(channels[0].clone())
+        .fetch_task(pb::FetchTaskRequest {
+            study_id: "load".into(),
+            device_id: ids[0],
+            wait_ms: 5_000,
+        })
+        .await?
+        .into_inner()
+        .work
+    {
+        Some(pb::fetch_task_response::Work::Task(t)) => t.round_id,
+        other => anyhow::bail!("no task: {other:?}"),
+    };
+
+    let t1 = Instant::now();
+    let mut set = tokio::task::JoinSet::new();
+    for (i, id) in ids.iter().copied().enumerate() {
+        let mut c = AggregatorClient::new(channels[i % channels.len()].clone());
+        let gate = gate.clone();
+        set.spawn(async move {
+            let _p = gate.acquire_owned().await?;
+            let start = Instant::now();
+            c.submit_update(pb::SubmitUpdateRequest {
+                study_id: "load".into(),
+                device_id: id,
+                round_id,
+                updates: vec![pb::SignalUpdate {
+                    signal: "resting_hr_bpm".into(),
+                    values: vec![(i % 7) as f64; 7],
+                    n_days: 180,
+                    local_loss: 1.0,
+                }],
+            })
+            .await?;
+            anyhow::Ok(start.elapsed())
+        });
+    }
+    let mut latencies: Vec<Duration> = Vec::with_capacity(n);
+    while let Some(r) = set.join_next().await {
+        latencies.push(r??);
+    }
+    let submit_s = t1.elapsed().as_secs_f64();
+    latencies.sort();
+    let pct =
+        |q: f64| latencies[((q * (n - 1) as f64).round() as usize).min(n - 1)].as_secs_f64() * 1e3;
+    let status = coordinator.status("load")?;
+    let rate = n as f64 / submit_s;
+    println!("devices {n}, concurrency {concurrency}, 8 HTTP/2 connections, loopback");
+    println!(
+        "enrolment: {:.2} s ({:.0} enrolments/s)",
+        enroll_s,
+        n as f64 / enroll_s
+    );
+    println!(
+        "submissions: {submit_s:.2} s → {rate:.0} updates/s (target {TARGET_UPDATES_PER_S:.0}; ratio {:.2}×)",
+        rate / TARGET_UPDATES_PER_S
+    );
+    println!(
+        "submit latency: p50 {:.2} ms, p99 {:.2} ms",
+        pct(0.50),
+        pct(0.99)
+    );
+    println!(
+        "rounds completed: {} (expected 1); peak RSS of the whole process {:.0} MB",
+        status.rounds_completed,
+        peak_rss_mb()
+    );
+    server.shutdown().await?;
+    anyhow::ensure!(status.rounds_completed == 1, "the round did not close");
+    Ok(())
+}

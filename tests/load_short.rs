@@ -1,0 +1,78 @@
+//! A short version of the aggregator load test (the full one is
+//! `server/examples/load.rs`): 1,000 devices enrol, fetch and submit one
+//! update each concurrently over real gRPC on loopback. Checks correctness
+//! under concurrency only — every update accepted exactly once and the
+//! round's average exact — never timing.
+
+use plimsoll_device::signal::Signal;
+use plimsoll_proto::v1 as pb;
+
+use crate::support::{TestServer, study_config};
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_thousand_concurrent_devices_complete_one_round() {
+    const N: usize = 1_000;
+    let dir = tempfile::tempdir().unwrap();
+    let server = TestServer::start(
+        &dir.path().join("agg.db"),
+        vec![study_config("load", &[Signal::RestingHr], N as u32, 1)],
+    )
+    .await;
+    let mut tasks = tokio::task::JoinSet::new();
+    for i in 0..N {
+        let mut c = server.client();
+        tasks.spawn(async move {
+            let id = c
+                .enroll(pb::EnrollRequest {
+                    study_id: "load".into(),
+                    participant_label: format!("dev-{i:04}"),
+                    signals: vec!["resting_hr_bpm".into()],
+                    consent_share_flags: false,
+                })
+                .await
+                .unwrap()
+                .into_inner()
+                .device_id;
+            let task = match c
+                .fetch_task(pb::FetchTaskRequest {
+                    study_id: "load".into(),
+                    device_id: id,
+                    wait_ms: 10_000,
+                })
+                .await
+                .unwrap()
+                .into_inner()
+                .work
+            {
+                Some(pb::fetch_task_response::Work::Task(t)) => t,
+                other => panic!("device {i}: expected a task, got {other:?}"),
+            };
+            // Values 0..9 cycling; each device weighs 10 days.
+            c.submit_update(pb::SubmitUpdateRequest {
+                study_id: "load".into(),
+                device_id: id,
+                round_id: task.round_id,
+                updates: vec![pb::SignalUpdate {
+                    signal: "resting_hr_bpm".into(),
+                    values: vec![(i % 10) as f64; 7],
+                    n_days: 10,
+                    local_loss: 1.0,
+                }],
+            })
+            .await
+            .unwrap()
+            .into_inner()
+        });
+    }
+    let mut closed = 0;
+    while let Some(r) = tasks.join_next().await {
+        closed += usize::from(r.unwrap().round_closed);
+    }
+    assert_eq!(closed, 1, "exactly one submission closes the round");
+    let prior = server.coordinator.prior("load", None).unwrap();
+    assert_eq!(prior.version, 1);
+    assert_eq!(prior.contributions[0].n_devices as usize, N);
+    // Mean of 0..9 repeated 100 times, equal weights: 4.5.
+    assert!((prior.params[0].values[0] - 4.5).abs() < 1e-12);
+    server.stop().await;
+}
