@@ -646,11 +646,11 @@ impl PreparedKernel {
 }
 
 #[cfg(test)]
-mod tests {
+pub(crate) mod tests {
     use super::*;
 
-    /// One of every kind, nested, so order and splitting are exercised.
-    fn all_kinds() -> Kernel {
+    /// One of every kind, nested, so order and splitting are exercised (also used by the model's tests).
+    pub(crate) fn all_kinds() -> Kernel {
         Kernel::sum(
             Kernel::sum(
                 Kernel::product(

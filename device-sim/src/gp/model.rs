@@ -322,48 +322,7 @@ mod tests {
 
     /// Every kernel kind, nested in sums and products, with irregular days and a duplicate day.
     fn all_kinds_model() -> GpRegression {
-        let kernel = Kernel::sum(
-            Kernel::sum(
-                Kernel::product(
-                    Kernel::Matern32 {
-                        log_var: 0.3,
-                        log_len: 1.7,
-                    },
-                    Kernel::Periodic {
-                        log_var: -0.2,
-                        log_len: 0.1,
-                        period_days: 7.0,
-                    },
-                ),
-                Kernel::sum(
-                    Kernel::SquaredExp {
-                        log_var: -0.5,
-                        log_len: 2.5,
-                    },
-                    Kernel::RationalQuadratic {
-                        log_var: 0.2,
-                        log_len: 1.1,
-                        log_alpha: -0.4,
-                    },
-                ),
-            ),
-            Kernel::sum(
-                Kernel::sum(
-                    Kernel::Matern12 {
-                        log_var: -1.0,
-                        log_len: 3.0,
-                    },
-                    Kernel::Matern52 {
-                        log_var: 0.4,
-                        log_len: 0.9,
-                    },
-                ),
-                Kernel::sum(
-                    Kernel::Constant { log_var: -1.5 },
-                    Kernel::White { log_var: -2.0 },
-                ),
-            ),
-        );
+        let kernel = crate::gp::kernel::tests::all_kinds();
         GpRegression::new(kernel, 0.7)
     }
 
