@@ -321,7 +321,17 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     drop(out);
 
     let (name, password) = plimsoll_server::ensure_demo_reviewer(&db_path, "demo")?;
-    let listener = tokio::net::TcpListener::bind(("127.0.0.1", opts.review_port)).await?;
+    // The configured port, or any free one when it is taken.
+    let listener = match tokio::net::TcpListener::bind(("127.0.0.1", opts.review_port)).await {
+        Ok(l) => l,
+        Err(e) => {
+            println!(
+                "(port {} is not available: {e}; using a free port instead)",
+                opts.review_port
+            );
+            tokio::net::TcpListener::bind(("127.0.0.1", 0)).await?
+        }
+    };
     let review = plimsoll_server::serve_review(&db_path, listener).await?;
     println!();
     println!("Clinician review page: {}", review.url());
