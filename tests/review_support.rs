@@ -23,9 +23,9 @@ use crate::support::{TestServer, study_config};
 
 pub const STUDY: &str = "review-study";
 pub const OTHER_STUDY: &str = "other-study";
-pub const REVIEWER: &str = "dr-ada";
+pub const REVIEWER: &str = "reviewer-one";
 pub const PASSWORD: &str = "correct horse battery";
-pub const OUTSIDER: &str = "dr-bob";
+pub const OUTSIDER: &str = "reviewer-two";
 
 pub fn day(s: &str) -> NaiveDate {
     s.parse().expect("ISO date")
