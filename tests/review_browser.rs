@@ -153,6 +153,24 @@ impl Browser {
         self.cmd("POST", "/url", Some(json!({ "url": url }))).await;
     }
 
+    /// Waits (bounded, 10 s) until the current URL satisfies `want`, after a
+    /// click that navigates: WebDriver may answer the click before the new
+    /// page has committed. Returns the URL; panics with it on timeout.
+    async fn url_when(&self, what: &str, want: impl Fn(&str) -> bool) -> String {
+        let deadline = std::time::Instant::now() + std::time::Duration::from_secs(10);
+        loop {
+            let url = self.url().await;
+            if want(&url) {
+                return url;
+            }
+            assert!(
+                std::time::Instant::now() < deadline,
+                "URL never became {what}; still {url}"
+            );
+            tokio::time::sleep(std::time::Duration::from_millis(50)).await;
+        }
+    }
+
     async fn url(&self) -> String {
         self.cmd("GET", "/url", None)
             .await
@@ -296,13 +314,17 @@ async fn review_steps(b: &Browser, base: &str, alert: u64) -> PathBuf {
     b.type_into("#name", REVIEWER).await;
     b.type_into("#password", PASSWORD).await;
     b.click("button[type=submit]").await;
-    assert_eq!(b.url().await, format!("{base}/"));
+    let home = format!("{base}/");
+    b.url_when("the study list", |u| u == home).await;
     assert!(b.text("main").await.contains("Studies you are assigned to"));
 
     // Keyboard: the first Tab stop is the skip link.
     assert_eq!(b.tab_and_focused_text().await, "Skip to content");
 
     b.click(&format!("a[href='/study/{STUDY}']")).await;
+    let study_path = format!("/study/{STUDY}");
+    b.url_when("the study overview", |u| u.ends_with(&study_path))
+        .await;
     b.resize(1280, 1500).await;
     assert!(
         b.text("main")
@@ -323,7 +345,9 @@ async fn review_steps(b: &Browser, base: &str, alert: u64) -> PathBuf {
     b.screenshot("review-3-queue.png").await;
 
     b.click("#queue tbody tr a").await;
-    assert!(b.url().await.ends_with(&format!("/flag/{alert}")));
+    let flag_path = format!("/flag/{alert}");
+    b.url_when("the flag page", |u| u.ends_with(&flag_path))
+        .await;
     assert!(
         b.text(".caution")
             .await
@@ -348,11 +372,9 @@ async fn review_steps(b: &Browser, base: &str, alert: u64) -> PathBuf {
     b.type_into("#note", "Reviewed with the care team; will phone today.")
         .await;
     b.click("button[value=acknowledge]").await;
-    assert!(
-        b.url()
-            .await
-            .contains(&format!("/flag/{alert}?done=acknowledge"))
-    );
+    let done = format!("/flag/{alert}?done=acknowledge");
+    b.url_when("the acknowledged flag", |u| u.contains(&done))
+        .await;
     assert_eq!(b.text("p.notice").await, "Recorded: acknowledged.");
     let history = b.text("#history").await;
     assert!(history.contains("Acknowledged"), "{history}");
