@@ -1,7 +1,7 @@
 //! Bounded mutation fuzzing of the cohort CSV reader (a plain mutation loop,
 //! no coverage guidance). Starts from small hand-written `daily.csv` files
 //! (valid, CRLF, BOM with a quoted id and an unknown column), applies random byte-level and CSV-aware mutations (flip,
-//! insert, delete, duplicate a line, swap fields, inject quotes, BOMs, CRs,
+//! insert, delete, duplicate a line, truncate, inject quotes, BOMs, CRs,
 //! NULs and invalid UTF-8), and checks on every input that the reader
 //!
 //! 1. never panics,
