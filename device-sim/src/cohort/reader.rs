@@ -142,6 +142,45 @@ fn open_csv(path: &Path) -> Result<CsvFile, CohortError> {
     })
 }
 
+/// What [`next_row`] found.
+enum NextRow {
+    /// The end of the file.
+    End,
+    /// A record with the wrong number of fields, already reported.
+    Skipped,
+    /// A record with one field per header column, starting on this 1-based line.
+    Row(u64),
+}
+
+/// Reads the next record into `record`. A record whose field count differs
+/// from the header's is reported to `issues` (under `Abort` that is the
+/// error) and returned as [`NextRow::Skipped`].
+fn next_row(
+    reader: &mut csv::Reader<BufReader<File>>,
+    record: &mut csv::ByteRecord,
+    lines: &mut LineCounter,
+    issues: &mut Issues<'_>,
+    n_fields: usize,
+) -> Result<NextRow, CohortError> {
+    match reader.read_byte_record(record) {
+        Ok(true) => {}
+        Ok(false) => return Ok(NextRow::End),
+        Err(e) => {
+            return Err(CohortError::Csv {
+                path: issues.path.to_owned(),
+                source: e,
+            });
+        }
+    }
+    let line = lines.line_of(record.position())?;
+    if record.len() != n_fields {
+        let reason = format!("row has {} fields, header has {n_fields}", record.len());
+        issues.row(line, None, reason)?;
+        return Ok(NextRow::Skipped);
+    }
+    Ok(NextRow::Row(line))
+}
+
 /// Collects issues for one file and applies the bad-row policy.
 struct Issues<'a> {
     path: &'a Path,
@@ -338,30 +377,24 @@ pub fn read_daily(
     let mut n_rows = 0usize;
 
     loop {
-        match reader.read_byte_record(&mut record) {
-            Ok(true) => {}
-            Ok(false) => break,
-            Err(e) => {
-                return Err(CohortError::Csv {
-                    path: path.clone(),
-                    source: e,
-                });
+        let next = next_row(
+            &mut reader,
+            &mut record,
+            &mut lines,
+            &mut issues,
+            header.len(),
+        )?;
+        let line = match next {
+            NextRow::End => break,
+            NextRow::Skipped => {
+                n_rows += 1;
+                continue;
             }
-        }
-        n_rows += 1;
-        let line = lines.line_of(record.position())?;
-        if record.len() != header.len() {
-            issues.row(
-                line,
-                None,
-                format!(
-                    "row has {} fields, header has {}",
-                    record.len(),
-                    header.len()
-                ),
-            )?;
-            continue;
-        }
+            NextRow::Row(line) => {
+                n_rows += 1;
+                line
+            }
+        };
         let mut bad = false;
         let participant = match check_participant(&record[participant_col]) {
             Ok(p) => Some(p),
@@ -507,26 +540,17 @@ pub fn read_participants(
     let mut first_line: HashMap<String, u64> = HashMap::new();
     let mut record = csv::ByteRecord::new();
     loop {
-        match reader.read_byte_record(&mut record) {
-            Ok(true) => {}
-            Ok(false) => break,
-            Err(e) => {
-                return Err(CohortError::Csv {
-                    path: path.clone(),
-                    source: e,
-                });
-            }
-        }
-        let line = lines.line_of(record.position())?;
-        if record.len() != header.len() {
-            let reason = format!(
-                "row has {} fields, header has {}",
-                record.len(),
-                header.len()
-            );
-            issues.row(line, None, reason)?;
-            continue;
-        }
+        let line = match next_row(
+            &mut reader,
+            &mut record,
+            &mut lines,
+            &mut issues,
+            header.len(),
+        )? {
+            NextRow::End => break,
+            NextRow::Skipped => continue,
+            NextRow::Row(line) => line,
+        };
         let participant = match check_participant(&record[participant_col]) {
             Ok(p) => p.to_owned(),
             Err(reason) => {
@@ -620,26 +644,17 @@ pub fn read_events(
     let mut events = Vec::new();
     let mut record = csv::ByteRecord::new();
     loop {
-        match reader.read_byte_record(&mut record) {
-            Ok(true) => {}
-            Ok(false) => break,
-            Err(e) => {
-                return Err(CohortError::Csv {
-                    path: path.clone(),
-                    source: e,
-                });
-            }
-        }
-        let line = lines.line_of(record.position())?;
-        if record.len() != header.len() {
-            let reason = format!(
-                "row has {} fields, header has {}",
-                record.len(),
-                header.len()
-            );
-            issues.row(line, None, reason)?;
-            continue;
-        }
+        let line = match next_row(
+            &mut reader,
+            &mut record,
+            &mut lines,
+            &mut issues,
+            header.len(),
+        )? {
+            NextRow::End => break,
+            NextRow::Skipped => continue,
+            NextRow::Row(line) => line,
+        };
         let mut bad = false;
         let participant = match check_participant(&record[participant_col]) {
             Ok(p) => p.to_owned(),
