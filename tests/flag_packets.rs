@@ -4,9 +4,10 @@
 //! malformed packets are INVALID_ARGUMENT naming the field; resending is
 //! idempotent.
 
-use plimsoll_device::client::{FlagSender, FlagSharing, enroll};
+use plimsoll_device::client::{FlagSender, FlagSharing, authorized};
 use plimsoll_device::packets::to_pb;
 use plimsoll_device::signal::Signal;
+use plimsoll_proto::auth::DeviceCredential;
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
 use plimsoll_server::review::db;
@@ -32,21 +33,20 @@ async fn start(dir: &std::path::Path) -> TestServer {
     .await
 }
 
-fn columns() -> Vec<String> {
-    vec!["resting_hr_bpm".into(), "hrv_rmssd_ms".into()]
-}
+const COLUMNS: [&str; 2] = ["resting_hr_bpm", "hrv_rmssd_ms"];
 
 async fn submit(
     client: &mut AggregatorClient<Channel>,
-    device_id: u64,
+    device: &DeviceCredential,
     packet: pb::FlagPacket,
 ) -> Result<u64, tonic::Status> {
+    let request = pb::SubmitFlagPacketRequest {
+        study_id: STUDY.into(),
+        device_id: device.device_id,
+        packet: Some(packet),
+    };
     client
-        .submit_flag_packet(pb::SubmitFlagPacketRequest {
-            study_id: STUDY.into(),
-            device_id,
-            packet: Some(packet),
-        })
+        .submit_flag_packet(authorized(device, request))
         .await
         .map(|r| r.into_inner().packet_id)
 }
@@ -61,10 +61,10 @@ async fn consenting_device_packet_is_stored_and_resending_is_idempotent() {
     let dir = tempfile::tempdir().unwrap();
     let server = start(dir.path()).await;
     let mut client = server.client();
-    let id = enroll(&mut client, STUDY, "p-1", columns(), FlagSharing::Consented)
-        .await
-        .unwrap();
-    let mut sender = FlagSender::new(server.channel(), STUDY, id, FlagSharing::Consented)
+    let id = server
+        .enroll(STUDY, "p-1", &COLUMNS, FlagSharing::Consented)
+        .await;
+    let mut sender = FlagSender::new(server.channel(), STUDY, id.clone(), FlagSharing::Consented)
         .expect("a consenting device has a sender");
     let packet = scenario_packet();
     let first = sender.send(&packet).await.unwrap();
@@ -115,7 +115,7 @@ async fn consenting_device_packet_is_stored_and_resending_is_idempotent() {
     // A different packet under the same (device, signal, kind, day) is refused.
     let mut changed = to_pb(&packet);
     changed.score += 1.0;
-    let err = submit(&mut client, id, changed).await.unwrap_err();
+    let err = submit(&mut client, &id, changed).await.unwrap_err();
     assert_eq!(err.code(), Code::AlreadyExists, "{err:?}");
     server.stop().await;
 }
@@ -125,13 +125,13 @@ async fn device_without_consent_sends_nothing_and_is_refused() {
     let dir = tempfile::tempdir().unwrap();
     let server = start(dir.path()).await;
     let mut client = server.client();
-    let id = enroll(&mut client, STUDY, "p-2", columns(), FlagSharing::Withheld)
-        .await
-        .unwrap();
+    let id = server
+        .enroll(STUDY, "p-2", &COLUMNS, FlagSharing::Withheld)
+        .await;
     // Device side: no sender can be made without consent.
-    assert!(FlagSender::new(server.channel(), STUDY, id, FlagSharing::Withheld).is_none());
+    assert!(FlagSender::new(server.channel(), STUDY, id.clone(), FlagSharing::Withheld).is_none());
     // Server side: a packet sent anyway (bypassing the device code) is refused.
-    let err = submit(&mut client, id, to_pb(&scenario_packet()))
+    let err = submit(&mut client, &id, to_pb(&scenario_packet()))
         .await
         .unwrap_err();
     assert_eq!(err.code(), Code::FailedPrecondition, "{err:?}");
@@ -141,21 +141,27 @@ async fn device_without_consent_sends_nothing_and_is_refused() {
         err.message()
     );
     // Consent is checked before content: a malformed packet gets the same answer.
-    let err = submit(&mut client, id, pb::FlagPacket::default())
+    let err = submit(&mut client, &id, pb::FlagPacket::default())
         .await
         .unwrap_err();
     assert_eq!(err.code(), Code::FailedPrecondition, "{err:?}");
     assert!(stored(dir.path()).is_empty(), "nothing was stored");
 
     // Withdrawing consent by enrolling again stops packets from then on.
-    let consenting = enroll(&mut client, STUDY, "p-3", columns(), FlagSharing::Consented)
-        .await
-        .unwrap();
-    let again = enroll(&mut client, STUDY, "p-3", columns(), FlagSharing::Withheld)
-        .await
-        .unwrap();
+    let consenting = server
+        .enroll(STUDY, "p-3", &COLUMNS, FlagSharing::Consented)
+        .await;
+    let again = server
+        .enroll_with_secret(
+            STUDY,
+            "p-3",
+            &COLUMNS,
+            FlagSharing::Withheld,
+            &consenting.secret,
+        )
+        .await;
     assert_eq!(consenting, again);
-    let err = submit(&mut client, again, to_pb(&scenario_packet()))
+    let err = submit(&mut client, &again, to_pb(&scenario_packet()))
         .await
         .unwrap_err();
     assert_eq!(err.code(), Code::FailedPrecondition);
@@ -169,9 +175,9 @@ async fn malformed_packets_are_refused_naming_the_field() {
     let dir = tempfile::tempdir().unwrap();
     let server = start(dir.path()).await;
     let mut client = server.client();
-    let id = enroll(&mut client, STUDY, "p-4", columns(), FlagSharing::Consented)
-        .await
-        .unwrap();
+    let id = server
+        .enroll(STUDY, "p-4", &COLUMNS, FlagSharing::Consented)
+        .await;
     let good = to_pb(&scenario_packet());
     type Edit = fn(&mut pb::FlagPacket);
     let cases: [(&str, Edit); 9] = [
@@ -196,10 +202,11 @@ async fn malformed_packets_are_refused_naming_the_field() {
     for (field, edit) in cases {
         let mut p = good.clone();
         edit(&mut p);
-        let err = submit(&mut client, id, p).await.unwrap_err();
+        let err = submit(&mut client, &id, p).await.unwrap_err();
         assert_eq!(err.code(), Code::InvalidArgument, "{field}: {err:?}");
         assert!(
-            err.message().starts_with(field),
+            err.message()
+                .starts_with(&format!("SubmitFlagPacket: {field}")),
             "message should name {field}: {}",
             err.message()
         );

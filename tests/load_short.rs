@@ -4,7 +4,9 @@
 //! under concurrency only — every update accepted exactly once and the
 //! round's average exact — never timing.
 
+use plimsoll_device::client::{authorized, new_device_secret};
 use plimsoll_device::signal::Signal;
+use plimsoll_proto::auth::DeviceCredential;
 use plimsoll_proto::v1 as pb;
 
 use crate::support::{TestServer, study_config};
@@ -21,28 +23,38 @@ async fn a_thousand_concurrent_devices_complete_one_round() {
     // Four HTTP/2 connections shared by all devices (as behind a gateway);
     // a thousand separate connections would test the OS's listen backlog.
     let channels: Vec<_> = (0..4).map(|_| server.channel()).collect();
+    let code = server.code("load").to_owned();
     let mut tasks = tokio::task::JoinSet::new();
     for i in 0..N {
+        let code = code.clone();
         let mut c =
             plimsoll_proto::v1::aggregator_client::AggregatorClient::new(channels[i % 4].clone());
         tasks.spawn(async move {
+            let secret = new_device_secret();
             let id = c
                 .enroll(pb::EnrollRequest {
                     study_id: "load".into(),
                     participant_label: format!("dev-{i:04}"),
                     signals: vec!["resting_hr_bpm".into()],
-                    consent_share_flags: false,
+                    enrollment_code: code,
+                    device_secret: secret.clone(),
+                    ..Default::default()
                 })
                 .await
                 .unwrap()
                 .into_inner()
                 .device_id;
+            let me = DeviceCredential {
+                device_id: id,
+                secret,
+            };
+            let request = pb::FetchTaskRequest {
+                study_id: "load".into(),
+                device_id: id,
+                wait_ms: 10_000,
+            };
             let task = match c
-                .fetch_task(pb::FetchTaskRequest {
-                    study_id: "load".into(),
-                    device_id: id,
-                    wait_ms: 10_000,
-                })
+                .fetch_task(authorized(&me, request))
                 .await
                 .unwrap()
                 .into_inner()
@@ -52,7 +64,7 @@ async fn a_thousand_concurrent_devices_complete_one_round() {
                 other => panic!("device {i}: expected a task, got {other:?}"),
             };
             // Values 0..9 cycling; each device weighs 10 days.
-            c.submit_update(pb::SubmitUpdateRequest {
+            let request = pb::SubmitUpdateRequest {
                 study_id: "load".into(),
                 device_id: id,
                 round_id: task.round_id,
@@ -62,10 +74,11 @@ async fn a_thousand_concurrent_devices_complete_one_round() {
                     n_days: 10,
                     local_loss: 1.0,
                 }],
-            })
-            .await
-            .unwrap()
-            .into_inner()
+            };
+            c.submit_update(authorized(&me, request))
+                .await
+                .unwrap()
+                .into_inner()
         });
     }
     let mut closed = 0;

@@ -7,7 +7,7 @@ use std::net::SocketAddr;
 use std::path::Path;
 
 use chrono::NaiveDate;
-use plimsoll_device::client::{FlagSender, FlagSharing, enroll};
+use plimsoll_device::client::{FlagSender, FlagSharing, authorized};
 use plimsoll_device::packets::{
     DayRow, FlagFacts, FlagPacket, PacketDayStatus, PacketKind, PacketLevel, build_packet,
 };
@@ -152,18 +152,17 @@ impl ReviewFixture {
         )
         .await;
         let mut client = grpc.client();
-        let columns: Vec<String> = signals.iter().map(|s| s.column().to_owned()).collect();
-        let device = enroll(
-            &mut client,
+        let columns: Vec<&str> = signals.iter().map(|s| s.column()).collect();
+        let device = grpc
+            .enroll(STUDY, "p-017", &columns, FlagSharing::Consented)
+            .await;
+        let mut sender = FlagSender::new(
+            grpc.channel(),
             STUDY,
-            "p-017",
-            columns.clone(),
+            device.clone(),
             FlagSharing::Consented,
         )
-        .await
         .unwrap();
-        let mut sender =
-            FlagSender::new(grpc.channel(), STUDY, device, FlagSharing::Consented).unwrap();
         let alert = sender.send(&scenario_packet()).await.unwrap();
 
         let (_, rows) = scenario();
@@ -194,23 +193,18 @@ impl ReviewFixture {
 
         // A second device, without consent, so rounds can run: three rounds
         // with made-up updates give the overview a convergence chart.
-        let quiet = enroll(
-            &mut client,
-            STUDY,
-            "p-018",
-            columns.clone(),
-            FlagSharing::Withheld,
-        )
-        .await
-        .unwrap();
+        let quiet = grpc
+            .enroll(STUDY, "p-018", &columns, FlagSharing::Withheld)
+            .await;
         for round in 0..3u32 {
-            for (k, id) in [device, quiet].into_iter().enumerate() {
+            for (k, id) in [&device, &quiet].into_iter().enumerate() {
+                let request = pb::FetchTaskRequest {
+                    study_id: STUDY.into(),
+                    device_id: id.device_id,
+                    wait_ms: 2_000,
+                };
                 let task = match client
-                    .fetch_task(pb::FetchTaskRequest {
-                        study_id: STUDY.into(),
-                        device_id: id,
-                        wait_ms: 2_000,
-                    })
+                    .fetch_task(authorized(id, request))
                     .await
                     .unwrap()
                     .into_inner()
@@ -230,27 +224,19 @@ impl ReviewFixture {
                         local_loss: 1.4 + 0.2 * j as f64 + 0.5 * 0.5f64.powi(round as i32),
                     })
                     .collect();
-                client
-                    .submit_update(pb::SubmitUpdateRequest {
-                        study_id: STUDY.into(),
-                        device_id: id,
-                        round_id: task.round_id,
-                        updates,
-                    })
-                    .await
-                    .unwrap();
+                let request = pb::SubmitUpdateRequest {
+                    study_id: STUDY.into(),
+                    device_id: id.device_id,
+                    round_id: task.round_id,
+                    updates,
+                };
+                client.submit_update(authorized(id, request)).await.unwrap();
             }
         }
 
-        let other_device = enroll(
-            &mut client,
-            OTHER_STUDY,
-            "q-001",
-            columns,
-            FlagSharing::Consented,
-        )
-        .await
-        .unwrap();
+        let other_device = grpc
+            .enroll(OTHER_STUDY, "q-001", &columns, FlagSharing::Consented)
+            .await;
         let mut other_sender = FlagSender::new(
             grpc.channel(),
             OTHER_STUDY,

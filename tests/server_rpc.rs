@@ -3,7 +3,9 @@
 //! (each checks the status code, that the message names the field, and that
 //! the shared prior is untouched).
 
+use plimsoll_device::client::{FlagSharing, authorized};
 use plimsoll_device::signal::Signal;
+use plimsoll_proto::auth::{self, DeviceCredential};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
 use tonic::Code;
@@ -13,27 +15,20 @@ use crate::support::{TestServer, study_config};
 
 const STUDY: &str = "rpc-study";
 
-async fn enroll(client: &mut AggregatorClient<Channel>, label: &str) -> u64 {
-    client
-        .enroll(pb::EnrollRequest {
-            study_id: STUDY.into(),
-            participant_label: label.into(),
-            signals: vec!["resting_hr_bpm".into()],
-            consent_share_flags: false,
-        })
+async fn enroll(server: &TestServer, label: &str) -> DeviceCredential {
+    server
+        .enroll(STUDY, label, &["resting_hr_bpm"], FlagSharing::Withheld)
         .await
-        .unwrap()
-        .into_inner()
-        .device_id
 }
 
-async fn task(client: &mut AggregatorClient<Channel>, device_id: u64) -> pb::Task {
+async fn task(client: &mut AggregatorClient<Channel>, device: &DeviceCredential) -> pb::Task {
+    let request = pb::FetchTaskRequest {
+        study_id: STUDY.into(),
+        device_id: device.device_id,
+        wait_ms: 2_000,
+    };
     let r = client
-        .fetch_task(pb::FetchTaskRequest {
-            study_id: STUDY.into(),
-            device_id,
-            wait_ms: 2_000,
-        })
+        .fetch_task(authorized(device, request))
         .await
         .unwrap()
         .into_inner();
@@ -52,41 +47,54 @@ fn update(values: Vec<f64>, n_days: u32) -> pb::SignalUpdate {
     }
 }
 
+/// A submission for `device`, carrying its credential.
 fn submission(
-    device_id: u64,
+    device: &DeviceCredential,
     round_id: u64,
     updates: Vec<pb::SignalUpdate>,
-) -> pb::SubmitUpdateRequest {
-    pb::SubmitUpdateRequest {
-        study_id: STUDY.into(),
-        device_id,
-        round_id,
-        updates,
-    }
+) -> tonic::Request<pb::SubmitUpdateRequest> {
+    authorized(
+        device,
+        pb::SubmitUpdateRequest {
+            study_id: STUDY.into(),
+            device_id: device.device_id,
+            round_id,
+            updates,
+        },
+    )
 }
 
 /// Two enrolled devices with round 1 open; returns (server, client, ids, task).
 async fn two_devices(
     dir: &std::path::Path,
-) -> (TestServer, AggregatorClient<Channel>, [u64; 2], pb::Task) {
+) -> (
+    TestServer,
+    AggregatorClient<Channel>,
+    [DeviceCredential; 2],
+    pb::Task,
+) {
     let server = TestServer::start(
         &dir.join("agg.db"),
         vec![study_config(STUDY, &[Signal::RestingHr], 2, 3)],
     )
     .await;
     let mut client = server.client();
-    let a = enroll(&mut client, "p-a").await;
-    let b = enroll(&mut client, "p-b").await;
-    let t = task(&mut client, a).await;
+    let a = enroll(&server, "p-a").await;
+    let b = enroll(&server, "p-b").await;
+    let t = task(&mut client, &a).await;
     (server, client, [a, b], t)
 }
 
-async fn latest_prior(client: &mut AggregatorClient<Channel>) -> pb::PublishedPrior {
+async fn latest_prior(
+    client: &mut AggregatorClient<Channel>,
+    device: &DeviceCredential,
+) -> pb::PublishedPrior {
+    let request = pb::GetPriorRequest {
+        study_id: STUDY.into(),
+        version: 0,
+    };
     client
-        .get_prior(pb::GetPriorRequest {
-            study_id: STUDY.into(),
-            version: 0,
-        })
+        .get_prior(authorized(device, request))
         .await
         .unwrap()
         .into_inner()
@@ -96,11 +104,14 @@ async fn latest_prior(client: &mut AggregatorClient<Channel>) -> pb::PublishedPr
 /// the prior did not change.
 async fn expect_refused(
     client: &mut AggregatorClient<Channel>,
-    req: pb::SubmitUpdateRequest,
+    req: tonic::Request<pb::SubmitUpdateRequest>,
     code: Code,
     field: &str,
 ) {
-    let before = latest_prior(client).await;
+    // The prior is read with the credential the request carries.
+    let device = req.metadata().get(auth::METADATA_KEY).unwrap();
+    let device = DeviceCredential::parse(device.to_str().unwrap()).unwrap();
+    let before = latest_prior(client, &device).await;
     let err = client
         .submit_update(req)
         .await
@@ -112,7 +123,7 @@ async fn expect_refused(
         err.message()
     );
     assert_eq!(
-        latest_prior(client).await,
+        latest_prior(client, &device).await,
         before,
         "the shared prior must be untouched"
     );
@@ -150,16 +161,16 @@ async fn a_round_closes_with_the_day_weighted_average() {
     va[0] = 1.0;
     vb[0] = 4.0;
     client
-        .submit_update(submission(a, t.round_id, vec![update(va, 10)]))
+        .submit_update(submission(&a, t.round_id, vec![update(va, 10)]))
         .await
         .unwrap();
     let r = client
-        .submit_update(submission(b, t.round_id, vec![update(vb, 30)]))
+        .submit_update(submission(&b, t.round_id, vec![update(vb, 30)]))
         .await
         .unwrap()
         .into_inner();
     assert!(r.round_closed);
-    let prior = latest_prior(&mut client).await;
+    let prior = latest_prior(&mut client, &a).await;
     assert_eq!(prior.version, 1);
     // FedAvg by hand: (1·10 + 4·30) / 40 = 3.25.
     assert!((prior.params[0].values[0] - 3.25).abs() < 1e-12);
@@ -181,43 +192,43 @@ async fn restart_resumes_from_the_database() {
     let dir = tempfile::tempdir().unwrap();
     let (server, mut client, [a, b], t) = two_devices(dir.path()).await;
     client
-        .submit_update(submission(a, t.round_id, vec![update(vec![1.0; 7], 5)]))
+        .submit_update(submission(&a, t.round_id, vec![update(vec![1.0; 7], 5)]))
         .await
         .unwrap();
     client
-        .submit_update(submission(b, t.round_id, vec![update(vec![3.0; 7], 5)]))
+        .submit_update(submission(&b, t.round_id, vec![update(vec![3.0; 7], 5)]))
         .await
         .unwrap();
     // Round 2 is open; device a submits, then the server stops.
-    let t2 = task(&mut client, a).await;
+    let t2 = task(&mut client, &a).await;
     assert_eq!(t2.round_id, 2);
     client
-        .submit_update(submission(a, 2, vec![update(vec![0.0; 7], 5)]))
+        .submit_update(submission(&a, 2, vec![update(vec![0.0; 7], 5)]))
         .await
         .unwrap();
     server.stop().await;
 
     let server = TestServer::start(&dir.path().join("agg.db"), vec![]).await;
     let mut client = server.client();
-    let prior = latest_prior(&mut client).await;
+    let prior = latest_prior(&mut client, &a).await;
     assert_eq!(prior.version, 1, "the completed round survives the restart");
     assert_eq!(prior.params[0].values, vec![2.0; 7]);
     // The open round resumes: a's submission is remembered, b still has its task.
     let err = client
-        .submit_update(submission(a, 2, vec![update(vec![9.0; 7], 5)]))
+        .submit_update(submission(&a, 2, vec![update(vec![9.0; 7], 5)]))
         .await
         .unwrap_err();
     assert_eq!(err.code(), Code::AlreadyExists);
-    let tb = task(&mut client, b).await;
+    let tb = task(&mut client, &b).await;
     assert_eq!(tb.round_id, 2);
     let r = client
-        .submit_update(submission(b, 2, vec![update(vec![2.0; 7], 5)]))
+        .submit_update(submission(&b, 2, vec![update(vec![2.0; 7], 5)]))
         .await
         .unwrap()
         .into_inner();
     assert!(r.round_closed);
     assert_eq!(
-        latest_prior(&mut client).await.params[0].values,
+        latest_prior(&mut client, &a).await.params[0].values,
         vec![1.0; 7]
     );
     assert_eq!(
@@ -235,7 +246,7 @@ async fn nan_parameter_is_invalid_argument() {
     v[3] = f64::NAN;
     expect_refused(
         &mut client,
-        submission(a, t.round_id, vec![update(v, 10)]),
+        submission(&a, t.round_id, vec![update(v, 10)]),
         Code::InvalidArgument,
         "updates[0].values[3]",
     )
@@ -251,7 +262,7 @@ async fn infinite_parameter_is_invalid_argument() {
     v[6] = f64::INFINITY;
     expect_refused(
         &mut client,
-        submission(a, t.round_id, vec![update(v, 10)]),
+        submission(&a, t.round_id, vec![update(v, 10)]),
         Code::InvalidArgument,
         "updates[0].values[6]",
     )
@@ -265,7 +276,7 @@ async fn wrong_length_parameters_are_invalid_argument() {
     let (server, mut client, [a, _], t) = two_devices(dir.path()).await;
     expect_refused(
         &mut client,
-        submission(a, t.round_id, vec![update(vec![0.0; 3], 10)]),
+        submission(&a, t.round_id, vec![update(vec![0.0; 3], 10)]),
         Code::InvalidArgument,
         "updates[0].values",
     )
@@ -279,14 +290,14 @@ async fn zero_day_count_and_empty_update_are_invalid_argument() {
     let (server, mut client, [a, _], t) = two_devices(dir.path()).await;
     expect_refused(
         &mut client,
-        submission(a, t.round_id, vec![update(vec![0.0; 7], 0)]),
+        submission(&a, t.round_id, vec![update(vec![0.0; 7], 0)]),
         Code::InvalidArgument,
         "updates[0].n_days",
     )
     .await;
     expect_refused(
         &mut client,
-        submission(a, t.round_id, vec![]),
+        submission(&a, t.round_id, vec![]),
         Code::InvalidArgument,
         "updates",
     )
@@ -299,17 +310,17 @@ async fn stale_round_is_failed_precondition() {
     let dir = tempfile::tempdir().unwrap();
     let (server, mut client, [a, b], t) = two_devices(dir.path()).await;
     client
-        .submit_update(submission(a, t.round_id, vec![update(vec![0.0; 7], 10)]))
+        .submit_update(submission(&a, t.round_id, vec![update(vec![0.0; 7], 10)]))
         .await
         .unwrap();
     client
-        .submit_update(submission(b, t.round_id, vec![update(vec![0.0; 7], 10)]))
+        .submit_update(submission(&b, t.round_id, vec![update(vec![0.0; 7], 10)]))
         .await
         .unwrap();
     // Round 1 is closed; a different late submission for it is refused.
     expect_refused(
         &mut client,
-        submission(a, 1, vec![update(vec![5.0; 7], 10)]),
+        submission(&a, 1, vec![update(vec![5.0; 7], 10)]),
         Code::FailedPrecondition,
         "round_id",
     )
@@ -323,7 +334,7 @@ async fn future_round_is_failed_precondition() {
     let (server, mut client, [a, _], _) = two_devices(dir.path()).await;
     expect_refused(
         &mut client,
-        submission(a, 99, vec![update(vec![0.0; 7], 10)]),
+        submission(&a, 99, vec![update(vec![0.0; 7], 10)]),
         Code::FailedPrecondition,
         "round_id",
     )
@@ -331,22 +342,30 @@ async fn future_round_is_failed_precondition() {
     server.stop().await;
 }
 
+/// A request naming another device than its credential's is refused, and
+/// so is one naming a study the device is not enrolled in.
 #[tokio::test]
-async fn unknown_device_is_not_found() {
+async fn a_device_may_submit_only_its_own_updates() {
     let dir = tempfile::tempdir().unwrap();
-    let (server, mut client, _, t) = two_devices(dir.path()).await;
-    expect_refused(
-        &mut client,
-        submission(4242, t.round_id, vec![update(vec![0.0; 7], 10)]),
-        Code::NotFound,
-        "device_id",
-    )
-    .await;
-    let mut other = submission(1, t.round_id, vec![update(vec![0.0; 7], 10)]);
-    other.study_id = "no-such-study".into();
+    let (server, mut client, [a, b], t) = two_devices(dir.path()).await;
+    let mut as_b = submission(&a, t.round_id, vec![update(vec![0.0; 7], 10)]);
+    as_b.get_mut().device_id = b.device_id;
+    expect_refused(&mut client, as_b, Code::PermissionDenied, "device_id").await;
+    let mut unknown = submission(&a, t.round_id, vec![update(vec![0.0; 7], 10)]);
+    unknown.get_mut().device_id = 4242;
+    expect_refused(&mut client, unknown, Code::PermissionDenied, "device_id").await;
+    let mut other = submission(&a, t.round_id, vec![update(vec![0.0; 7], 10)]);
+    other.get_mut().study_id = "no-such-study".into();
     let err = client.submit_update(other).await.unwrap_err();
-    assert_eq!(err.code(), Code::NotFound);
-    assert!(err.message().contains("study_id"));
+    assert_eq!(err.code(), Code::PermissionDenied);
+    assert!(err.message().contains("study_id"), "{}", err.message());
+    // Device b's own slot in the round is still free.
+    let r = client
+        .submit_update(submission(&b, t.round_id, vec![update(vec![1.0; 7], 10)]))
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(r.accepted_in_round, 1);
     server.stop().await;
 }
 
@@ -354,14 +373,14 @@ async fn unknown_device_is_not_found() {
 async fn duplicate_submission_is_already_exists_unless_identical() {
     let dir = tempfile::tempdir().unwrap();
     let (server, mut client, [a, _], t) = two_devices(dir.path()).await;
-    let first = submission(a, t.round_id, vec![update(vec![0.5; 7], 10)]);
-    client.submit_update(first.clone()).await.unwrap();
+    let first = || submission(&a, t.round_id, vec![update(vec![0.5; 7], 10)]);
+    client.submit_update(first()).await.unwrap();
     // An identical retry is answered as before (idempotent), not double-counted.
-    let again = client.submit_update(first).await.unwrap().into_inner();
+    let again = client.submit_update(first()).await.unwrap().into_inner();
     assert_eq!(again.accepted_in_round, 1);
     expect_refused(
         &mut client,
-        submission(a, t.round_id, vec![update(vec![0.7; 7], 10)]),
+        submission(&a, t.round_id, vec![update(vec![0.7; 7], 10)]),
         Code::AlreadyExists,
         "device",
     )
@@ -377,7 +396,7 @@ async fn unknown_signal_is_invalid_argument() {
     u.signal = "steps".into();
     expect_refused(
         &mut client,
-        submission(a, t.round_id, vec![u]),
+        submission(&a, t.round_id, vec![u]),
         Code::InvalidArgument,
         "updates[0].signal",
     )
@@ -397,14 +416,14 @@ async fn stragglers_are_excluded_and_the_round_closes_with_quorum() {
     let server = TestServer::start(&dir.path().join("agg.db"), vec![config]).await;
     let mut client = server.client();
     let ids = [
-        enroll(&mut client, "p-a").await,
-        enroll(&mut client, "p-b").await,
-        enroll(&mut client, "p-c").await,
+        enroll(&server, "p-a").await,
+        enroll(&server, "p-b").await,
+        enroll(&server, "p-c").await,
     ];
-    let t = task(&mut client, ids[0]).await;
+    let t = task(&mut client, &ids[0]).await;
     client
         .submit_update(submission(
-            ids[0],
+            &ids[0],
             t.round_id,
             vec![update(vec![1.0; 7], 10)],
         ))
@@ -412,7 +431,7 @@ async fn stragglers_are_excluded_and_the_round_closes_with_quorum() {
         .unwrap();
     client
         .submit_update(submission(
-            ids[1],
+            &ids[1],
             t.round_id,
             vec![update(vec![3.0; 7], 10)],
         ))
@@ -420,9 +439,9 @@ async fn stragglers_are_excluded_and_the_round_closes_with_quorum() {
         .unwrap();
     // Long-poll as device a: it is woken when the deadline closes the round
     // and round 2 opens (no sleeping in the test).
-    let next = task(&mut client, ids[0]).await;
+    let next = task(&mut client, &ids[0]).await;
     assert_eq!(next.round_id, t.round_id + 1);
-    let prior = latest_prior(&mut client).await;
+    let prior = latest_prior(&mut client, &ids[0]).await;
     assert_eq!(prior.version, 1);
     assert_eq!(
         prior.params[0].values,
@@ -432,7 +451,7 @@ async fn stragglers_are_excluded_and_the_round_closes_with_quorum() {
     assert_eq!(prior.contributions[0].n_devices, 2);
     let late = client
         .submit_update(submission(
-            ids[2],
+            &ids[2],
             t.round_id,
             vec![update(vec![50.0; 7], 10)],
         ))
@@ -451,17 +470,17 @@ async fn a_round_without_quorum_is_retried_never_half_applied() {
     config.round_deadline_ms = 300;
     let server = TestServer::start(&dir.path().join("agg.db"), vec![config]).await;
     let mut client = server.client();
-    let a = enroll(&mut client, "p-a").await;
-    let _b = enroll(&mut client, "p-b").await;
-    let t = task(&mut client, a).await;
+    let a = enroll(&server, "p-a").await;
+    let _b = enroll(&server, "p-b").await;
+    let t = task(&mut client, &a).await;
     client
-        .submit_update(submission(a, t.round_id, vec![update(vec![9.0; 7], 10)]))
+        .submit_update(submission(&a, t.round_id, vec![update(vec![9.0; 7], 10)]))
         .await
         .unwrap();
     // Device a is woken when the failed round is replaced by a retry.
-    let retry = task(&mut client, a).await;
+    let retry = task(&mut client, &a).await;
     assert_eq!(retry.round_id, t.round_id + 1);
-    let prior = latest_prior(&mut client).await;
+    let prior = latest_prior(&mut client, &a).await;
     assert_eq!(
         prior.version, 0,
         "a round without quorum must not be applied"

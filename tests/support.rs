@@ -1,8 +1,12 @@
 //! Shared helpers: a real aggregator on a loopback ephemeral port, study
 //! configurations, and a gRPC client.
 
+use std::collections::BTreeMap;
 use std::path::Path;
 use std::sync::Arc;
+
+use plimsoll_device::client::{EnrollmentRequest, FlagSharing, enroll, new_device_secret};
+use plimsoll_proto::auth::DeviceCredential;
 
 use plimsoll_device::demo::initial_layouts;
 use plimsoll_device::signal::Signal;
@@ -32,13 +36,18 @@ pub fn study_config(id: &str, signals: &[Signal], devices: u32, rounds: u32) -> 
 pub struct TestServer {
     pub coordinator: Arc<Coordinator>,
     pub server: RunningServer,
+    /// Enrollment code of each study created by `start`.
+    pub codes: BTreeMap<String, String>,
 }
 
 impl TestServer {
     pub async fn start(db: &Path, studies: Vec<StudyConfig>) -> TestServer {
         let coordinator = Arc::new(Coordinator::open(db).expect("open database"));
+        let mut codes = BTreeMap::new();
         for s in studies {
-            coordinator.create_study(s, now_ms()).expect("create study");
+            let id = s.study_id.clone();
+            let code = coordinator.create_study(s, now_ms()).expect("create study");
+            codes.insert(id, code);
         }
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
         let server = plimsoll_server::serve(coordinator.clone(), listener)
@@ -47,7 +56,51 @@ impl TestServer {
         TestServer {
             coordinator,
             server,
+            codes,
         }
+    }
+
+    /// The enrollment code of `study` (created by `start`).
+    pub fn code(&self, study: &str) -> &str {
+        &self.codes[study]
+    }
+
+    /// Enrols `label` in `study` with `signals` and a fresh device secret,
+    /// as a device would.
+    pub async fn enroll(
+        &self,
+        study: &str,
+        label: &str,
+        signals: &[&str],
+        sharing: FlagSharing,
+    ) -> DeviceCredential {
+        self.enroll_with_secret(study, label, signals, sharing, &new_device_secret())
+            .await
+    }
+
+    /// [`Self::enroll`] with a given device secret (enrolling again with the
+    /// same secret is a retry or a change of consent).
+    pub async fn enroll_with_secret(
+        &self,
+        study: &str,
+        label: &str,
+        signals: &[&str],
+        sharing: FlagSharing,
+        secret: &str,
+    ) -> DeviceCredential {
+        enroll(
+            &mut self.client(),
+            EnrollmentRequest {
+                study_id: study,
+                enrollment_code: self.code(study),
+                participant: label,
+                signals: signals.iter().map(|s| (*s).to_owned()).collect(),
+                sharing,
+                device_secret: secret,
+            },
+        )
+        .await
+        .expect("enrol")
     }
 
     pub fn channel(&self) -> Channel {

@@ -8,15 +8,20 @@
 //! signal a parameter vector, a day count and a scalar loss. With consent,
 //! and only then, one flag packet per alarm (see [`crate::packets`] for
 //! exactly what it holds), sent through a [`FlagSender`].
+//!
+//! Identity: the device enrols with the study's enrollment code and a
+//! 256-bit secret it draws itself ([`new_device_secret`]); every later call
+//! carries that credential ([`DeviceCredential`]) in its metadata.
 
 use std::path::PathBuf;
 use std::sync::Arc;
 use std::time::Duration;
 
 use anyhow::{Context, anyhow};
+use plimsoll_proto::auth::{self, DeviceCredential};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
-use rand::SeedableRng;
+use rand::{RngCore, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use tokio::sync::Semaphore;
 use tonic::transport::Channel;
@@ -38,6 +43,8 @@ pub const MIN_DAYS_TO_ENROLL: usize = 7;
 #[derive(Debug, Clone)]
 pub struct DeviceOptions {
     pub study_id: String,
+    /// The study's enrollment code, as handed out by the study team.
+    pub enrollment_code: String,
     /// Folder the device writes its outputs into (created if missing).
     pub out_dir: PathBuf,
     /// Long-poll length for FetchTask, milliseconds.
@@ -63,30 +70,81 @@ impl FlagSharing {
     }
 }
 
-/// Enrols a participant's device with `signals` (column names) and the
-/// participant's flag-sharing choice; returns the device id.
+/// A new device secret: 32 bytes from the thread-local CSPRNG (ChaCha12
+/// seeded by the operating system), as 64 lower-case hex characters.
+pub fn new_device_secret() -> String {
+    let mut bytes = [0u8; 32];
+    rand::rng().fill_bytes(&mut bytes);
+    bytes.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+/// `message` as a request carrying `credential` in its metadata.
+pub fn authorized<T>(credential: &DeviceCredential, message: T) -> tonic::Request<T> {
+    let mut request = tonic::Request::new(message);
+    let value = credential
+        .header_value()
+        .parse()
+        .expect("a decimal id and hex secret form a valid metadata value");
+    request.metadata_mut().insert(auth::METADATA_KEY, value);
+    request
+}
+
+/// What a device enrols with.
+#[derive(Clone)]
+pub struct EnrollmentRequest<'a> {
+    pub study_id: &'a str,
+    /// The study's enrollment code.
+    pub enrollment_code: &'a str,
+    /// Pseudonymous participant label.
+    pub participant: &'a str,
+    /// Signal column names the device contributes.
+    pub signals: Vec<String>,
+    pub sharing: FlagSharing,
+    /// The device's secret ([`new_device_secret`]); the same secret makes a
+    /// repeated enrolment a retry.
+    pub device_secret: &'a str,
+}
+
+impl std::fmt::Debug for EnrollmentRequest<'_> {
+    // The code and the secret never reach a log.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("EnrollmentRequest")
+            .field("study_id", &self.study_id)
+            .field("participant", &self.participant)
+            .field("signals", &self.signals)
+            .field("sharing", &self.sharing)
+            .finish_non_exhaustive()
+    }
+}
+
+/// Enrols a participant's device; returns its credential. Retried on
+/// transient failures: the secret makes a retry after a lost answer return
+/// the same device id.
 pub async fn enroll(
     client: &mut AggregatorClient<Channel>,
-    study_id: &str,
-    participant: &str,
-    signals: Vec<String>,
-    sharing: FlagSharing,
-) -> anyhow::Result<u64> {
+    e: EnrollmentRequest<'_>,
+) -> anyhow::Result<DeviceCredential> {
     let request = pb::EnrollRequest {
-        study_id: study_id.to_owned(),
-        participant_label: participant.to_owned(),
-        signals,
-        consent_share_flags: sharing.consented(),
+        study_id: e.study_id.to_owned(),
+        participant_label: e.participant.to_owned(),
+        signals: e.signals,
+        consent_share_flags: e.sharing.consented(),
+        enrollment_code: e.enrollment_code.to_owned(),
+        device_secret: e.device_secret.to_owned(),
     };
-    Ok(retry(&Backoff::default(), seed_of(participant), || {
+    let device_id = retry(&Backoff::default(), seed_of(e.participant), || {
         let mut c = client.clone();
         let r = request.clone();
         async move { c.enroll(r).await }
     })
     .await
-    .with_context(|| format!("Enroll for participant {participant}"))?
+    .with_context(|| format!("Enroll for participant {}", e.participant))?
     .into_inner()
-    .device_id)
+    .device_id;
+    Ok(DeviceCredential {
+        device_id,
+        secret: e.device_secret.to_owned(),
+    })
 }
 
 /// Sends flag packets for one enrolled device. It exists only for a device
@@ -96,22 +154,22 @@ pub async fn enroll(
 pub struct FlagSender {
     client: AggregatorClient<Channel>,
     study_id: String,
-    device_id: u64,
+    credential: DeviceCredential,
 }
 
 impl FlagSender {
-    /// A sender for `device_id`, or `None` when the participant's recorded
-    /// choice is [`FlagSharing::Withheld`].
+    /// A sender for the device of `credential`, or `None` when the
+    /// participant's recorded choice is [`FlagSharing::Withheld`].
     pub fn new(
         channel: Channel,
         study_id: &str,
-        device_id: u64,
+        credential: DeviceCredential,
         sharing: FlagSharing,
     ) -> Option<FlagSender> {
         sharing.consented().then(|| FlagSender {
             client: AggregatorClient::new(channel),
             study_id: study_id.to_owned(),
-            device_id,
+            credential,
         })
     }
 
@@ -119,18 +177,23 @@ impl FlagSender {
     /// same packet returns the same id.
     pub async fn send(&mut self, packet: &crate::packets::FlagPacket) -> anyhow::Result<u64> {
         crate::packets::check(packet)?;
+        let device_id = self.credential.device_id;
+        let request = authorized(
+            &self.credential,
+            pb::SubmitFlagPacketRequest {
+                study_id: self.study_id.clone(),
+                device_id,
+                packet: Some(crate::packets::to_pb(packet)),
+            },
+        );
         let response = self
             .client
-            .submit_flag_packet(pb::SubmitFlagPacketRequest {
-                study_id: self.study_id.clone(),
-                device_id: self.device_id,
-                packet: Some(crate::packets::to_pb(packet)),
-            })
+            .submit_flag_packet(request)
             .await
             .with_context(|| {
                 format!(
-                    "SubmitFlagPacket for device {} (flag of {})",
-                    self.device_id, packet.flag.date
+                    "SubmitFlagPacket for device {device_id} (flag of {})",
+                    packet.flag.date
                 )
             })?;
         Ok(response.into_inner().packet_id)
@@ -195,14 +258,20 @@ pub async fn run_device_with(
             "participant {participant} has no signal with {MIN_DAYS_TO_ENROLL} observed days"
         ));
     }
-    let device_id = enroll(
+    let secret = new_device_secret();
+    let credential = enroll(
         &mut client,
-        &opts.study_id,
-        &participant,
-        local.iter().map(|(s, _)| s.column().to_owned()).collect(),
-        sharing,
+        EnrollmentRequest {
+            study_id: &opts.study_id,
+            enrollment_code: &opts.enrollment_code,
+            participant: &participant,
+            signals: local.iter().map(|(s, _)| s.column().to_owned()).collect(),
+            sharing,
+            device_secret: &secret,
+        },
     )
     .await?;
+    let device_id = credential.device_id;
     let local = Arc::new(local);
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
     let backoff = Backoff::default();
@@ -215,7 +284,7 @@ pub async fn run_device_with(
         };
         let response = retry(&backoff, opts.seed ^ 0xfe7c, || {
             let mut c = client.clone();
-            let r = request.clone();
+            let r = authorized(&credential, request.clone());
             async move { c.fetch_task(r).await }
         })
         .await
@@ -247,7 +316,7 @@ pub async fn run_device_with(
                 // submission is answered as the first one was.
                 retry(&backoff, seed, || {
                     let mut c = client.clone();
-                    let r = request.clone();
+                    let r = authorized(&credential, request.clone());
                     async move { c.submit_update(r).await }
                 })
                 .await
@@ -271,7 +340,7 @@ pub async fn run_device_with(
     };
     let prior = retry(&backoff, opts.seed ^ 0x9e1, || {
         let mut c = client.clone();
-        let r = request.clone();
+        let r = authorized(&credential, request.clone());
         async move { c.get_prior(r).await }
     })
     .await
@@ -303,7 +372,7 @@ pub async fn run_device_with(
     // reviewers; without it `FlagSender::new` gives no sender and nothing
     // leaves the device.
     let mut packets_sent = 0;
-    if let Some(mut sender) = FlagSender::new(channel, &opts.study_id, device_id, sharing) {
+    if let Some(mut sender) = FlagSender::new(channel, &opts.study_id, credential, sharing) {
         let rows: Vec<DayRow> = detection.days.iter().map(DayRow::from).collect();
         for flag in detection
             .flags

@@ -107,7 +107,7 @@ pub async fn run_federated_with(
     );
     let study_id = config.study_id.clone();
     let rounds = config.rounds;
-    coordinator.create_study(config, plimsoll_server::service::now_ms())?;
+    let enrollment_code = coordinator.create_study(config, plimsoll_server::service::now_ms())?;
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
     let server = plimsoll_server::serve(coordinator.clone(), listener).await?;
     let channel = connect_lazy(server.addr)?;
@@ -118,6 +118,7 @@ pub async fn run_federated_with(
     for (i, series) in cohort.participants.iter().enumerate() {
         let opts = DeviceOptions {
             study_id: study_id.clone(),
+            enrollment_code: enrollment_code.clone(),
             out_dir: devices_dir.join(&series.participant),
             wait_ms: 5_000,
             seed: 0x5eed_0000 + i as u64,

@@ -9,8 +9,10 @@
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+use plimsoll_proto::auth::{self, DeviceCredential};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
+use plimsoll_server::secrets::random_token;
 use plimsoll_server::{
     Coordinator, LocalTraining, SignalLayout, StudyConfig, serve, service::now_ms,
 };
@@ -18,6 +20,16 @@ use tokio::sync::Semaphore;
 use tonic::transport::{Channel, Endpoint};
 
 const TARGET_UPDATES_PER_S: f64 = 5_000.0;
+
+/// `message` carrying `device`'s credential, as every device call does.
+fn authorized<T>(device: &DeviceCredential, message: T) -> tonic::Request<T> {
+    let mut r = tonic::Request::new(message);
+    r.metadata_mut().insert(
+        auth::METADATA_KEY,
+        device.header_value().parse().expect("ASCII credential"),
+    );
+    r
+}
 
 fn peak_rss_mb() -> f64 {
     std::fs::read_to_string("/proc/self/status")
@@ -42,7 +54,7 @@ async fn main() -> anyhow::Result<()> {
     let concurrency: usize = args.get(2).map_or(Ok(256), |s| s.parse())?;
     let dir = tempfile::tempdir()?;
     let coordinator = Arc::new(Coordinator::open(&dir.path().join("load.db"))?);
-    coordinator.create_study(
+    let code = coordinator.create_study(
         StudyConfig {
             study_id: "load".into(),
             title: "load test".into(),
@@ -81,17 +93,24 @@ async fn main() -> anyhow::Result<()> {
     for i in 0..n {
         let mut c = AggregatorClient::new(channels[i % channels.len()].clone());
         let gate = gate.clone();
+        let code = code.clone();
         set.spawn(async move {
             let _p = gate.acquire_owned().await?;
+            let secret = random_token();
             let r = c
                 .enroll(pb::EnrollRequest {
                     study_id: "load".into(),
                     participant_label: format!("dev-{i:05}"),
                     signals: vec!["resting_hr_bpm".into()],
-                    consent_share_flags: false,
+                    enrollment_code: code,
+                    device_secret: secret.clone(),
+                    ..Default::default()
                 })
                 .await?;
-            anyhow::Ok(r.into_inner().device_id)
+            anyhow::Ok(DeviceCredential {
+                device_id: r.into_inner().device_id,
+                secret,
+            })
         });
     }
     let mut ids = Vec::with_capacity(n);
@@ -100,12 +119,13 @@ async fn main() -> anyhow::Result<()> {
     }
     let enroll_s = t0.elapsed().as_secs_f64();
 
+    let first = pb::FetchTaskRequest {
+        study_id: "load".into(),
+        device_id: ids[0].device_id,
+        wait_ms: 5_000,
+    };
     let round_id = match AggregatorClient::new(channels[0].clone())
-        .fetch_task(pb::FetchTaskRequest {
-            study_id: "load".into(),
-            device_id: ids[0],
-            wait_ms: 5_000,
-        })
+        .fetch_task(authorized(&ids[0], first))
         .await?
         .into_inner()
         .work
@@ -116,15 +136,15 @@ async fn main() -> anyhow::Result<()> {
 
     let t1 = Instant::now();
     let mut set = tokio::task::JoinSet::new();
-    for (i, id) in ids.iter().copied().enumerate() {
+    for (i, id) in ids.into_iter().enumerate() {
         let mut c = AggregatorClient::new(channels[i % channels.len()].clone());
         let gate = gate.clone();
         set.spawn(async move {
             let _p = gate.acquire_owned().await?;
             let start = Instant::now();
-            c.submit_update(pb::SubmitUpdateRequest {
+            let request = pb::SubmitUpdateRequest {
                 study_id: "load".into(),
-                device_id: id,
+                device_id: id.device_id,
                 round_id,
                 updates: vec![pb::SignalUpdate {
                     signal: "resting_hr_bpm".into(),
@@ -132,8 +152,8 @@ async fn main() -> anyhow::Result<()> {
                     n_days: 180,
                     local_loss: 1.0,
                 }],
-            })
-            .await?;
+            };
+            c.submit_update(authorized(&id, request)).await?;
             anyhow::Ok(start.elapsed())
         });
     }

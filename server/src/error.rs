@@ -16,6 +16,14 @@ pub enum AggregatorError {
     /// The same thing was already done differently (ALREADY_EXISTS).
     #[error("{0}")]
     AlreadyExists(String),
+    /// No credential, or a wrong one: the enrollment code or the device
+    /// secret (UNAUTHENTICATED).
+    #[error("{0}")]
+    Unauthenticated(String),
+    /// The caller is known but may not do this: a revoked device, a device
+    /// of another study, a request for another device (PERMISSION_DENIED).
+    #[error("{0}")]
+    PermissionDenied(String),
     /// The embedded database failed.
     #[error("database: {0}")]
     Database(#[from] rusqlite::Error),

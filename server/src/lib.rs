@@ -14,6 +14,7 @@ pub mod packets;
 pub mod presentation;
 pub mod review;
 pub mod rounds;
+pub mod secrets;
 pub mod service;
 pub mod store;
 pub mod study;
@@ -21,6 +22,6 @@ pub mod wire;
 
 pub use error::AggregatorError;
 pub use review::{RunningReview, ensure_demo_reviewer, serve_review};
-pub use rounds::Coordinator;
+pub use rounds::{Coordinator, Enrollment};
 pub use service::{RunningServer, serve};
 pub use study::{LocalTraining, Optimizer, SignalLayout, StudyConfig};

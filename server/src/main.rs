@@ -8,6 +8,7 @@ use std::sync::Arc;
 use anyhow::{Context, bail};
 use clap::{Parser, Subcommand};
 use plimsoll_server::review::accounts;
+use plimsoll_server::secrets::{enrollment_code_hash, new_enrollment_code};
 use plimsoll_server::store::Store;
 use plimsoll_server::{Coordinator, StudyConfig, serve, serve_review, service::now_ms};
 
@@ -46,13 +47,44 @@ enum Command {
         #[command(subcommand)]
         command: ReviewerCommand,
     },
-    /// Create a study from a JSON configuration file.
+    /// Create a study from a JSON configuration file; prints the study's
+    /// enrollment code (shown only this once).
     CreateStudy {
         /// Path to the study configuration (JSON).
         config: PathBuf,
     },
+    /// Issue a new enrollment code for a study (the old code stops working;
+    /// enrolled devices are not affected) and print it.
+    EnrollmentCode {
+        /// Study identifier.
+        study: String,
+    },
+    /// List or revoke a study's devices.
+    Device {
+        #[command(subcommand)]
+        command: DeviceCommand,
+    },
     /// Print each study's progress.
     Status,
+}
+
+#[derive(Debug, Subcommand)]
+enum DeviceCommand {
+    /// Print each device of a study: id, participant label, signals, consent,
+    /// revoked or active.
+    List {
+        /// Study identifier.
+        study: String,
+    },
+    /// Revoke a device: every later call it makes is refused and it is never
+    /// selected for a round again. Takes effect at once, also on a running
+    /// aggregator.
+    Revoke {
+        /// Study identifier.
+        study: String,
+        /// Device id or participant label.
+        device: String,
+    },
 }
 
 #[derive(Debug, Subcommand)]
@@ -136,6 +168,9 @@ async fn main() -> anyhow::Result<()> {
             format!("opening database {}", cli.db.display())
         })?))
     };
+    let store = || -> anyhow::Result<Store> {
+        Store::open(&cli.db).with_context(|| format!("opening database {}", cli.db.display()))
+    };
     match cli.command {
         Command::Serve {
             listen,
@@ -177,9 +212,39 @@ async fn main() -> anyhow::Result<()> {
             let study: StudyConfig = serde_json::from_str(&text)
                 .with_context(|| format!("parsing study configuration {}", config.display()))?;
             let id = study.study_id.clone();
-            open()?.create_study(study, now_ms())?;
+            let code = open()?.create_study(study, now_ms())?;
             println!("created study `{id}`");
+            println!("enrollment code (shown once; give it to the study's devices): {code}");
         }
+        // These write through the store, not a coordinator, so they are safe
+        // beside a running aggregator (which reads identities per call).
+        Command::EnrollmentCode { study } => {
+            let code = new_enrollment_code();
+            if !store()?.set_enrollment_code_hash(&study, &enrollment_code_hash(&code))? {
+                bail!("no study `{study}` in {}", cli.db.display());
+            }
+            println!("new enrollment code for `{study}` (the old one no longer works): {code}");
+        }
+        Command::Device { command } => match command {
+            DeviceCommand::List { study } => {
+                for d in store()?.devices(&study)? {
+                    println!(
+                        "{:>6}  {:<24} {:<8} consent={:<5} {}",
+                        d.device_id,
+                        d.label,
+                        if d.revoked { "revoked" } else { "active" },
+                        d.consent_share_flags,
+                        d.signals.join(",")
+                    );
+                }
+            }
+            DeviceCommand::Revoke { study, device } => {
+                let mut store = store()?;
+                let id = store.resolve_device(&study, &device)?;
+                store.revoke_device(id, now_ms())?;
+                println!("device {id} of `{study}` revoked; its calls are refused from now on");
+            }
+        },
         Command::Reviewer { command } => reviewer_command(&cli.db, command)?,
         Command::Status => {
             let coordinator = open()?;

@@ -14,8 +14,11 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use tokio::sync::watch;
 
+use plimsoll_proto::auth::{DeviceCredential, check_secret};
+
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
+use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
 use crate::store::{Store, StoredOpenRound};
 use crate::study::{
     Contribution, PriorVersion, SignalParams, SignalUpdate, StudyConfig, StudyStatus,
@@ -29,6 +32,10 @@ const RETRY_AFTER_MS: u32 = 250;
 struct Device {
     signals: Vec<String>,
     consent_share_flags: bool,
+    /// A revoked device is never selected again and every call it makes is
+    /// refused (the refusal itself reads the database, so a revocation made
+    /// by another process counts at once; this flag follows it).
+    revoked: bool,
 }
 
 #[derive(Debug)]
@@ -48,6 +55,38 @@ struct StudyRuntime {
     rounds_completed: u32,
     last_round_id: u64,
     open: Option<OpenRound>,
+}
+
+impl StudyRuntime {
+    /// Enrolled devices that were not revoked.
+    fn active_devices(&self) -> usize {
+        self.devices.values().filter(|d| !d.revoked).count()
+    }
+}
+
+/// One `Enroll` request, as the coordinator checks it.
+#[derive(Clone, Copy)]
+pub struct Enrollment<'a> {
+    pub study_id: &'a str,
+    pub label: &'a str,
+    pub signals: &'a [String],
+    pub consent_share_flags: bool,
+    /// The study's enrollment code as typed (normalised before comparing).
+    pub enrollment_code: &'a str,
+    /// The secret the device drew (64 lower-case hex characters).
+    pub device_secret: &'a str,
+}
+
+impl std::fmt::Debug for Enrollment<'_> {
+    // The code and the secret never reach a log.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Enrollment")
+            .field("study_id", &self.study_id)
+            .field("label", &self.label)
+            .field("signals", &self.signals)
+            .field("consent_share_flags", &self.consent_share_flags)
+            .finish_non_exhaustive()
+    }
 }
 
 #[derive(Debug)]
@@ -85,6 +124,7 @@ impl Coordinator {
                     Device {
                         signals: d.signals,
                         consent_share_flags: d.consent_share_flags,
+                        revoked: d.revoked,
                     },
                 );
             }
@@ -143,8 +183,10 @@ impl Coordinator {
         self.state.lock().unwrap_or_else(|p| p.into_inner())
     }
 
-    /// Creates a study; its initial prior becomes version 0.
-    pub fn create_study(&self, config: StudyConfig, now_ms: i64) -> Result<()> {
+    /// Creates a study; its initial prior becomes version 0. Returns the
+    /// study's new enrollment code, which is stored only as a hash: show it
+    /// once to the study team.
+    pub fn create_study(&self, config: StudyConfig, now_ms: i64) -> Result<String> {
         config
             .validate()
             .map_err(|reason| AggregatorError::invalid("study config", reason))?;
@@ -169,7 +211,10 @@ impl Coordinator {
             contributions: Vec::new(),
             created_unix_ms: now_ms,
         };
-        state.store.create_study(&config, &initial, now_ms)?;
+        let code = new_enrollment_code();
+        state
+            .store
+            .create_study(&config, &initial, &enrollment_code_hash(&code), now_ms)?;
         let id = config.study_id.clone();
         state.studies.insert(
             id,
@@ -183,6 +228,89 @@ impl Coordinator {
                 open: None,
             },
         );
+        Ok(code)
+    }
+
+    /// Gives a study a new enrollment code (the old one stops working) and
+    /// returns it. Devices already enrolled are not affected.
+    pub fn new_enrollment_code(&self, study_id: &str) -> Result<String> {
+        let mut state = self.lock();
+        study(&state.studies, study_id)?;
+        let code = new_enrollment_code();
+        state
+            .store
+            .set_enrollment_code_hash(study_id, &enrollment_code_hash(&code))?;
+        Ok(code)
+    }
+
+    /// Revokes the device with this id or participant label: every later
+    /// call it makes is refused and it is never selected for a round again.
+    /// An update it submitted before stays in its round. Returns the id.
+    pub fn revoke(&self, study_id: &str, device: &str, now_ms: i64) -> Result<u64> {
+        let mut state = self.lock();
+        let State { store, studies } = &mut *state;
+        let rt = study_mut(studies, study_id)?;
+        let id = store.resolve_device(study_id, device)?;
+        store.revoke_device(id, now_ms)?;
+        if let Some(d) = rt.devices.get_mut(&id) {
+            d.revoked = true;
+        }
+        tracing::warn!(study = %study_id, device_id = id, "device revoked");
+        Ok(id)
+    }
+
+    /// Checks the credential of a call about `study_id`: the secret must
+    /// match the device it names, the device must not be revoked and must
+    /// belong to the study, and `claimed` (the request's `device_id`, when
+    /// it has one) must be that device.
+    pub fn authenticate(
+        &self,
+        study_id: &str,
+        claimed: Option<u64>,
+        credential: &DeviceCredential,
+    ) -> Result<()> {
+        let id = credential.device_id;
+        let mut state = self.lock();
+        let identity = state.store.device_identity(id)?;
+        let Some(identity) = identity else {
+            return Err(AggregatorError::Unauthenticated(format!(
+                "authorization: no device {id} is enrolled"
+            )));
+        };
+        let presented = secret_hash(&credential.secret);
+        if !identity
+            .credential_hash
+            .as_deref()
+            .is_some_and(|stored| constant_time_eq(stored, &presented))
+        {
+            return Err(AggregatorError::Unauthenticated(format!(
+                "authorization: the secret does not match device {id}"
+            )));
+        }
+        if identity.revoked_ms.is_some() {
+            if let Some(d) = state
+                .studies
+                .get_mut(&identity.study_id)
+                .and_then(|rt| rt.devices.get_mut(&id))
+            {
+                d.revoked = true;
+            }
+            return Err(AggregatorError::PermissionDenied(format!(
+                "authorization: device {id} was revoked by the study team"
+            )));
+        }
+        if identity.study_id != study_id {
+            return Err(AggregatorError::PermissionDenied(format!(
+                "study_id: device {id} is not enrolled in study `{study_id}`"
+            )));
+        }
+        if let Some(claimed) = claimed
+            && claimed != id
+        {
+            return Err(AggregatorError::PermissionDenied(format!(
+                "device_id: {claimed} is not the authenticated device {id}"
+            )));
+        }
         Ok(())
     }
 
@@ -198,21 +326,25 @@ impl Coordinator {
             config: rt.config.clone(),
             rounds_completed: rt.rounds_completed,
             current_round: rt.open.as_ref().map_or(0, |r| r.round_id),
-            devices_enrolled: rt.devices.len() as u32,
+            devices_enrolled: rt.active_devices() as u32,
             prior_version: rt.latest.version,
         })
     }
 
-    /// Enrols a participant's device; the same label gets the same id back
-    /// (and its recorded consent to share flags updated to `consent_share_flags`).
-    pub fn enroll(
-        &self,
-        study_id: &str,
-        label: &str,
-        signals: &[String],
-        consent_share_flags: bool,
-        now_ms: i64,
-    ) -> Result<u64> {
+    /// Enrols a participant's device, checking the study's enrollment code.
+    /// The same label with the same device secret gets the same id back (and
+    /// its recorded consent to share flags updated); with another secret it
+    /// is refused.
+    pub fn enroll(&self, request: &Enrollment<'_>, now_ms: i64) -> Result<u64> {
+        let &Enrollment {
+            study_id,
+            label,
+            signals,
+            consent_share_flags,
+            enrollment_code,
+            device_secret,
+        } = request;
+        self.check_enrollment_code(study_id, enrollment_code)?;
         if !valid_id(label) {
             return Err(AggregatorError::invalid(
                 "participant_label",
@@ -243,7 +375,28 @@ impl Coordinator {
                 ));
             }
         }
+        check_secret(device_secret).map_err(|e| AggregatorError::invalid("device_secret", e))?;
+        let credential_hash = secret_hash(device_secret);
         if let Some(&id) = rt.labels.get(label) {
+            let identity = store
+                .device_identity(id)?
+                .ok_or_else(|| AggregatorError::Corrupt(format!("device {id} vanished")))?;
+            if identity.revoked_ms.is_some() {
+                return Err(AggregatorError::PermissionDenied(format!(
+                    "participant_label: `{label}` belongs to device {id}, which was revoked"
+                )));
+            }
+            match identity.credential_hash {
+                Some(stored) if constant_time_eq(&stored, &credential_hash) => {}
+                Some(_) => {
+                    return Err(AggregatorError::AlreadyExists(format!(
+                        "participant_label: `{label}` is already enrolled by another device \
+                         (a different device_secret)"
+                    )));
+                }
+                // Enrolled before credentials existed: this secret claims it.
+                None => store.claim_device_credential(id, &credential_hash)?,
+            }
             let device = rt.devices.get_mut(&id).expect("labels and devices agree");
             if device.consent_share_flags != consent_share_flags {
                 store.set_consent(id, consent_share_flags)?;
@@ -251,13 +404,21 @@ impl Coordinator {
             }
             return Ok(id);
         }
-        let id = store.insert_device(study_id, label, signals, consent_share_flags, now_ms)?;
+        let id = store.insert_device(
+            study_id,
+            label,
+            signals,
+            consent_share_flags,
+            &credential_hash,
+            now_ms,
+        )?;
         rt.labels.insert(label.to_owned(), id);
         rt.devices.insert(
             id,
             Device {
                 signals: signals.to_vec(),
                 consent_share_flags,
+                revoked: false,
             },
         );
         let opened = maybe_open_round(store, rt, now_ms, None)?;
@@ -266,6 +427,27 @@ impl Coordinator {
             self.notify();
         }
         Ok(id)
+    }
+
+    fn check_enrollment_code(&self, study_id: &str, code: &str) -> Result<()> {
+        let state = self.lock();
+        study(&state.studies, study_id)?;
+        if code.trim().is_empty() {
+            return Err(AggregatorError::Unauthenticated(format!(
+                "enrollment_code: missing; enrolling in study `{study_id}` needs the code \
+                 the study team handed out"
+            )));
+        }
+        match state.store.enrollment_code_hash(study_id)? {
+            None => Err(AggregatorError::FailedPrecondition(format!(
+                "enrollment_code: study `{study_id}` has no enrollment code yet; its operator \
+                 issues one with `plimsoll-aggregator enrollment-code {study_id}`"
+            ))),
+            Some(stored) if constant_time_eq(&stored, &enrollment_code_hash(code)) => Ok(()),
+            Some(_) => Err(AggregatorError::Unauthenticated(format!(
+                "enrollment_code: does not match study `{study_id}`"
+            ))),
+        }
     }
 
     /// What `device_id` should do now.
@@ -287,7 +469,7 @@ impl Coordinator {
                 reason: format!(
                     "waiting for {} enrolled devices before round 1 ({} so far)",
                     rt.config.start_when_enrolled,
-                    rt.devices.len()
+                    rt.active_devices()
                 ),
             });
         };
@@ -610,14 +792,29 @@ fn maybe_open_round(
     now_ms: i64,
     abandon: Option<u64>,
 ) -> Result<bool> {
-    if rt.open.is_some()
-        || rt.rounds_completed >= rt.config.rounds
-        || (rt.devices.len() as u32) < rt.config.start_when_enrolled
-    {
+    if rt.open.is_some() || rt.rounds_completed >= rt.config.rounds {
+        return Ok(false);
+    }
+    // Revocations may come from another process (the operator's command
+    // line) while this one runs: read them before choosing members.
+    for id in store.revoked_devices(&rt.config.study_id)? {
+        if let Some(d) = rt.devices.get_mut(&id) {
+            d.revoked = true;
+        }
+    }
+    // The enrolment threshold starts the study; after that a revocation
+    // never stops it (a round short of quorum is retried as usual).
+    if rt.last_round_id == 0 && (rt.active_devices() as u32) < rt.config.start_when_enrolled {
         return Ok(false);
     }
     let round_id = rt.last_round_id + 1;
-    let members = select_members(&rt.config, rt.devices.keys().copied().collect(), round_id);
+    let active = rt
+        .devices
+        .iter()
+        .filter(|(_, d)| !d.revoked)
+        .map(|(&id, _)| id)
+        .collect();
+    let members = select_members(&rt.config, active, round_id);
     let round = StoredOpenRound {
         round_id,
         deadline_ms: now_ms + rt.config.round_deadline_ms as i64,

@@ -5,13 +5,14 @@ use std::net::SocketAddr;
 use std::sync::Arc;
 use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
+use plimsoll_proto::auth::{self, DeviceCredential};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_server::{Aggregator, AggregatorServer};
 use tokio::net::TcpListener;
 use tokio_stream::wrappers::TcpListenerStream;
 use tonic::{Request, Response, Status};
 
-use crate::rounds::Coordinator;
+use crate::rounds::{Coordinator, Enrollment};
 use crate::study::Work;
 use crate::wire;
 
@@ -37,14 +38,37 @@ impl AggregatorService {
     }
 }
 
-/// Runs a blocking coordinator call off the async worker threads.
+/// Runs a blocking coordinator call of RPC `rpc` off the async worker
+/// threads; a refusal's message starts with the RPC's name.
 async fn blocking<T: Send + 'static>(
+    rpc: &'static str,
     f: impl FnOnce() -> crate::error::Result<T> + Send + 'static,
 ) -> Result<T, Status> {
     tokio::task::spawn_blocking(f)
         .await
-        .map_err(|e| Status::internal(format!("worker failed: {e}")))?
-        .map_err(wire::to_status)
+        .map_err(|e| Status::internal(format!("{rpc}: worker failed: {e}")))?
+        .map_err(|e| in_rpc(rpc, wire::to_status(e)))
+}
+
+/// `status` with its message prefixed by the RPC's name.
+fn in_rpc(rpc: &str, status: Status) -> Status {
+    Status::new(status.code(), format!("{rpc}: {}", status.message()))
+}
+
+/// The device credential in a call's metadata (UNAUTHENTICATED when it is
+/// missing or malformed; whether it is valid is the coordinator's check).
+fn credential<T>(rpc: &str, req: &Request<T>) -> Result<DeviceCredential, Status> {
+    let value = req.metadata().get(auth::METADATA_KEY).ok_or_else(|| {
+        Status::unauthenticated(format!(
+            "{rpc}: authorization: missing; every call but GetStudy and Enroll carries \
+             `authorization: Bearer <device_id>.<device_secret>`"
+        ))
+    })?;
+    let value = value.to_str().map_err(|_| {
+        Status::unauthenticated(format!("{rpc}: authorization: not printable ASCII"))
+    })?;
+    DeviceCredential::parse(value)
+        .map_err(|e| Status::unauthenticated(format!("{rpc}: authorization: {e}")))
 }
 
 #[tonic::async_trait]
@@ -55,7 +79,7 @@ impl Aggregator for AggregatorService {
     ) -> Result<Response<pb::Study>, Status> {
         let c = self.coordinator.clone();
         let id = req.into_inner().study_id;
-        let status = blocking(move || c.status(&id)).await?;
+        let status = blocking("GetStudy", move || c.status(&id)).await?;
         Ok(Response::new(wire::status_to_pb(&status)))
     }
 
@@ -65,12 +89,16 @@ impl Aggregator for AggregatorService {
     ) -> Result<Response<pb::EnrollResponse>, Status> {
         let c = self.coordinator.clone();
         let r = req.into_inner();
-        let device_id = blocking(move || {
+        let device_id = blocking("Enroll", move || {
             c.enroll(
-                &r.study_id,
-                &r.participant_label,
-                &r.signals,
-                r.consent_share_flags,
+                &Enrollment {
+                    study_id: &r.study_id,
+                    label: &r.participant_label,
+                    signals: &r.signals,
+                    consent_share_flags: r.consent_share_flags,
+                    enrollment_code: &r.enrollment_code,
+                    device_secret: &r.device_secret,
+                },
                 now_ms(),
             )
         })
@@ -82,7 +110,14 @@ impl Aggregator for AggregatorService {
         &self,
         req: Request<pb::FetchTaskRequest>,
     ) -> Result<Response<pb::FetchTaskResponse>, Status> {
+        let cred = credential("FetchTask", &req)?;
         let r = req.into_inner();
+        let c = self.coordinator.clone();
+        let (study_id, device_id) = (r.study_id.clone(), r.device_id);
+        blocking("FetchTask", move || {
+            c.authenticate(&study_id, Some(device_id), &cred)
+        })
+        .await?;
         let wait = Duration::from_millis(u64::from(r.wait_ms.min(MAX_WAIT_MS)));
         let until = tokio::time::Instant::now() + wait;
         let mut changes = self.coordinator.subscribe();
@@ -90,7 +125,7 @@ impl Aggregator for AggregatorService {
             changes.borrow_and_update();
             let c = self.coordinator.clone();
             let study_id = r.study_id.clone();
-            let work = blocking(move || c.work_for(&study_id, r.device_id)).await?;
+            let work = blocking("FetchTask", move || c.work_for(&study_id, r.device_id)).await?;
             let waiting = matches!(work, Work::Wait { .. });
             if !waiting || tokio::time::Instant::now() >= until {
                 return Ok(Response::new(wire::work_to_pb(work)));
@@ -104,12 +139,15 @@ impl Aggregator for AggregatorService {
         &self,
         req: Request<pb::SubmitUpdateRequest>,
     ) -> Result<Response<pb::SubmitUpdateResponse>, Status> {
+        let cred = credential("SubmitUpdate", &req)?;
         let c = self.coordinator.clone();
         let r = req.into_inner();
         let updates = wire::updates_from_pb(r.updates);
-        let outcome =
-            blocking(move || c.submit(&r.study_id, r.device_id, r.round_id, updates, now_ms()))
-                .await?;
+        let outcome = blocking("SubmitUpdate", move || {
+            c.authenticate(&r.study_id, Some(r.device_id), &cred)?;
+            c.submit(&r.study_id, r.device_id, r.round_id, updates, now_ms())
+        })
+        .await?;
         Ok(Response::new(pb::SubmitUpdateResponse {
             accepted_in_round: outcome.accepted_in_round,
             round_closed: outcome.round_closed,
@@ -120,11 +158,16 @@ impl Aggregator for AggregatorService {
         &self,
         req: Request<pb::GetPriorRequest>,
     ) -> Result<Response<pb::PublishedPrior>, Status> {
+        let cred = credential("GetPrior", &req)?;
         let c = self.coordinator.clone();
         let r = req.into_inner();
         let version = (r.version != 0).then_some(r.version);
         let study_id = r.study_id.clone();
-        let prior = blocking(move || c.prior(&study_id, version)).await?;
+        let prior = blocking("GetPrior", move || {
+            c.authenticate(&study_id, None, &cred)?;
+            c.prior(&study_id, version)
+        })
+        .await?;
         Ok(Response::new(wire::prior_to_pb(&r.study_id, &prior)))
     }
 
@@ -132,10 +175,12 @@ impl Aggregator for AggregatorService {
         &self,
         req: Request<pb::SubmitFlagPacketRequest>,
     ) -> Result<Response<pb::SubmitFlagPacketResponse>, Status> {
+        let cred = credential("SubmitFlagPacket", &req)?;
         let c = self.coordinator.clone();
         let r = req.into_inner();
         let packet = wire::flag_packet_from_pb(r.packet);
-        let packet_id = blocking(move || {
+        let packet_id = blocking("SubmitFlagPacket", move || {
+            c.authenticate(&r.study_id, Some(r.device_id), &cred)?;
             // Consent is checked before the packet is even decoded, so a
             // device without consent is always told about consent first.
             c.require_flag_consent(&r.study_id, r.device_id)?;

@@ -25,7 +25,7 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::study::{PriorVersion, SignalUpdate, StudyConfig};
 
-const SCHEMA_VERSION: i64 = 2;
+const SCHEMA_VERSION: i64 = 3;
 
 /// Version 1: federated training.
 const SCHEMA_V1: &str = "
@@ -128,6 +128,29 @@ BEGIN SELECT RAISE(ABORT, 'review_actions is append-only'); END;
 UPDATE schema_version SET version = 2;
 ";
 
+/// Version 2 → 3: enrollment codes, device credentials and revocation.
+/// Studies and devices from before have no code or credential: a study
+/// takes enrolments again once `enrollment-code` gives it a code, and an
+/// enrolled device without a credential sets one by enrolling again.
+const MIGRATE_V2_TO_V3: &str = "
+ALTER TABLE studies ADD COLUMN enrollment_code_hash TEXT;
+ALTER TABLE devices ADD COLUMN credential_hash TEXT;
+ALTER TABLE devices ADD COLUMN revoked_ms INTEGER;
+UPDATE schema_version SET version = 3;
+";
+
+/// Who a device is, as the credential check needs it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DeviceIdentity {
+    pub study_id: String,
+    pub label: String,
+    /// Hex SHA-256 of the device secret; `None` for a device enrolled before
+    /// credentials existed (schema 2), which must enrol again.
+    pub credential_hash: Option<String>,
+    /// When the device was revoked (Unix ms), if it was.
+    pub revoked_ms: Option<i64>,
+}
+
 /// A device as stored.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StoredDevice {
@@ -136,6 +159,8 @@ pub struct StoredDevice {
     pub signals: Vec<String>,
     /// The participant's recorded consent to share flag packets.
     pub consent_share_flags: bool,
+    /// True once the device was revoked.
+    pub revoked: bool,
 }
 
 /// The round that was open when the state was last written.
@@ -180,7 +205,7 @@ impl Store {
         conn.busy_timeout(std::time::Duration::from_secs(5))?;
         let mut conn = conn;
         // IMMEDIATE: two components opening the same file at once migrate it
-        // once; the second waits (busy timeout) and then sees version 2.
+        // once; the second waits (busy timeout) and then sees the new version.
         let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
         tx.execute_batch(SCHEMA_V1)?;
         let version: Option<i64> = tx
@@ -190,10 +215,16 @@ impl Store {
             None => {
                 tx.execute("INSERT INTO schema_version (version) VALUES (1)", [])?;
                 tx.execute_batch(MIGRATE_V1_TO_V2)?;
+                tx.execute_batch(MIGRATE_V2_TO_V3)?;
             }
             Some(1) => {
-                tracing::info!("migrating the aggregator database from schema 1 to 2");
+                tracing::info!("migrating the aggregator database from schema 1 to 3");
                 tx.execute_batch(MIGRATE_V1_TO_V2)?;
+                tx.execute_batch(MIGRATE_V2_TO_V3)?;
+            }
+            Some(2) => {
+                tracing::info!("migrating the aggregator database from schema 2 to 3");
+                tx.execute_batch(MIGRATE_V2_TO_V3)?;
             }
             Some(SCHEMA_VERSION) => {}
             Some(other) => {
@@ -222,17 +253,25 @@ impl Store {
         &mut self.conn
     }
 
-    /// Creates a study with its initial prior (version 0) in one transaction.
+    /// Creates a study with its initial prior (version 0) and the hash of
+    /// its enrollment code in one transaction.
     pub fn create_study(
         &mut self,
         config: &StudyConfig,
         initial: &PriorVersion,
+        enrollment_code_hash: &str,
         now_ms: i64,
     ) -> Result<()> {
         let tx = self.conn.transaction()?;
         tx.execute(
-            "INSERT INTO studies (study_id, config_json, created_ms) VALUES (?1, ?2, ?3)",
-            params![config.study_id, to_json(config), now_ms],
+            "INSERT INTO studies (study_id, config_json, created_ms, enrollment_code_hash)
+             VALUES (?1, ?2, ?3, ?4)",
+            params![
+                config.study_id,
+                to_json(config),
+                now_ms,
+                enrollment_code_hash
+            ],
         )?;
         insert_prior(&tx, &config.study_id, initial)?;
         tx.commit()?;
@@ -252,9 +291,32 @@ impl Store {
         Ok(out)
     }
 
+    /// The hash of a study's enrollment code; `None` when the study has no
+    /// code (created before codes existed) or does not exist.
+    pub fn enrollment_code_hash(&self, study_id: &str) -> Result<Option<String>> {
+        Ok(self
+            .conn
+            .query_row(
+                "SELECT enrollment_code_hash FROM studies WHERE study_id = ?1",
+                [study_id],
+                |r| r.get::<_, Option<String>>(0),
+            )
+            .optional()?
+            .flatten())
+    }
+
+    /// Replaces a study's enrollment code hash; false when there is no such
+    /// study.
+    pub fn set_enrollment_code_hash(&mut self, study_id: &str, hash: &str) -> Result<bool> {
+        Ok(self.conn.execute(
+            "UPDATE studies SET enrollment_code_hash = ?2 WHERE study_id = ?1",
+            params![study_id, hash],
+        )? == 1)
+    }
+
     pub fn devices(&self, study_id: &str) -> Result<Vec<StoredDevice>> {
         let mut stmt = self.conn.prepare(
-            "SELECT device_id, label, signals_json, consent_share_flags
+            "SELECT device_id, label, signals_json, consent_share_flags, revoked_ms
              FROM devices WHERE study_id = ?1 ORDER BY device_id",
         )?;
         let rows = stmt.query_map([study_id], |r| {
@@ -263,11 +325,12 @@ impl Store {
                 r.get::<_, String>(1)?,
                 r.get::<_, String>(2)?,
                 r.get::<_, bool>(3)?,
+                r.get::<_, Option<i64>>(4)?,
             ))
         })?;
         let mut out = Vec::new();
         for row in rows {
-            let (id, label, json, consent_share_flags) = row?;
+            let (id, label, json, consent_share_flags, revoked_ms) = row?;
             let signals = serde_json::from_str(&json)
                 .map_err(|e| corrupt(&format!("device {id} signals"), e))?;
             out.push(StoredDevice {
@@ -275,32 +338,122 @@ impl Store {
                 label,
                 signals,
                 consent_share_flags,
+                revoked: revoked_ms.is_some(),
             });
         }
         Ok(out)
     }
 
-    /// Inserts a device and returns its new id.
+    /// The identity of `device_id`, read from the database on every call so
+    /// that a revocation by another process counts at once.
+    pub fn device_identity(&self, device_id: u64) -> Result<Option<DeviceIdentity>> {
+        let Ok(id) = i64::try_from(device_id) else {
+            return Ok(None);
+        };
+        let mut stmt = self.conn.prepare_cached(
+            "SELECT study_id, label, credential_hash, revoked_ms FROM devices WHERE device_id = ?1",
+        )?;
+        Ok(stmt
+            .query_row([id], |r| {
+                Ok(DeviceIdentity {
+                    study_id: r.get(0)?,
+                    label: r.get(1)?,
+                    credential_hash: r.get(2)?,
+                    revoked_ms: r.get(3)?,
+                })
+            })
+            .optional()?)
+    }
+
+    /// Inserts a device with the hash of its secret and returns its new id.
     pub fn insert_device(
         &mut self,
         study_id: &str,
         label: &str,
         signals: &[String],
         consent_share_flags: bool,
+        credential_hash: &str,
         now_ms: i64,
     ) -> Result<u64> {
         self.conn.execute(
-            "INSERT INTO devices (study_id, label, signals_json, enrolled_ms, consent_share_flags)
-             VALUES (?1, ?2, ?3, ?4, ?5)",
+            "INSERT INTO devices (study_id, label, signals_json, enrolled_ms,
+                                  consent_share_flags, credential_hash)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
             params![
                 study_id,
                 label,
                 to_json(&signals),
                 now_ms,
-                consent_share_flags
+                consent_share_flags,
+                credential_hash
             ],
         )?;
         Ok(self.conn.last_insert_rowid() as u64)
+    }
+
+    /// Gives a device enrolled before credentials existed its credential.
+    /// Does nothing to a device that already has one.
+    pub fn claim_device_credential(&mut self, device_id: u64, credential_hash: &str) -> Result<()> {
+        self.conn.execute(
+            "UPDATE devices SET credential_hash = ?2
+             WHERE device_id = ?1 AND credential_hash IS NULL",
+            params![device_id as i64, credential_hash],
+        )?;
+        Ok(())
+    }
+
+    /// The id of the device of `study_id` whose participant label or id is
+    /// `device` (labels first: a label may look like a number).
+    pub fn resolve_device(&self, study_id: &str, device: &str) -> Result<u64> {
+        let by_label = self
+            .conn
+            .query_row(
+                "SELECT device_id FROM devices WHERE study_id = ?1 AND label = ?2",
+                params![study_id, device],
+                |r| r.get::<_, i64>(0),
+            )
+            .optional()?;
+        let by_id = || -> Result<Option<i64>> {
+            let Ok(id) = device.parse::<i64>() else {
+                return Ok(None);
+            };
+            Ok(self
+                .conn
+                .query_row(
+                    "SELECT device_id FROM devices WHERE study_id = ?1 AND device_id = ?2",
+                    params![study_id, id],
+                    |r| r.get::<_, i64>(0),
+                )
+                .optional()?)
+        };
+        match by_label {
+            Some(id) => Ok(id as u64),
+            None => by_id()?.map(|id| id as u64).ok_or_else(|| {
+                AggregatorError::NotFound(format!(
+                    "device: no device with participant label or id `{device}` in study `{study_id}`"
+                ))
+            }),
+        }
+    }
+
+    /// Ids of the revoked devices of a study.
+    pub fn revoked_devices(&self, study_id: &str) -> Result<Vec<u64>> {
+        let mut stmt = self.conn.prepare_cached(
+            "SELECT device_id FROM devices WHERE study_id = ?1 AND revoked_ms IS NOT NULL",
+        )?;
+        let ids = stmt.query_map([study_id], |r| r.get::<_, i64>(0))?;
+        Ok(ids
+            .map(|id| id.map(|id| id as u64))
+            .collect::<std::result::Result<_, _>>()?)
+    }
+
+    /// Marks a device revoked at `now_ms`; the first revocation time is kept.
+    pub fn revoke_device(&mut self, device_id: u64, now_ms: i64) -> Result<()> {
+        self.conn.execute(
+            "UPDATE devices SET revoked_ms = COALESCE(revoked_ms, ?2) WHERE device_id = ?1",
+            params![device_id as i64, now_ms],
+        )?;
+        Ok(())
     }
 
     /// Records a changed consent of an enrolled device.
@@ -638,7 +791,7 @@ mod tests {
         let _ = std::fs::remove_file(&path);
         version_1_database(&path);
         let store = Store::open(&path).unwrap();
-        assert_eq!(store.schema_version().unwrap(), 2);
+        assert_eq!(store.schema_version().unwrap(), SCHEMA_VERSION);
         let devices = store.devices("s").unwrap();
         assert_eq!(devices.len(), 1);
         assert_eq!(devices[0].label, "p-1");
@@ -646,9 +799,22 @@ mod tests {
             !devices[0].consent_share_flags,
             "old devices did not consent"
         );
+        assert!(!devices[0].revoked);
+        let identity = store
+            .device_identity(devices[0].device_id)
+            .unwrap()
+            .unwrap();
+        assert_eq!(
+            identity.credential_hash, None,
+            "old devices have no credential"
+        );
+        assert_eq!(store.enrollment_code_hash("s").unwrap(), None);
         drop(store);
         // Opening again is a no-op.
-        assert_eq!(Store::open(&path).unwrap().schema_version().unwrap(), 2);
+        assert_eq!(
+            Store::open(&path).unwrap().schema_version().unwrap(),
+            SCHEMA_VERSION
+        );
         std::fs::remove_dir_all(&dir).unwrap();
     }
 
@@ -657,7 +823,7 @@ mod tests {
         let store = Store::in_memory().unwrap();
         let c = store.conn();
         c.execute_batch(
-            "INSERT INTO studies VALUES ('s', '{}', 0);
+            "INSERT INTO studies (study_id, config_json, created_ms) VALUES ('s', '{}', 0);
              INSERT INTO devices (study_id, label, signals_json, enrolled_ms) VALUES ('s', 'p', '[]', 0);
              INSERT INTO flag_packets (study_id, device_id, signal, kind, level, flag_date, payload_json, received_ms)
                VALUES ('s', 1, 'steps', 'cusum', 'alert', '2024-01-01', '{}', 0);

@@ -20,6 +20,8 @@ pub fn to_status(err: AggregatorError) -> Status {
         AggregatorError::NotFound(m) => Status::not_found(m),
         AggregatorError::FailedPrecondition(m) => Status::failed_precondition(m),
         AggregatorError::AlreadyExists(m) => Status::already_exists(m),
+        AggregatorError::Unauthenticated(m) => Status::unauthenticated(m),
+        AggregatorError::PermissionDenied(m) => Status::permission_denied(m),
         AggregatorError::Database(e) => {
             tracing::error!(error = %e, "database error");
             Status::internal("the aggregator's database failed; the request was not applied")

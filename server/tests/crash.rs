@@ -12,6 +12,7 @@ use std::io::{BufRead, BufReader};
 use std::path::Path;
 use std::process::{Child, Command, Stdio};
 
+use plimsoll_proto::auth::{self, DeviceCredential};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
 use tonic::transport::Channel;
@@ -69,7 +70,9 @@ impl Aggregator {
     }
 }
 
-fn create_study(db: &Path, dir: &Path) {
+/// Creates the study with the real binary; returns the enrollment code it
+/// printed.
+fn create_study(db: &Path, dir: &Path) -> String {
     let config = serde_json::json!({
         "study_id": STUDY,
         "title": "crash test",
@@ -90,18 +93,31 @@ fn create_study(db: &Path, dir: &Path) {
     });
     let path = dir.join("study.json");
     std::fs::write(&path, config.to_string()).unwrap();
-    let status = Command::new(BIN)
+    let out = Command::new(BIN)
         .args([
             "--db",
             db.to_str().unwrap(),
             "create-study",
             path.to_str().unwrap(),
         ])
-        .stdout(Stdio::null())
         .stderr(Stdio::null())
-        .status()
+        .output()
         .unwrap();
-    assert!(status.success());
+    assert!(out.status.success());
+    let stdout = String::from_utf8(out.stdout).unwrap();
+    stdout
+        .lines()
+        .find_map(|l| l.strip_prefix("enrollment code ")?.rsplit_once(": "))
+        .map(|(_, code)| code.to_owned())
+        .unwrap_or_else(|| panic!("no enrollment code in `{stdout}`"))
+}
+
+/// `message` carrying `device`'s credential.
+fn authorized<T>(device: &DeviceCredential, message: T) -> tonic::Request<T> {
+    let mut r = tonic::Request::new(message);
+    r.metadata_mut()
+        .insert(auth::METADATA_KEY, device.header_value().parse().unwrap());
+    r
 }
 
 fn integrity_ok(db: &Path) {
@@ -112,26 +128,39 @@ fn integrity_ok(db: &Path) {
     assert_eq!(report, "ok");
 }
 
-async fn enroll(c: &mut AggregatorClient<Channel>, label: &str) -> u64 {
-    c.enroll(pb::EnrollRequest {
-        study_id: STUDY.into(),
-        participant_label: label.into(),
-        signals: vec!["resting_hr_bpm".into()],
-        ..Default::default()
-    })
-    .await
-    .unwrap()
-    .into_inner()
-    .device_id
+async fn enroll(c: &mut AggregatorClient<Channel>, code: &str, label: &str) -> DeviceCredential {
+    // A fixed secret per label: this test is about crashes, not secrecy.
+    let secret = format!(
+        "{:0>64}",
+        label
+            .bytes()
+            .map(|b| format!("{b:02x}"))
+            .collect::<String>()
+    );
+    let device_id = c
+        .enroll(pb::EnrollRequest {
+            study_id: STUDY.into(),
+            participant_label: label.into(),
+            signals: vec!["resting_hr_bpm".into()],
+            enrollment_code: code.into(),
+            device_secret: secret.clone(),
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner()
+        .device_id;
+    DeviceCredential { device_id, secret }
 }
 
-async fn task_round(c: &mut AggregatorClient<Channel>, device_id: u64) -> u64 {
+async fn task_round(c: &mut AggregatorClient<Channel>, device: &DeviceCredential) -> u64 {
+    let request = pb::FetchTaskRequest {
+        study_id: STUDY.into(),
+        device_id: device.device_id,
+        wait_ms: 5_000,
+    };
     let work = c
-        .fetch_task(pb::FetchTaskRequest {
-            study_id: STUDY.into(),
-            device_id,
-            wait_ms: 5_000,
-        })
+        .fetch_task(authorized(device, request))
         .await
         .unwrap()
         .into_inner()
@@ -142,10 +171,14 @@ async fn task_round(c: &mut AggregatorClient<Channel>, device_id: u64) -> u64 {
     }
 }
 
-fn submission(device_id: u64, round_id: u64, value: f64) -> pb::SubmitUpdateRequest {
-    pb::SubmitUpdateRequest {
+fn submission(
+    device: &DeviceCredential,
+    round_id: u64,
+    value: f64,
+) -> tonic::Request<pb::SubmitUpdateRequest> {
+    let request = pb::SubmitUpdateRequest {
         study_id: STUDY.into(),
-        device_id,
+        device_id: device.device_id,
         round_id,
         updates: vec![pb::SignalUpdate {
             signal: "resting_hr_bpm".into(),
@@ -153,7 +186,8 @@ fn submission(device_id: u64, round_id: u64, value: f64) -> pb::SubmitUpdateRequ
             n_days: 10,
             local_loss: 1.0,
         }],
-    }
+    };
+    authorized(device, request)
 }
 
 async fn study(c: &mut AggregatorClient<Channel>) -> pb::Study {
@@ -165,29 +199,33 @@ async fn study(c: &mut AggregatorClient<Channel>) -> pb::Study {
     .into_inner()
 }
 
-async fn latest(c: &mut AggregatorClient<Channel>) -> pb::PublishedPrior {
-    c.get_prior(pb::GetPriorRequest {
+async fn latest(
+    c: &mut AggregatorClient<Channel>,
+    device: &DeviceCredential,
+) -> pb::PublishedPrior {
+    let request = pb::GetPriorRequest {
         study_id: STUDY.into(),
         version: 0,
-    })
-    .await
-    .unwrap()
-    .into_inner()
+    };
+    c.get_prior(authorized(device, request))
+        .await
+        .unwrap()
+        .into_inner()
 }
 
 #[tokio::test]
 async fn killed_aggregator_resumes_without_losing_rounds() {
     let dir = tempfile::tempdir().unwrap();
     let db = dir.path().join("agg.db");
-    create_study(&db, dir.path());
+    let code = create_study(&db, dir.path());
 
     // 1. Killed before aggregation: one of two submissions is in.
     let mut agg = start(&db, None).await;
-    let a = enroll(&mut agg.client, "dev-a").await;
-    let b = enroll(&mut agg.client, "dev-b").await;
-    let r1 = task_round(&mut agg.client, a).await;
+    let a = enroll(&mut agg.client, &code, "dev-a").await;
+    let b = enroll(&mut agg.client, &code, "dev-b").await;
+    let r1 = task_round(&mut agg.client, &a).await;
     agg.client
-        .submit_update(submission(a, r1, 1.0))
+        .submit_update(submission(&a, r1, 1.0))
         .await
         .unwrap();
     agg.sigkill();
@@ -200,27 +238,30 @@ async fn killed_aggregator_resumes_without_losing_rounds() {
     );
     // The device retries its submission (idempotent), the other one submits.
     agg.client
-        .submit_update(submission(a, r1, 1.0))
+        .submit_update(submission(&a, r1, 1.0))
         .await
         .unwrap();
-    assert_eq!(task_round(&mut agg.client, b).await, r1);
+    assert_eq!(task_round(&mut agg.client, &b).await, r1);
     let closed = agg
         .client
-        .submit_update(submission(b, r1, 3.0))
+        .submit_update(submission(&b, r1, 3.0))
         .await
         .unwrap()
         .into_inner();
     assert!(closed.round_closed);
-    assert_eq!(latest(&mut agg.client).await.params[0].values, vec![2.0; 3]);
+    assert_eq!(
+        latest(&mut agg.client, &a).await.params[0].values,
+        vec![2.0; 3]
+    );
 
     // 2. Killed right after the aggregation write of round 2.
-    let r2 = task_round(&mut agg.client, a).await;
+    let r2 = task_round(&mut agg.client, &a).await;
     agg.client
-        .submit_update(submission(a, r2, 4.0))
+        .submit_update(submission(&a, r2, 4.0))
         .await
         .unwrap();
     agg.client
-        .submit_update(submission(b, r2, 6.0))
+        .submit_update(submission(&b, r2, 6.0))
         .await
         .unwrap();
     agg.sigkill();
@@ -231,14 +272,17 @@ async fn killed_aggregator_resumes_without_losing_rounds() {
     let mut agg = start(&db, Some("close-round-before-commit")).await;
     let s = study(&mut agg.client).await;
     assert_eq!(s.rounds_completed, 2, "round 2 survived the kill");
-    assert_eq!(latest(&mut agg.client).await.params[0].values, vec![5.0; 3]);
-    let r3 = task_round(&mut agg.client, a).await;
+    assert_eq!(
+        latest(&mut agg.client, &a).await.params[0].values,
+        vec![5.0; 3]
+    );
+    let r3 = task_round(&mut agg.client, &a).await;
     agg.client
-        .submit_update(submission(a, r3, 7.0))
+        .submit_update(submission(&a, r3, 7.0))
         .await
         .unwrap();
     // This submission completes the round; the server dies while closing it.
-    let died = agg.client.submit_update(submission(b, r3, 9.0)).await;
+    let died = agg.client.submit_update(submission(&b, r3, 9.0)).await;
     assert!(
         died.is_err(),
         "the injected fault must kill the server mid-write"
@@ -249,16 +293,17 @@ async fn killed_aggregator_resumes_without_losing_rounds() {
     let mut agg = start(&db, None).await;
     // The round was not half-applied: both submissions were kept, and the
     // restarted server completes the round while loading its state.
-    let prior = latest(&mut agg.client).await;
+    let prior = latest(&mut agg.client, &a).await;
     assert_eq!(prior.version, 3);
     assert_eq!(prior.params[0].values, vec![8.0; 3]);
+    let request = pb::FetchTaskRequest {
+        study_id: STUDY.into(),
+        device_id: a.device_id,
+        wait_ms: 0,
+    };
     let done = agg
         .client
-        .fetch_task(pb::FetchTaskRequest {
-            study_id: STUDY.into(),
-            device_id: a,
-            wait_ms: 0,
-        })
+        .fetch_task(authorized(&a, request))
         .await
         .unwrap()
         .into_inner()

@@ -11,11 +11,11 @@
 use argon2::Argon2;
 use argon2::password_hash::phc::PasswordHash;
 use argon2::password_hash::{PasswordHasher, PasswordVerifier};
-use rand::RngCore;
 use rusqlite::{OptionalExtension, params};
-use sha2::{Digest, Sha256};
 
 use crate::error::{AggregatorError, Result};
+pub use crate::secrets::constant_time_eq;
+use crate::secrets::{random_readable, random_token, secret_hash};
 use crate::store::Store;
 use crate::study::valid_id;
 
@@ -40,25 +40,8 @@ impl Session {
     }
 }
 
-fn hex(bytes: &[u8]) -> String {
-    bytes.iter().map(|b| format!("{b:02x}")).collect()
-}
-
-/// 32 random bytes from the thread-local CSPRNG, hex-encoded.
-fn random_token() -> String {
-    let mut bytes = [0u8; 32];
-    rand::rng().fill_bytes(&mut bytes);
-    hex(&bytes)
-}
-
 fn token_hash(token: &str) -> String {
-    hex(&Sha256::digest(token.as_bytes()))
-}
-
-/// Equality that takes the same time wherever the strings differ.
-pub fn constant_time_eq(a: &str, b: &str) -> bool {
-    let (a, b) = (a.as_bytes(), b.as_bytes());
-    a.len() == b.len() && a.iter().zip(b).fold(0u8, |acc, (x, y)| acc | (x ^ y)) == 0
+    secret_hash(token)
 }
 
 fn hash_password(password: &str) -> Result<String> {
@@ -241,11 +224,7 @@ pub fn end_session(store: &Store, token: &str) -> Result<()> {
 }
 
 /// A random password for a generated account: 20 characters from an
-/// alphabet without look-alikes (about 110 bits).
+/// alphabet without look-alikes (about 115 bits).
 pub fn generate_password() -> String {
-    const ALPHABET: &[u8] = b"abcdefghjkmnpqrstuvwxyzABCDEFGHJKMNPQRSTUVWXYZ23456789";
-    let mut rng = rand::rng();
-    (0..20)
-        .map(|_| ALPHABET[rand::Rng::random_range(&mut rng, 0..ALPHABET.len())] as char)
-        .collect()
+    random_readable(20)
 }
