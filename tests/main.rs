@@ -15,3 +15,4 @@ mod review_support;
 mod server_rpc;
 mod simulator;
 mod support;
+mod transport_tls;

@@ -321,8 +321,20 @@ pub async fn http(
     cookie: Option<&str>,
     body: Option<(&str, String)>,
 ) -> HttpResponse {
-    let mut stream = tokio::net::TcpStream::connect(addr).await.unwrap();
-    let mut req = format!("{method} {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n");
+    let stream = tokio::net::TcpStream::connect(addr).await.unwrap();
+    http_on(stream, &addr.to_string(), method, path, cookie, body).await
+}
+
+/// [`http`] over an open connection (plain TCP or TLS) to `host`.
+pub async fn http_on(
+    mut stream: impl tokio::io::AsyncRead + tokio::io::AsyncWrite + Unpin,
+    host: &str,
+    method: &str,
+    path: &str,
+    cookie: Option<&str>,
+    body: Option<(&str, String)>,
+) -> HttpResponse {
+    let mut req = format!("{method} {path} HTTP/1.1\r\nHost: {host}\r\nConnection: close\r\n");
     if let Some(c) = cookie {
         req.push_str(&format!("Cookie: {c}\r\n"));
     }

@@ -425,13 +425,68 @@ fn train_all(
     Ok(out)
 }
 
-/// Connects a lazy channel to `http://addr`.
+/// Connects a lazy plaintext channel to `http://addr` (loopback use: the
+/// demo and tests run the aggregator in the same process).
 pub fn connect_lazy(addr: std::net::SocketAddr) -> anyhow::Result<Channel> {
     Ok(
         tonic::transport::Endpoint::from_shared(format!("http://{addr}"))?
             .connect_timeout(Duration::from_secs(5))
             .connect_lazy(),
     )
+}
+
+/// How a device reaches an aggregator elsewhere.
+#[derive(Debug, Clone)]
+pub struct AggregatorAddress {
+    /// `https://host:port`, or `http://…` for loopback.
+    pub url: String,
+    /// PEM certificate(s) of the authority the aggregator's certificate is
+    /// checked against (e.g. the `ca.pem` of a development certificate).
+    pub ca_pem: Option<Vec<u8>>,
+    /// Allow `http://` to a host that is not loopback (credentials and
+    /// updates then cross the network unencrypted).
+    pub insecure_plaintext: bool,
+}
+
+/// Connects a lazy channel to `address`. `https` needs a CA; `http` is
+/// refused off loopback unless `insecure_plaintext` is set.
+pub fn connect_to(address: &AggregatorAddress) -> anyhow::Result<Channel> {
+    use tonic::transport::{Certificate, ClientTlsConfig, Endpoint};
+    let endpoint = Endpoint::from_shared(address.url.clone())
+        .with_context(|| format!("aggregator address `{}`", address.url))?
+        .connect_timeout(Duration::from_secs(10));
+    let uri = endpoint.uri().clone();
+    let host = uri.host().unwrap_or_default();
+    match uri.scheme_str() {
+        Some("https") => {
+            let ca = address.ca_pem.as_deref().ok_or_else(|| {
+                anyhow!(
+                    "`{}` uses TLS: give the aggregator's CA certificate",
+                    address.url
+                )
+            })?;
+            let tls = ClientTlsConfig::new().ca_certificate(Certificate::from_pem(ca));
+            Ok(endpoint.tls_config(tls)?.connect_lazy())
+        }
+        Some("http") => {
+            let loopback = host == "localhost"
+                || host
+                    .trim_matches(['[', ']'])
+                    .parse::<std::net::IpAddr>()
+                    .is_ok_and(|ip| ip.is_loopback());
+            if !loopback && !address.insecure_plaintext {
+                return Err(anyhow!(
+                    "refusing plaintext to non-loopback host `{host}`: use https:// with the \
+                     aggregator's CA certificate"
+                ));
+            }
+            Ok(endpoint.connect_lazy())
+        }
+        _ => Err(anyhow!(
+            "aggregator address `{}` must start with https:// (or http:// on loopback)",
+            address.url
+        )),
+    }
 }
 
 /// A per-participant seed for retry jitter, so devices do not retry in step.

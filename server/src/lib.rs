@@ -18,10 +18,12 @@ pub mod secrets;
 pub mod service;
 pub mod store;
 pub mod study;
+pub mod tls;
 pub mod wire;
 
 pub use error::AggregatorError;
-pub use review::{RunningReview, ensure_demo_reviewer, serve_review};
+pub use review::{RunningReview, ensure_demo_reviewer, serve_review, serve_review_with};
 pub use rounds::{Coordinator, Enrollment};
-pub use service::{RunningServer, serve};
+pub use service::{RunningServer, serve, serve_with};
 pub use study::{LocalTraining, Optimizer, SignalLayout, StudyConfig};
+pub use tls::TlsIdentity;

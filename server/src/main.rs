@@ -10,7 +10,10 @@ use clap::{Parser, Subcommand};
 use plimsoll_server::review::accounts;
 use plimsoll_server::secrets::{enrollment_code_hash, new_enrollment_code};
 use plimsoll_server::store::Store;
-use plimsoll_server::{Coordinator, StudyConfig, serve, serve_review, service::now_ms};
+use plimsoll_server::tls::write_dev_certificate;
+use plimsoll_server::{
+    Coordinator, StudyConfig, TlsIdentity, serve_review_with, serve_with, service::now_ms,
+};
 
 /// Environment variable a new reviewer's password may be read from
 /// (otherwise the first line of standard input is).
@@ -32,15 +35,42 @@ struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
-    /// Serve gRPC (aggregator, health, reflection) until interrupted.
+    /// Serve gRPC (aggregator, health, reflection) until interrupted. Off
+    /// loopback, both gRPC and the review pages need TLS (--tls-cert and
+    /// --tls-key).
     Serve {
         /// Address to listen on.
         #[arg(long, default_value = "127.0.0.1:50051")]
         listen: SocketAddr,
-        /// Also serve the clinician review pages (HTTP) on this address,
-        /// e.g. 127.0.0.1:8080. Loopback only.
+        /// Also serve the clinician review pages on this address, e.g.
+        /// 127.0.0.1:8080.
         #[arg(long)]
         review_listen: Option<SocketAddr>,
+        /// Server certificate chain (PEM), e.g. from `dev-certificate`.
+        #[arg(long, requires = "tls_key")]
+        tls_cert: Option<PathBuf>,
+        /// Private key of the server certificate (PEM).
+        #[arg(long, requires = "tls_cert")]
+        tls_key: Option<PathBuf>,
+        /// Serve plaintext on a non-loopback address anyway (only behind a
+        /// TLS-terminating proxy on the same host or network segment).
+        #[arg(long, conflicts_with = "tls_cert")]
+        insecure_plaintext: bool,
+    },
+    /// Write a development certificate authority (ca.pem, for devices and
+    /// browsers to trust) and a server certificate it signed
+    /// (aggregator.pem, aggregator.key) into a folder.
+    DevCertificate {
+        /// Folder to write into (files are never overwritten).
+        #[arg(long, default_value = "certs")]
+        out: PathBuf,
+        /// Host name or IP address the aggregator is reached by
+        /// (repeatable).
+        #[arg(long = "host", default_values_t = ["localhost".to_string(), "127.0.0.1".to_string()])]
+        hosts: Vec<String>,
+        /// Days the certificates stay valid.
+        #[arg(long, default_value_t = 90)]
+        days: u32,
     },
     /// Manage clinician reviewer accounts.
     Reviewer {
@@ -175,26 +205,42 @@ async fn main() -> anyhow::Result<()> {
         Command::Serve {
             listen,
             review_listen,
+            tls_cert,
+            tls_key,
+            insecure_plaintext,
         } => {
-            if !listen.ip().is_loopback() {
-                bail!("refusing to serve plaintext gRPC on non-loopback address {listen}");
+            let tls = match (tls_cert, tls_key) {
+                (Some(cert), Some(key)) => Some(TlsIdentity::load(&cert, &key)?),
+                _ => None,
+            };
+            if tls.is_none() && !insecure_plaintext {
+                for (what, addr) in std::iter::once(("gRPC", listen))
+                    .chain(review_listen.map(|a| ("review pages", a)))
+                {
+                    if !addr.ip().is_loopback() {
+                        bail!(
+                            "refusing to serve {what} in plaintext on non-loopback address {addr}: \
+                             give --tls-cert and --tls-key (`plimsoll-aggregator dev-certificate` \
+                             makes a development pair), or --insecure-plaintext behind a TLS proxy"
+                        );
+                    }
+                }
             }
-            if let Some(addr) = review_listen
-                && !addr.ip().is_loopback()
-            {
-                bail!("refusing to serve plaintext review pages on non-loopback address {addr}");
+            if insecure_plaintext {
+                tracing::warn!("serving plaintext as asked (--insecure-plaintext)");
             }
             let listener = tokio::net::TcpListener::bind(listen)
                 .await
                 .with_context(|| format!("binding {listen}"))?;
-            let server = serve(open()?, listener).await?;
-            println!("aggregator listening on {}", server.addr);
+            let server = serve_with(open()?, listener, tls.as_ref()).await?;
+            let scheme = if tls.is_some() { "TLS" } else { "plaintext" };
+            println!("aggregator listening on {} ({scheme})", server.addr);
             let review = match review_listen {
                 Some(addr) => {
                     let listener = tokio::net::TcpListener::bind(addr)
                         .await
                         .with_context(|| format!("binding {addr}"))?;
-                    let review = serve_review(&cli.db, listener).await?;
+                    let review = serve_review_with(&cli.db, listener, tls.as_ref()).await?;
                     println!("review pages on {}", review.url());
                     Some(review)
                 }
@@ -246,6 +292,22 @@ async fn main() -> anyhow::Result<()> {
             }
         },
         Command::Reviewer { command } => reviewer_command(&cli.db, command)?,
+        Command::DevCertificate { out, hosts, days } => {
+            let files = write_dev_certificate(&out, &hosts, days)?;
+            println!(
+                "development certificate for {} (valid {days} days):",
+                hosts.join(", ")
+            );
+            println!(
+                "  trust this on devices and browsers: {}",
+                files.ca.display()
+            );
+            println!(
+                "  serve with: --tls-cert {} --tls-key {}",
+                files.cert.display(),
+                files.key.display()
+            );
+        }
         Command::Status => {
             let coordinator = open()?;
             for id in coordinator.study_ids() {

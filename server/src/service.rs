@@ -14,6 +14,7 @@ use tonic::{Request, Response, Status};
 
 use crate::rounds::{Coordinator, Enrollment};
 use crate::study::Work;
+use crate::tls::TlsIdentity;
 use crate::wire;
 
 /// Longest long-poll a device may ask for.
@@ -229,10 +230,20 @@ impl RunningServer {
     }
 }
 
-/// Serves the aggregator, health and reflection services on `listener`.
+/// Serves the aggregator, health and reflection services on `listener`,
+/// in plaintext (for loopback; see [`serve_with`]).
 pub async fn serve(
     coordinator: Arc<Coordinator>,
     listener: TcpListener,
+) -> anyhow::Result<RunningServer> {
+    serve_with(coordinator, listener, None).await
+}
+
+/// [`serve`], over TLS when `tls` is given.
+pub async fn serve_with(
+    coordinator: Arc<Coordinator>,
+    listener: TcpListener,
+    tls: Option<&TlsIdentity>,
 ) -> anyhow::Result<RunningServer> {
     let addr = listener.local_addr()?;
     let (health_reporter, health_service) = tonic_health::server::health_reporter();
@@ -249,8 +260,12 @@ pub async fn serve(
     ));
     let service = AggregatorServer::new(AggregatorService::new(coordinator));
     let (tx, rx) = tokio::sync::oneshot::channel::<()>();
+    let mut builder = tonic::transport::Server::builder();
+    if let Some(tls) = tls {
+        builder = builder.tls_config(tls.grpc_config())?;
+    }
     let task = tokio::spawn(
-        tonic::transport::Server::builder()
+        builder
             .add_service(health_service)
             .add_service(reflection)
             .add_service(service)
@@ -258,7 +273,7 @@ pub async fn serve(
                 let _ = rx.await;
             }),
     );
-    tracing::info!(%addr, "aggregator listening");
+    tracing::info!(%addr, tls = tls.is_some(), "aggregator listening");
     Ok(RunningServer {
         addr,
         shutdown: Some(tx),

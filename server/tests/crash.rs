@@ -49,6 +49,7 @@ async fn start(db: &Path, fault: Option<&str>) -> Aggregator {
     let addr = line
         .trim()
         .strip_prefix("aggregator listening on ")
+        .and_then(|rest| rest.split_whitespace().next())
         .unwrap_or_else(|| panic!("unexpected first line `{line}`"))
         .to_owned();
     let channel = tonic::transport::Endpoint::from_shared(format!("http://{addr}"))

@@ -37,6 +37,7 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagLevel;
 use crate::service::now_ms;
 use crate::store::Store;
+use crate::tls::{TlsIdentity, TlsListener};
 
 /// Name of the session cookie.
 pub const SESSION_COOKIE: &str = "plimsoll_review";
@@ -48,12 +49,29 @@ pub const DEMO_REVIEWER: &str = "demo-reviewer";
 #[derive(Debug)]
 pub struct ReviewState {
     store: Mutex<Store>,
+    /// Mark session cookies `Secure` (pages served over TLS).
+    secure_cookies: bool,
 }
 
 impl ReviewState {
     pub fn new(store: Store) -> ReviewState {
         ReviewState {
             store: Mutex::new(store),
+            secure_cookies: false,
+        }
+    }
+
+    /// Marks session cookies `Secure`, so browsers send them only over TLS.
+    pub fn with_secure_cookies(mut self, secure: bool) -> ReviewState {
+        self.secure_cookies = secure;
+        self
+    }
+
+    fn cookie_attributes(&self) -> &'static str {
+        if self.secure_cookies {
+            "Path=/; HttpOnly; SameSite=Strict; Secure"
+        } else {
+            "Path=/; HttpOnly; SameSite=Strict"
         }
     }
 
@@ -262,7 +280,8 @@ async fn login(State(state): State<Arc<ReviewState>>, Form(form): Form<LoginForm
         Ok(Some(token)) => {
             let mut r = redirect("/");
             let cookie = format!(
-                "{SESSION_COOKIE}={token}; Path=/; HttpOnly; SameSite=Strict; Max-Age={}",
+                "{SESSION_COOKIE}={token}; {}; Max-Age={}",
+                state.cookie_attributes(),
                 accounts::SESSION_TTL_MS / 1000
             );
             r.headers_mut().insert(
@@ -304,9 +323,13 @@ async fn logout(
         return r;
     }
     let mut r = redirect("/login");
+    let cleared = format!(
+        "{SESSION_COOKIE}=; {}; Max-Age=0",
+        state.cookie_attributes()
+    );
     r.headers_mut().insert(
         header::SET_COOKIE,
-        HeaderValue::from_static("plimsoll_review=; Path=/; HttpOnly; SameSite=Strict; Max-Age=0"),
+        HeaderValue::from_str(&cleared).expect("ASCII cookie"),
     );
     r
 }
@@ -511,6 +534,8 @@ async fn flag_action(
 #[derive(Debug)]
 pub struct RunningReview {
     pub addr: SocketAddr,
+    /// Whether the pages are served over TLS.
+    pub tls: bool,
     shutdown: Option<tokio::sync::oneshot::Sender<()>>,
     task: tokio::task::JoinHandle<std::io::Result<()>>,
 }
@@ -518,7 +543,8 @@ pub struct RunningReview {
 impl RunningReview {
     /// The page a browser should open first.
     pub fn url(&self) -> String {
-        format!("http://{}/", self.addr)
+        let scheme = if self.tls { "https" } else { "http" };
+        format!("{scheme}://{}/", self.addr)
     }
 
     /// Stops accepting requests, finishes the ones in flight and waits.
@@ -531,33 +557,48 @@ impl RunningReview {
     }
 }
 
-/// Serves the review pages on `listener`, reading the aggregator database at
-/// `db_path` through its own connection (migrating it to the current schema
-/// if needed). The caller chooses the address; use a loopback one unless a
-/// TLS-terminating proxy is in front (cookies are not marked `Secure`).
+/// Serves the review pages on `listener` in plaintext (for loopback; see
+/// [`serve_review_with`]), reading the aggregator database at `db_path`
+/// through its own connection (migrating it to the current schema if
+/// needed).
 pub async fn serve_review(db_path: &Path, listener: TcpListener) -> anyhow::Result<RunningReview> {
-    let store = Store::open(db_path)?;
-    serve_review_on(Arc::new(ReviewState::new(store)), listener).await
+    serve_review_with(db_path, listener, None).await
 }
 
-/// Serves the review pages of `state` on `listener`.
-pub async fn serve_review_on(
-    state: Arc<ReviewState>,
+/// [`serve_review`], over TLS when `tls` is given; session cookies are then
+/// marked `Secure`.
+pub async fn serve_review_with(
+    db_path: &Path,
     listener: TcpListener,
+    tls: Option<&TlsIdentity>,
 ) -> anyhow::Result<RunningReview> {
+    let store = Store::open(db_path)?;
+    let state = Arc::new(ReviewState::new(store).with_secure_cookies(tls.is_some()));
     let addr = listener.local_addr()?;
     let (tx, rx) = tokio::sync::oneshot::channel::<()>();
     let app = router(state);
-    let task = tokio::spawn(async move {
-        axum::serve(listener, app)
-            .with_graceful_shutdown(async {
-                let _ = rx.await;
+    let shutdown = async {
+        let _ = rx.await;
+    };
+    let task = match tls {
+        None => tokio::spawn(async move {
+            axum::serve(listener, app)
+                .with_graceful_shutdown(shutdown)
+                .await
+        }),
+        Some(tls) => {
+            let listener = TlsListener::new(listener, tls.http_acceptor()?)?;
+            tokio::spawn(async move {
+                axum::serve(listener, app)
+                    .with_graceful_shutdown(shutdown)
+                    .await
             })
-            .await
-    });
-    tracing::info!(%addr, "review pages listening");
+        }
+    };
+    tracing::info!(%addr, tls = tls.is_some(), "review pages listening");
     Ok(RunningReview {
         addr,
+        tls: tls.is_some(),
         shutdown: Some(tx),
         task,
     })

@@ -1,0 +1,273 @@
+//! The real `plimsoll-aggregator` binary: plaintext off loopback is refused
+//! unless forced, `dev-certificate` + `serve --tls-cert/--tls-key` serves TLS
+//! on any address, and the operator's `device revoke` and `enrollment-code`
+//! commands take effect on a running aggregator.
+
+use std::io::{BufRead, BufReader};
+use std::path::Path;
+use std::process::{Child, Command, Stdio};
+
+use plimsoll_proto::auth::{self, DeviceCredential};
+use plimsoll_proto::v1 as pb;
+use plimsoll_proto::v1::aggregator_client::AggregatorClient;
+use tonic::transport::{Certificate, Channel, ClientTlsConfig, Endpoint};
+
+const BIN: &str = env!("CARGO_BIN_EXE_plimsoll-aggregator");
+const STUDY: &str = "cli-study";
+
+/// Runs the binary to completion; returns (success, stdout, stderr).
+fn run(db: &Path, args: &[&str]) -> (bool, String, String) {
+    let out = Command::new(BIN)
+        .arg("--db")
+        .arg(db)
+        .args(args)
+        .output()
+        .unwrap();
+    (
+        out.status.success(),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+/// A running `serve`, killed when dropped.
+struct Served {
+    child: Child,
+    /// The first line it printed, e.g. `aggregator listening on … (TLS)`.
+    first_line: String,
+    port: u16,
+}
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn serve(db: &Path, args: &[&str]) -> Served {
+    let mut child = Command::new(BIN)
+        .arg("--db")
+        .arg(db)
+        .arg("serve")
+        .args(args)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut first_line = String::new();
+    BufReader::new(child.stdout.take().unwrap())
+        .read_line(&mut first_line)
+        .unwrap();
+    let port = first_line
+        .split_whitespace()
+        .nth(3)
+        .and_then(|a| a.rsplit_once(':'))
+        .and_then(|(_, p)| p.parse().ok())
+        .unwrap_or_else(|| panic!("unexpected first line `{first_line}`"));
+    Served {
+        child,
+        first_line,
+        port,
+    }
+}
+
+fn create_study(db: &Path, dir: &Path) -> String {
+    let config = serde_json::json!({
+        "study_id": STUDY,
+        "title": "command line test",
+        "signals": [{
+            "signal": "resting_hr_bpm",
+            "param_names": ["a", "b", "c"],
+            "reference_center": 65.0,
+            "reference_scale": 10.0,
+            "initial": [0.0, 0.0, 0.0]
+        }],
+        "rounds": 2,
+        "training": { "optimizer": "sgd", "local_steps": 2, "learning_rate": 1.0, "window_days": 0, "hyperprior_weight_per_day": 0.0 },
+        "fraction_per_round": 1.0,
+        "min_quorum": 1,
+        "start_when_enrolled": 1,
+        "round_deadline_ms": 600000,
+        "selection_seed": 3
+    });
+    let path = dir.join("study.json");
+    std::fs::write(&path, config.to_string()).unwrap();
+    let (ok, stdout, stderr) = run(db, &["create-study", path.to_str().unwrap()]);
+    assert!(ok, "{stderr}");
+    code_in(&stdout)
+}
+
+/// The enrollment code printed at the end of a line.
+fn code_in(stdout: &str) -> String {
+    stdout
+        .lines()
+        .find(|l| l.contains("enrollment code"))
+        .and_then(|l| l.rsplit_once(": "))
+        .map(|(_, code)| code.trim().to_owned())
+        .unwrap_or_else(|| panic!("no enrollment code in `{stdout}`"))
+}
+
+fn authorized<T>(device: &DeviceCredential, message: T) -> tonic::Request<T> {
+    let mut r = tonic::Request::new(message);
+    r.metadata_mut()
+        .insert(auth::METADATA_KEY, device.header_value().parse().unwrap());
+    r
+}
+
+async fn plain_client(port: u16) -> AggregatorClient<Channel> {
+    AggregatorClient::new(
+        Endpoint::from_shared(format!("http://127.0.0.1:{port}"))
+            .unwrap()
+            .connect()
+            .await
+            .unwrap(),
+    )
+}
+
+#[test]
+fn plaintext_off_loopback_is_refused_unless_forced() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("agg.db");
+    for args in [
+        &["serve", "--listen", "0.0.0.0:0"][..],
+        &[
+            "serve",
+            "--listen",
+            "127.0.0.1:0",
+            "--review-listen",
+            "0.0.0.0:0",
+        ][..],
+    ] {
+        let (ok, _, stderr) = run(&db, args);
+        assert!(!ok, "{args:?} must be refused");
+        assert!(
+            stderr.contains("refusing") && stderr.contains("--tls-cert"),
+            "{stderr}"
+        );
+    }
+    let forced = serve(&db, &["--listen", "0.0.0.0:0", "--insecure-plaintext"]);
+    assert!(
+        forced.first_line.contains("(plaintext)"),
+        "{}",
+        forced.first_line
+    );
+}
+
+#[tokio::test]
+async fn a_dev_certificate_serves_tls_on_any_address() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("agg.db");
+    let certs = dir.path().join("certs");
+    let (ok, stdout, stderr) = run(&db, &["dev-certificate", "--out", certs.to_str().unwrap()]);
+    assert!(ok, "{stderr}");
+    assert!(stdout.contains("ca.pem"), "{stdout}");
+    // Run again: the files are not overwritten.
+    let (ok, _, stderr) = run(&db, &["dev-certificate", "--out", certs.to_str().unwrap()]);
+    assert!(!ok && stderr.contains("already exists"), "{stderr}");
+    // A certificate file that is not PEM is named in the error.
+    let (ok, _, stderr) = run(
+        &db,
+        &[
+            "serve",
+            "--tls-cert",
+            db.to_str().unwrap(),
+            "--tls-key",
+            certs.join("aggregator.key").to_str().unwrap(),
+        ],
+    );
+    assert!(!ok && stderr.contains("agg.db"), "{stderr}");
+
+    let served = serve(
+        &db,
+        &[
+            "--listen",
+            "0.0.0.0:0",
+            "--tls-cert",
+            certs.join("aggregator.pem").to_str().unwrap(),
+            "--tls-key",
+            certs.join("aggregator.key").to_str().unwrap(),
+        ],
+    );
+    assert!(served.first_line.contains("(TLS)"), "{}", served.first_line);
+    let ca = std::fs::read(certs.join("ca.pem")).unwrap();
+    let channel = Endpoint::from_shared(format!("https://localhost:{}", served.port))
+        .unwrap()
+        .tls_config(ClientTlsConfig::new().ca_certificate(Certificate::from_pem(ca)))
+        .unwrap()
+        .connect()
+        .await
+        .unwrap();
+    // An answer from the service (no such study) proves the TLS exchange.
+    let err = AggregatorClient::new(channel)
+        .get_study(pb::GetStudyRequest {
+            study_id: "none".into(),
+        })
+        .await
+        .unwrap_err();
+    assert_eq!(err.code(), tonic::Code::NotFound, "{err:?}");
+}
+
+#[tokio::test]
+async fn operator_commands_take_effect_on_a_running_aggregator() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("agg.db");
+    let code = create_study(&db, dir.path());
+    let served = serve(&db, &["--listen", "127.0.0.1:0"]);
+    let mut client = plain_client(served.port).await;
+    let enroll = |code: String, label: &str, secret: &str| pb::EnrollRequest {
+        study_id: STUDY.into(),
+        participant_label: label.into(),
+        signals: vec!["resting_hr_bpm".into()],
+        enrollment_code: code,
+        device_secret: secret.into(),
+        ..Default::default()
+    };
+    let secret = "5e".repeat(32);
+    let device_id = client
+        .enroll(enroll(code.clone(), "p-1", &secret))
+        .await
+        .unwrap()
+        .into_inner()
+        .device_id;
+    let me = DeviceCredential { device_id, secret };
+    let fetch = || {
+        authorized(
+            &me,
+            pb::FetchTaskRequest {
+                study_id: STUDY.into(),
+                device_id,
+                wait_ms: 0,
+            },
+        )
+    };
+    client.fetch_task(fetch()).await.unwrap();
+
+    // A new enrollment code: the old one stops working at once.
+    let (ok, stdout, stderr) = run(&db, &["enrollment-code", STUDY]);
+    assert!(ok, "{stderr}");
+    let fresh = code_in(&stdout);
+    assert_ne!(fresh, code);
+    let err = client
+        .enroll(enroll(code, "p-2", &"77".repeat(32)))
+        .await
+        .unwrap_err();
+    assert_eq!(err.code(), tonic::Code::Unauthenticated, "{err:?}");
+    client
+        .enroll(enroll(fresh, "p-2", &"77".repeat(32)))
+        .await
+        .unwrap();
+
+    // Revoking by participant label: refused at the next call.
+    let (ok, _, stderr) = run(&db, &["device", "revoke", STUDY, "p-1"]);
+    assert!(ok, "{stderr}");
+    let err = client.fetch_task(fetch()).await.unwrap_err();
+    assert_eq!(err.code(), tonic::Code::PermissionDenied, "{err:?}");
+    assert!(err.message().contains("revoked"), "{}", err.message());
+    let (ok, listing, _) = run(&db, &["device", "list", STUDY]);
+    assert!(ok);
+    let line = listing.lines().find(|l| l.contains("p-1")).unwrap();
+    assert!(line.contains("revoked"), "{listing}");
+    let (ok, _, stderr) = run(&db, &["device", "revoke", STUDY, "p-404"]);
+    assert!(!ok && stderr.contains("p-404"), "{stderr}");
+}
