@@ -51,6 +51,9 @@ pub struct DeviceOptions {
     pub wait_ms: u32,
     /// Seed of the device's window sampling.
     pub seed: u64,
+    /// The device's secret from an earlier run (enrolling again with it is
+    /// a retry that returns the same device id); `None` draws a new one.
+    pub device_secret: Option<String>,
 }
 
 /// The participant's choice, recorded at enrolment, about sharing flag
@@ -258,7 +261,7 @@ pub async fn run_device_with(
             "participant {participant} has no signal with {MIN_DAYS_TO_ENROLL} observed days"
         ));
     }
-    let secret = new_device_secret();
+    let secret = opts.device_secret.clone().unwrap_or_else(new_device_secret);
     let credential = enroll(
         &mut client,
         EnrollmentRequest {

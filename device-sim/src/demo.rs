@@ -122,6 +122,7 @@ pub async fn run_federated_with(
             out_dir: devices_dir.join(&series.participant),
             wait_ms: 5_000,
             seed: 0x5eed_0000 + i as u64,
+            device_secret: None,
         };
         tasks.spawn(run_device_with(
             channel.clone(),

@@ -12,6 +12,7 @@
 //! - [`cohort`]: the shared CSV format (reader, writer) and the simulator.
 //! - [`client`], [`wire`]: the gRPC side of a device.
 //! - [`demo`]: the end-to-end demo.
+//! - [`participate`]: one device taking part in a study run elsewhere.
 
 pub mod client;
 pub mod cohort;
@@ -21,6 +22,7 @@ pub mod evaluate;
 pub mod flags;
 pub mod gp;
 pub mod packets;
+pub mod participate;
 pub mod personal;
 pub mod prior;
 pub mod prospective;

@@ -2,16 +2,20 @@
 
 use std::path::PathBuf;
 
+use anyhow::Context;
 use clap::{Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressStyle};
+use plimsoll_device::client::{AggregatorAddress, FlagSharing};
 use plimsoll_device::cohort::{Scenario, SimulateOptions, SimulationSummary, simulate_to_dir};
 use plimsoll_device::demo::{DemoOptions, run_demo};
+use plimsoll_device::device_report::CAUTION;
 use plimsoll_device::evaluate::command::{EvaluateOptions, run_evaluation};
 use plimsoll_device::evaluate::report::render_table;
 use plimsoll_device::evaluate::run::{
     DEFAULT_LOCAL_FIT_DAYS, DEFAULT_TARGET_KIND, EvaluationSettings,
 };
 use plimsoll_device::flags::{FalseAlarmTarget, FlagConfig, FlagLevel};
+use plimsoll_device::participate::{ParticipateOptions, run_participate};
 
 #[derive(Debug, Parser)]
 #[command(
@@ -77,6 +81,40 @@ enum Command {
         #[arg(long, default_value_t = 8080)]
         review_port: u16,
     },
+    /// Take part in a study as one participant's device: enrol with an
+    /// aggregator elsewhere, train through its rounds, then compute the
+    /// personalised posterior, prospective bands and flags on this machine.
+    /// The study's enrollment code is read from PLIMSOLL_ENROLLMENT_CODE, or
+    /// else from the first line of standard input.
+    Participate {
+        /// Aggregator address, e.g. https://agg.pilot.internal:50051
+        /// (http:// only on loopback).
+        #[arg(long)]
+        aggregator: String,
+        /// CA certificate (PEM) the aggregator's certificate must chain to,
+        /// e.g. the ca.pem of `plimsoll-aggregator dev-certificate`.
+        #[arg(long)]
+        ca: Option<PathBuf>,
+        /// Study identifier.
+        #[arg(long)]
+        study: String,
+        /// Participant label; selects the participant's rows in --data.
+        #[arg(long)]
+        participant: String,
+        /// The participant's daily measures (daily.csv, shared cohort format).
+        #[arg(long)]
+        data: PathBuf,
+        /// Output folder (the device's secret and its local outputs).
+        #[arg(long, default_value = "out/device")]
+        out: PathBuf,
+        /// The participant consented to share flag packets with the study's
+        /// clinical reviewers (recorded at enrolment; default: nothing shared).
+        #[arg(long)]
+        share_flags: bool,
+        /// Allow http:// to a host that is not loopback.
+        #[arg(long)]
+        insecure_plaintext: bool,
+    },
     /// Compare detection methods on a cohort in the shared format (daily.csv, optional
     /// participants.csv and events.csv): federated prior + personal posterior, the same GP fit
     /// on each participant alone, one population model, and a rolling z-score. Writes
@@ -120,6 +158,29 @@ enum AlarmLevel {
     Watch,
 }
 
+/// Environment variable the study's enrollment code may be read from.
+const ENROLLMENT_CODE_ENV: &str = "PLIMSOLL_ENROLLMENT_CODE";
+
+/// The enrollment code from the environment, or else standard input (kept
+/// off the command line, where other users could read it).
+fn read_enrollment_code() -> anyhow::Result<String> {
+    if let Ok(code) = std::env::var(ENROLLMENT_CODE_ENV) {
+        return Ok(code);
+    }
+    eprintln!("enrollment code (one line on standard input):");
+    let mut line = String::new();
+    std::io::stdin()
+        .read_line(&mut line)
+        .context("reading the enrollment code from standard input")?;
+    let code = line.trim().to_owned();
+    if code.is_empty() {
+        anyhow::bail!(
+            "no enrollment code: set {ENROLLMENT_CODE_ENV} or write it on standard input"
+        );
+    }
+    Ok(code)
+}
+
 /// Parses `ALERTS/DAYS`, e.g. `1/365`.
 fn parse_budget(text: &str) -> Result<FalseAlarmTarget, String> {
     let (a, d) = text
@@ -153,6 +214,51 @@ async fn main() -> anyhow::Result<()> {
         .with_writer(std::io::stderr)
         .init();
     match Cli::parse().command {
+        Command::Participate {
+            aggregator,
+            ca,
+            study,
+            participant,
+            data,
+            out,
+            share_flags,
+            insecure_plaintext,
+        } => {
+            let ca_pem = ca
+                .map(|p| std::fs::read(&p).with_context(|| format!("reading {}", p.display())))
+                .transpose()?;
+            let opts = ParticipateOptions {
+                address: AggregatorAddress {
+                    url: aggregator,
+                    ca_pem,
+                    insecure_plaintext,
+                },
+                study_id: study,
+                enrollment_code: read_enrollment_code()?,
+                participant,
+                data,
+                out_dir: out,
+                sharing: if share_flags {
+                    FlagSharing::Consented
+                } else {
+                    FlagSharing::Withheld
+                },
+            };
+            let report = run_participate(&opts).await?;
+            println!(
+                "device {} of `{}`: {} rounds trained, prior version {}",
+                report.device_id, opts.study_id, report.rounds_trained, report.prior_version
+            );
+            println!(
+                "{} flags ({} Alerts), {} sent for review; outputs in {}",
+                report.flags,
+                report.alerts,
+                report.packets_sent,
+                opts.out_dir.display()
+            );
+            println!("{CAUTION}");
+            Ok(())
+        }
         Command::Simulate {
             scenario,
             out,
