@@ -233,13 +233,12 @@ async fn evaluate_command_end_to_end() {
             days,
         )
     };
-    for i in 0..METHODS.len() {
+    for (i, method) in METHODS.iter().enumerate() {
         let (with_events, days_with) = count(&report, i);
         let (without, days_without) = count(&report2, i);
         assert!(
             without >= with_events - 1e-6,
-            "{}: {without} < {with_events}",
-            METHODS[i]
+            "{method}: {without} < {with_events}"
         );
         assert!(days_without >= days_with);
     }

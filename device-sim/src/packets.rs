@@ -300,27 +300,6 @@ pub fn check(packet: &FlagPacket) -> anyhow::Result<()> {
     Ok(())
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn population_band_adds_the_component_variances() {
-        // Hand computation: resting HR, centre 65, scale 10; every log
-        // variance ln 0.25 → each SD 5 bpm, total SD = sqrt(4 · 25) = 10 bpm;
-        // mean_z 0 → μ0 = 65; 95% band 65 ± 19.6.
-        let mut p = PriorParams::initial(Signal::RestingHr);
-        p.values[0] = 0.0;
-        for i in [1, 2, 4, 6] {
-            p.values[i] = 0.25f64.ln();
-        }
-        let b = population_band(&p);
-        assert!((b.mean - 65.0).abs() < 1e-12);
-        assert!((b.hi95 - (65.0 + 19.599_639_845_400_54)).abs() < 1e-9);
-        assert!((b.lo50 - (65.0 - 6.744_897_501_960_817)).abs() < 1e-9);
-    }
-}
-
 impl From<&crate::flags::Flag> for FlagFacts {
     fn from(f: &crate::flags::Flag) -> FlagFacts {
         use crate::flags::{FlagKind, FlagLevel};
@@ -366,5 +345,26 @@ impl From<&crate::flags::ProspectiveDay> for DayRow {
                 DayStatus::Flagged => PacketDayStatus::Flagged,
             },
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn population_band_adds_the_component_variances() {
+        // Hand computation: resting HR, centre 65, scale 10; every log
+        // variance ln 0.25 → each SD 5 bpm, total SD = sqrt(4 · 25) = 10 bpm;
+        // mean_z 0 → μ0 = 65; 95% band 65 ± 19.6.
+        let mut p = PriorParams::initial(Signal::RestingHr);
+        p.values[0] = 0.0;
+        for i in [1, 2, 4, 6] {
+            p.values[i] = 0.25f64.ln();
+        }
+        let b = population_band(&p);
+        assert!((b.mean - 65.0).abs() < 1e-12);
+        assert!((b.hi95 - (65.0 + 19.599_639_845_400_54)).abs() < 1e-9);
+        assert!((b.lo50 - (65.0 - 6.744_897_501_960_817)).abs() < 1e-9);
     }
 }
