@@ -123,7 +123,8 @@ fn main() {
         let base = SEEDS[rng.random_range(0..SEEDS.len())].as_bytes();
         let input = mutate(base, &mut rng);
         std::fs::write(&path, &input).expect("write input");
-        let n_lines = input.split(|b| *b == b'\n').count() as u64;
+        // A lone `\r` ends a line too (it ends a CSV record), so count both bytes.
+        let n_lines = input.split(|b| matches!(b, b'\n' | b'\r')).count() as u64;
         let outcome = catch_unwind(AssertUnwindSafe(|| {
             read_daily(&path, BadRowPolicy::Quarantine)
         }));

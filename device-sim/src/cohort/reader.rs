@@ -52,12 +52,33 @@ struct CsvFile {
 
 /// Physical line numbers of records, from their byte offsets. The csv
 /// crate's own line count is off by one in CRLF files and skips blank
-/// lines, so the file is read a second time, in step, counting `\n`.
+/// lines, so the file is read a second time, in step, counting line breaks.
 struct LineCounter {
     path: PathBuf,
     reader: BufReader<File>,
     pos: u64,
-    newlines: u64,
+    breaks: LineBreaks,
+}
+
+/// Line breaks seen so far. `\n`, `\r\n` and a lone `\r` each end a line, as
+/// each ends a record for the csv crate: counting `\n` alone would put a
+/// record after a lone `\r` on the previous record's line (the header's, for
+/// the first row).
+#[derive(Default)]
+struct LineBreaks {
+    count: u64,
+    after_cr: bool,
+}
+
+impl LineBreaks {
+    fn add(&mut self, bytes: &[u8]) {
+        for &b in bytes {
+            if b == b'\r' || (b == b'\n' && !self.after_cr) {
+                self.count += 1;
+            }
+            self.after_cr = b == b'\r';
+        }
+    }
 }
 
 impl LineCounter {
@@ -67,7 +88,7 @@ impl LineCounter {
             path: path.to_owned(),
             reader: BufReader::new(file),
             pos: 0,
-            newlines: 0,
+            breaks: LineBreaks::default(),
         })
     }
 
@@ -84,7 +105,7 @@ impl LineCounter {
                 break;
             }
             let take = buf.len().min((offset - self.pos) as usize);
-            self.newlines += buf[..take].iter().filter(|b| **b == b'\n').count() as u64;
+            self.breaks.add(&buf[..take]);
             self.reader.consume(take);
             self.pos += take as u64;
         }
@@ -94,12 +115,12 @@ impl LineCounter {
                 .iter()
                 .take_while(|b| matches!(b, b'\r' | b'\n'))
                 .count();
-            self.newlines += buf[..skip].iter().filter(|b| **b == b'\n').count() as u64;
+            self.breaks.add(&buf[..skip]);
             let done = skip < buf.len() || buf.is_empty();
             self.reader.consume(skip);
             self.pos += skip as u64;
             if done {
-                return Ok(self.newlines + 1);
+                return Ok(self.breaks.count + 1);
             }
         }
     }
@@ -780,4 +801,49 @@ pub fn write_quarantine(
         .map_err(|e| CohortError::io(out, e.into_error()))?;
     inner.flush().map_err(|e| CohortError::io(out, e))?;
     Ok(written)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Input `crash-b64a25a694ad0449b420b658616fd5acb952d306` of the
+    /// `cohort_reader` fuzz target: the header ends with a lone `\r`, which
+    /// the csv crate takes as a record terminator. Counting `\n` alone put the
+    /// bad first row on line 1, where it passed for a header remark: it was
+    /// left out of the quarantine file, and under `Abort` a "line 1" issue
+    /// aborted the read.
+    const LONE_CR_HEADER: &[u8] =
+        b"participant,date,steps\rJx,2026-01%01,1\r\nx,2026-01-03,21e999\r\n";
+
+    #[test]
+    fn a_lone_cr_ends_a_line() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let path = dir.path().join(DAILY_FILE);
+        std::fs::write(&path, LONE_CR_HEADER).expect("write input");
+
+        let (series, issues) = read_daily(&path, BadRowPolicy::Quarantine).expect("read");
+        assert!(series.is_empty(), "{series:?}");
+        let lines: Vec<u64> = issues.iter().map(|i| i.line).collect();
+        assert_eq!(lines, [2, 3], "{issues:?}");
+        assert!(issues.iter().all(InputIssue::is_row_error));
+
+        let out = dir.path().join("quarantine.csv");
+        let written = write_quarantine(&path, &issues, &out).expect("quarantine");
+        assert_eq!(written, 2, "both bad rows are copied");
+
+        match read_daily(&path, BadRowPolicy::Abort) {
+            Err(CohortError::Aborted(issue)) => assert_eq!(issue, issues[0]),
+            other => panic!("expected an abort on line 2, got {other:?}"),
+        }
+    }
+
+    #[test]
+    fn line_breaks_count_crlf_once_and_lone_cr_and_lf() {
+        let mut breaks = LineBreaks::default();
+        // The CRLF is split across two reads, as it can be across buffers.
+        breaks.add(b"a\r\nb\rc\r");
+        breaks.add(b"\nd\n\n");
+        assert_eq!(breaks.count, 5);
+    }
 }
