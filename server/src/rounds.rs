@@ -792,7 +792,14 @@ fn maybe_open_round(
     now_ms: i64,
     abandon: Option<u64>,
 ) -> Result<bool> {
-    if rt.open.is_some() || rt.rounds_completed >= rt.config.rounds {
+    // The enrolment threshold starts the study; after that a revocation
+    // never stops it (a round short of quorum is retried as usual).
+    let too_few = |rt: &StudyRuntime| {
+        rt.last_round_id == 0 && (rt.active_devices() as u32) < rt.config.start_when_enrolled
+    };
+    // Cheap checks first: the in-memory count can only overstate the
+    // active devices, so the database is read only when a round may open.
+    if rt.open.is_some() || rt.rounds_completed >= rt.config.rounds || too_few(rt) {
         return Ok(false);
     }
     // Revocations may come from another process (the operator's command
@@ -802,9 +809,7 @@ fn maybe_open_round(
             d.revoked = true;
         }
     }
-    // The enrolment threshold starts the study; after that a revocation
-    // never stops it (a round short of quorum is retried as usual).
-    if rt.last_round_id == 0 && (rt.active_devices() as u32) < rt.config.start_when_enrolled {
+    if too_few(rt) {
         return Ok(false);
     }
     let round_id = rt.last_round_id + 1;
