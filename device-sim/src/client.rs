@@ -18,7 +18,8 @@ use std::sync::Arc;
 use std::time::Duration;
 
 use anyhow::{Context, anyhow};
-use plimsoll_proto::auth::{self, DeviceCredential};
+use plimsoll_proto::auth::DeviceCredential;
+pub use plimsoll_proto::auth::authorized;
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
 use rand::{RngCore, SeedableRng};
@@ -79,17 +80,6 @@ pub fn new_device_secret() -> String {
     let mut bytes = [0u8; 32];
     rand::rng().fill_bytes(&mut bytes);
     bytes.iter().map(|b| format!("{b:02x}")).collect()
-}
-
-/// `message` as a request carrying `credential` in its metadata.
-pub fn authorized<T>(credential: &DeviceCredential, message: T) -> tonic::Request<T> {
-    let mut request = tonic::Request::new(message);
-    let value = credential
-        .header_value()
-        .parse()
-        .expect("a decimal id and hex secret form a valid metadata value");
-    request.metadata_mut().insert(auth::METADATA_KEY, value);
-    request
 }
 
 /// What a device enrols with.

@@ -58,6 +58,17 @@ pub mod auth {
         }
     }
 
+    /// `message` as a request carrying `credential` in its metadata.
+    pub fn authorized<T>(credential: &DeviceCredential, message: T) -> tonic::Request<T> {
+        let mut request = tonic::Request::new(message);
+        let value = credential
+            .header_value()
+            .parse()
+            .expect("a decimal id and a hex secret form a valid metadata value");
+        request.metadata_mut().insert(METADATA_KEY, value);
+        request
+    }
+
     impl DeviceCredential {
         /// The metadata value, `Bearer <device_id>.<secret>`.
         pub fn header_value(&self) -> String {

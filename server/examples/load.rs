@@ -9,7 +9,7 @@
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-use plimsoll_proto::auth::{self, DeviceCredential};
+use plimsoll_proto::auth::{DeviceCredential, authorized};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
 use plimsoll_server::secrets::random_token;
@@ -20,16 +20,6 @@ use tokio::sync::Semaphore;
 use tonic::transport::{Channel, Endpoint};
 
 const TARGET_UPDATES_PER_S: f64 = 5_000.0;
-
-/// `message` carrying `device`'s credential, as every device call does.
-fn authorized<T>(device: &DeviceCredential, message: T) -> tonic::Request<T> {
-    let mut r = tonic::Request::new(message);
-    r.metadata_mut().insert(
-        auth::METADATA_KEY,
-        device.header_value().parse().expect("ASCII credential"),
-    );
-    r
-}
 
 fn peak_rss_mb() -> f64 {
     std::fs::read_to_string("/proc/self/status")

@@ -7,12 +7,14 @@ use std::io::{BufRead, BufReader};
 use std::path::Path;
 use std::process::{Child, Command, Stdio};
 
-use plimsoll_proto::auth::{self, DeviceCredential};
+mod common;
+
+use common::{BIN, code_in, create_study};
+use plimsoll_proto::auth::{DeviceCredential, authorized};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
 use tonic::transport::{Certificate, Channel, ClientTlsConfig, Endpoint};
 
-const BIN: &str = env!("CARGO_BIN_EXE_plimsoll-aggregator");
 const STUDY: &str = "cli-study";
 
 /// Runs the binary to completion; returns (success, stdout, stderr).
@@ -70,49 +72,6 @@ fn serve(db: &Path, args: &[&str]) -> Served {
         first_line,
         port,
     }
-}
-
-fn create_study(db: &Path, dir: &Path) -> String {
-    let config = serde_json::json!({
-        "study_id": STUDY,
-        "title": "command line test",
-        "signals": [{
-            "signal": "resting_hr_bpm",
-            "param_names": ["a", "b", "c"],
-            "reference_center": 65.0,
-            "reference_scale": 10.0,
-            "initial": [0.0, 0.0, 0.0]
-        }],
-        "rounds": 2,
-        "training": { "optimizer": "sgd", "local_steps": 2, "learning_rate": 1.0, "window_days": 0, "hyperprior_weight_per_day": 0.0 },
-        "fraction_per_round": 1.0,
-        "min_quorum": 1,
-        "start_when_enrolled": 1,
-        "round_deadline_ms": 600000,
-        "selection_seed": 3
-    });
-    let path = dir.join("study.json");
-    std::fs::write(&path, config.to_string()).unwrap();
-    let (ok, stdout, stderr) = run(db, &["create-study", path.to_str().unwrap()]);
-    assert!(ok, "{stderr}");
-    code_in(&stdout)
-}
-
-/// The enrollment code printed at the end of a line.
-fn code_in(stdout: &str) -> String {
-    stdout
-        .lines()
-        .find(|l| l.contains("enrollment code"))
-        .and_then(|l| l.rsplit_once(": "))
-        .map(|(_, code)| code.trim().to_owned())
-        .unwrap_or_else(|| panic!("no enrollment code in `{stdout}`"))
-}
-
-fn authorized<T>(device: &DeviceCredential, message: T) -> tonic::Request<T> {
-    let mut r = tonic::Request::new(message);
-    r.metadata_mut()
-        .insert(auth::METADATA_KEY, device.header_value().parse().unwrap());
-    r
 }
 
 async fn plain_client(port: u16) -> AggregatorClient<Channel> {
@@ -212,7 +171,7 @@ async fn a_dev_certificate_serves_tls_on_any_address() {
 async fn operator_commands_take_effect_on_a_running_aggregator() {
     let dir = tempfile::tempdir().unwrap();
     let db = dir.path().join("agg.db");
-    let code = create_study(&db, dir.path());
+    let code = create_study(&db, dir.path(), STUDY, 2, 1);
     let served = serve(&db, &["--listen", "127.0.0.1:0"]);
     let mut client = plain_client(served.port).await;
     let enroll = |code: String, label: &str, secret: &str| pb::EnrollRequest {

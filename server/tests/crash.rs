@@ -12,13 +12,15 @@ use std::io::{BufRead, BufReader};
 use std::path::Path;
 use std::process::{Child, Command, Stdio};
 
-use plimsoll_proto::auth::{self, DeviceCredential};
+mod common;
+
+use common::{BIN, create_study};
+use plimsoll_proto::auth::{DeviceCredential, authorized};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
 use tonic::transport::Channel;
 
 const STUDY: &str = "crash-study";
-const BIN: &str = env!("CARGO_BIN_EXE_plimsoll-aggregator");
 
 struct Aggregator {
     child: Child,
@@ -69,56 +71,6 @@ impl Aggregator {
         self.child.kill().unwrap();
         self.child.wait().unwrap();
     }
-}
-
-/// Creates the study with the real binary; returns the enrollment code it
-/// printed.
-fn create_study(db: &Path, dir: &Path) -> String {
-    let config = serde_json::json!({
-        "study_id": STUDY,
-        "title": "crash test",
-        "signals": [{
-            "signal": "resting_hr_bpm",
-            "param_names": ["a", "b", "c"],
-            "reference_center": 65.0,
-            "reference_scale": 10.0,
-            "initial": [0.0, 0.0, 0.0]
-        }],
-        "rounds": 3,
-        "training": { "optimizer": "sgd", "local_steps": 2, "learning_rate": 1.0, "window_days": 0, "hyperprior_weight_per_day": 0.0 },
-        "fraction_per_round": 1.0,
-        "min_quorum": 2,
-        "start_when_enrolled": 2,
-        "round_deadline_ms": 600000,
-        "selection_seed": 3
-    });
-    let path = dir.join("study.json");
-    std::fs::write(&path, config.to_string()).unwrap();
-    let out = Command::new(BIN)
-        .args([
-            "--db",
-            db.to_str().unwrap(),
-            "create-study",
-            path.to_str().unwrap(),
-        ])
-        .stderr(Stdio::null())
-        .output()
-        .unwrap();
-    assert!(out.status.success());
-    let stdout = String::from_utf8(out.stdout).unwrap();
-    stdout
-        .lines()
-        .find_map(|l| l.strip_prefix("enrollment code ")?.rsplit_once(": "))
-        .map(|(_, code)| code.to_owned())
-        .unwrap_or_else(|| panic!("no enrollment code in `{stdout}`"))
-}
-
-/// `message` carrying `device`'s credential.
-fn authorized<T>(device: &DeviceCredential, message: T) -> tonic::Request<T> {
-    let mut r = tonic::Request::new(message);
-    r.metadata_mut()
-        .insert(auth::METADATA_KEY, device.header_value().parse().unwrap());
-    r
 }
 
 fn integrity_ok(db: &Path) {
@@ -218,7 +170,7 @@ async fn latest(
 async fn killed_aggregator_resumes_without_losing_rounds() {
     let dir = tempfile::tempdir().unwrap();
     let db = dir.path().join("agg.db");
-    let code = create_study(&db, dir.path());
+    let code = create_study(&db, dir.path(), STUDY, 3, 2);
 
     // 1. Killed before aggregation: one of two submissions is in.
     let mut agg = start(&db, None).await;
