@@ -7,7 +7,7 @@ use clap::{Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressStyle};
 use plimsoll_device::client::{AggregatorAddress, FlagSharing};
 use plimsoll_device::cohort::{Scenario, SimulateOptions, SimulationSummary, simulate_to_dir};
-use plimsoll_device::demo::{DemoOptions, run_demo};
+use plimsoll_device::demo::{DemoOptions, initial_layouts, run_demo};
 use plimsoll_device::device_report::CAUTION;
 use plimsoll_device::evaluate::command::{EvaluateOptions, run_evaluation};
 use plimsoll_device::evaluate::report::render_table;
@@ -16,6 +16,8 @@ use plimsoll_device::evaluate::run::{
 };
 use plimsoll_device::flags::{FalseAlarmTarget, FlagConfig, FlagLevel};
 use plimsoll_device::participate::{ParticipateOptions, run_participate};
+use plimsoll_device::signal::Signal;
+use plimsoll_server::{LocalTraining, StudyConfig};
 
 #[derive(Debug, Parser)]
 #[command(
@@ -80,6 +82,33 @@ enum Command {
         /// Loopback port for the review page (0 picks a free port).
         #[arg(long, default_value_t = 8080)]
         review_port: u16,
+    },
+    /// Write a study configuration for `plimsoll-aggregator create-study`:
+    /// the shared prior's parameter layout and starting values for the
+    /// chosen signals, with plain-SGD local training.
+    StudyConfig {
+        /// Study identifier, `[A-Za-z0-9_-]{1,64}`.
+        #[arg(long)]
+        study: String,
+        /// Human-readable title.
+        #[arg(long, default_value = "Remote monitoring pilot")]
+        title: String,
+        /// Signal column to learn a prior for (repeatable; default: all six).
+        #[arg(long = "signal")]
+        signals: Vec<String>,
+        /// Federated rounds.
+        #[arg(long, default_value_t = 80)]
+        rounds: u32,
+        /// Fewest submissions for a round to be aggregated; also the number
+        /// of enrolled devices that starts round 1.
+        #[arg(long, default_value_t = 2)]
+        min_quorum: u32,
+        /// How long a round stays open, in minutes.
+        #[arg(long, default_value_t = 60)]
+        round_minutes: u32,
+        /// Output file (never overwritten).
+        #[arg(long, default_value = "study.json")]
+        out: PathBuf,
     },
     /// Take part in a study as one participant's device: enrol with an
     /// aggregator elsewhere, train through its rounds, then compute the
@@ -214,6 +243,61 @@ async fn main() -> anyhow::Result<()> {
         .with_writer(std::io::stderr)
         .init();
     match Cli::parse().command {
+        Command::StudyConfig {
+            study,
+            title,
+            signals,
+            rounds,
+            min_quorum,
+            round_minutes,
+            out,
+        } => {
+            let signals: Vec<Signal> = if signals.is_empty() {
+                Signal::ALL.to_vec()
+            } else {
+                signals
+                    .iter()
+                    .map(|s| {
+                        s.parse::<Signal>()
+                            .map_err(|e| anyhow::anyhow!("--signal {s}: {e}"))
+                    })
+                    .collect::<anyhow::Result<_>>()?
+            };
+            let config = StudyConfig {
+                study_id: study,
+                title,
+                signals: initial_layouts(&signals),
+                rounds,
+                training: LocalTraining::default(),
+                fraction_per_round: 1.0,
+                min_quorum,
+                start_when_enrolled: min_quorum,
+                round_deadline_ms: u64::from(round_minutes) * 60_000,
+                selection_seed: rand::random(),
+                aggregation: Default::default(),
+            };
+            config
+                .validate()
+                .map_err(|e| anyhow::anyhow!("study configuration: {e}"))?;
+            let json = serde_json::to_string_pretty(&config)? + "\n";
+            std::fs::OpenOptions::new()
+                .write(true)
+                .create_new(true)
+                .open(&out)
+                .and_then(|mut f| std::io::Write::write_all(&mut f, json.as_bytes()))
+                .with_context(|| {
+                    format!(
+                        "writing {} (an existing file is never overwritten)",
+                        out.display()
+                    )
+                })?;
+            println!(
+                "wrote {} ({} signals, {rounds} rounds, quorum {min_quorum})",
+                out.display(),
+                signals.len()
+            );
+            Ok(())
+        }
         Command::Participate {
             aggregator,
             ca,

@@ -164,3 +164,44 @@ async fn two_devices_take_part_over_tls_and_resume() {
     assert!(wrong.stderr.contains("enrollment_code"), "{}", wrong.stderr);
     server.shutdown().await.unwrap();
 }
+
+#[test]
+fn study_config_writes_a_valid_configuration_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("study.json");
+    let run = |args: &[&str]| {
+        Command::new(BIN)
+            .arg("study-config")
+            .args(args)
+            .arg("--out")
+            .arg(&out)
+            .output()
+            .unwrap()
+    };
+    let first = run(&[
+        "--study", "pilot-1", "--signal", "steps", "--signal", "sleep_h",
+    ]);
+    assert!(
+        first.status.success(),
+        "{}",
+        String::from_utf8_lossy(&first.stderr)
+    );
+    let config: StudyConfig =
+        serde_json::from_str(&std::fs::read_to_string(&out).unwrap()).unwrap();
+    config.validate().unwrap();
+    assert_eq!(config.study_id, "pilot-1");
+    assert_eq!(
+        config.signals,
+        initial_layouts(&[
+            plimsoll_device::signal::Signal::Steps,
+            plimsoll_device::signal::Signal::Sleep
+        ])
+    );
+    let again = run(&["--study", "pilot-2"]);
+    assert!(
+        !again.status.success(),
+        "an existing file is never overwritten"
+    );
+    let unknown = run(&["--study", "pilot-3", "--signal", "glucose"]);
+    assert!(String::from_utf8_lossy(&unknown.stderr).contains("glucose"));
+}
