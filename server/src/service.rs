@@ -12,6 +12,7 @@ use tokio::net::TcpListener;
 use tokio_stream::wrappers::TcpListenerStream;
 use tonic::{Request, Response, Status};
 
+use crate::error::AggregatorError;
 use crate::rounds::{Coordinator, Enrollment};
 use crate::study::Work;
 use crate::tls::TlsIdentity;
@@ -59,17 +60,25 @@ fn in_rpc(rpc: &str, status: Status) -> Status {
 /// The device credential in a call's metadata (UNAUTHENTICATED when it is
 /// missing or malformed; whether it is valid is the coordinator's check).
 fn credential<T>(rpc: &str, req: &Request<T>) -> Result<DeviceCredential, Status> {
+    let refuse = |reason: String| {
+        in_rpc(
+            rpc,
+            wire::to_status(AggregatorError::Unauthenticated(format!(
+                "authorization: {reason}"
+            ))),
+        )
+    };
     let value = req.metadata().get(auth::METADATA_KEY).ok_or_else(|| {
-        Status::unauthenticated(format!(
-            "{rpc}: authorization: missing; every call but GetStudy and Enroll carries \
+        refuse(
+            "missing; every call but GetStudy and Enroll carries \
              `authorization: Bearer <device_id>.<device_secret>`"
-        ))
+                .into(),
+        )
     })?;
-    let value = value.to_str().map_err(|_| {
-        Status::unauthenticated(format!("{rpc}: authorization: not printable ASCII"))
-    })?;
-    DeviceCredential::parse(value)
-        .map_err(|e| Status::unauthenticated(format!("{rpc}: authorization: {e}")))
+    let value = value
+        .to_str()
+        .map_err(|_| refuse("not printable ASCII".into()))?;
+    DeviceCredential::parse(value).map_err(refuse)
 }
 
 #[tonic::async_trait]
