@@ -308,17 +308,19 @@ async fn main() -> anyhow::Result<()> {
                 files.key.display()
             );
         }
+        // Read-only through the store: opening a coordinator here would
+        // also finish a complete open round, racing a running aggregator.
         Command::Status => {
-            let coordinator = open()?;
-            for id in coordinator.study_ids() {
-                let s = coordinator.status(&id)?;
+            let store = store()?;
+            for config in store.studies()? {
+                let id = &config.study_id;
+                let active = store.devices(id)?.iter().filter(|d| !d.revoked).count();
+                let version = store.priors(id)?.last().map_or(0, |p| p.version);
+                let open_round = store.open_round(id)?.map_or(0, |r| r.round_id);
                 println!(
-                    "{id}: {} devices, {}/{} rounds, prior version {}, open round {}",
-                    s.devices_enrolled,
-                    s.rounds_completed,
-                    s.config.rounds,
-                    s.prior_version,
-                    s.current_round
+                    "{id}: {active} devices, {}/{} rounds, prior version {version}, open round {open_round}",
+                    store.rounds_completed(id)?,
+                    config.rounds,
                 );
             }
         }

@@ -227,6 +227,16 @@ async fn operator_commands_take_effect_on_a_running_aggregator() {
     assert!(ok);
     let line = listing.lines().find(|l| l.contains("p-1")).unwrap();
     assert!(line.contains("revoked"), "{listing}");
+    // Status reads the store beside the running aggregator: the revoked
+    // device no longer counts, round 1 is still open.
+    let (ok, status, _) = run(&db, &["status"]);
+    assert!(ok);
+    assert!(
+        status.contains(&format!(
+            "{STUDY}: 1 devices, 0/2 rounds, prior version 0, open round 1"
+        )),
+        "{status}"
+    );
     let (ok, _, stderr) = run(&db, &["device", "revoke", STUDY, "p-404"]);
     assert!(!ok && stderr.contains("p-404"), "{stderr}");
 }
