@@ -3,13 +3,12 @@
 //! on any address, and the operator's `device revoke` and `enrollment-code`
 //! commands take effect on a running aggregator.
 
-use std::io::{BufRead, BufReader};
 use std::path::Path;
 use std::process::{Child, Command, Stdio};
 
 mod common;
 
-use common::{BIN, code_in, create_study};
+use common::{BIN, code_in, create_study, listening_line};
 use plimsoll_proto::auth::{DeviceCredential, authorized};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
@@ -57,16 +56,8 @@ fn serve(db: &Path, args: &[&str]) -> Served {
         .stderr(Stdio::null())
         .spawn()
         .unwrap();
-    let mut first_line = String::new();
-    BufReader::new(child.stdout.take().unwrap())
-        .read_line(&mut first_line)
-        .unwrap();
-    let port = first_line
-        .split_whitespace()
-        .nth(3)
-        .and_then(|a| a.rsplit_once(':'))
-        .and_then(|(_, p)| p.parse().ok())
-        .unwrap_or_else(|| panic!("unexpected first line `{first_line}`"));
+    let (first_line, addr) = listening_line(&mut child);
+    let port = addr.port();
     Served {
         child,
         first_line,

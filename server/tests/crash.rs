@@ -8,13 +8,12 @@
 //! This lives in the server package (not `tests/`) because it runs the real
 //! `plimsoll-aggregator` binary as a child process.
 
-use std::io::{BufRead, BufReader};
 use std::path::Path;
 use std::process::{Child, Command, Stdio};
 
 mod common;
 
-use common::{BIN, create_study};
+use common::{BIN, create_study, listening_line};
 use plimsoll_proto::auth::{DeviceCredential, authorized};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
@@ -44,16 +43,7 @@ async fn start(db: &Path, fault: Option<&str>) -> Aggregator {
         cmd.env("PLIMSOLL_FAULT_INJECT", f);
     }
     let mut child = cmd.spawn().expect("start the aggregator binary");
-    let mut line = String::new();
-    BufReader::new(child.stdout.take().unwrap())
-        .read_line(&mut line)
-        .unwrap();
-    let addr = line
-        .trim()
-        .strip_prefix("aggregator listening on ")
-        .and_then(|rest| rest.split_whitespace().next())
-        .unwrap_or_else(|| panic!("unexpected first line `{line}`"))
-        .to_owned();
+    let (_, addr) = listening_line(&mut child);
     let channel = tonic::transport::Endpoint::from_shared(format!("http://{addr}"))
         .unwrap()
         .connect()

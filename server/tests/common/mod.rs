@@ -49,3 +49,19 @@ pub fn code_in(stdout: &str) -> String {
         .map(|(_, code)| code.trim().to_owned())
         .unwrap_or_else(|| panic!("no enrollment code in `{stdout}`"))
 }
+
+/// Reads the first line `serve` prints (`aggregator listening on ADDR
+/// (TLS|plaintext)`); returns the line and ADDR.
+pub fn listening_line(child: &mut std::process::Child) -> (String, std::net::SocketAddr) {
+    use std::io::{BufRead, BufReader};
+    let mut line = String::new();
+    BufReader::new(child.stdout.take().expect("stdout is piped"))
+        .read_line(&mut line)
+        .unwrap();
+    let addr = line
+        .strip_prefix("aggregator listening on ")
+        .and_then(|rest| rest.split_whitespace().next())
+        .and_then(|a| a.parse().ok())
+        .unwrap_or_else(|| panic!("unexpected first line `{line}`"));
+    (line, addr)
+}
