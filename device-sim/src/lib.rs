@@ -17,6 +17,7 @@
 pub mod client;
 pub mod cohort;
 pub mod demo;
+pub mod detect;
 pub mod device_report;
 pub mod evaluate;
 pub mod flags;

@@ -12,9 +12,9 @@ use plimsoll_device::device_report::CAUTION;
 use plimsoll_device::evaluate::command::{EvaluateOptions, run_evaluation};
 use plimsoll_device::evaluate::report::render_table;
 use plimsoll_device::evaluate::run::{
-    DEFAULT_LOCAL_FIT_DAYS, DEFAULT_TARGET_KIND, EvaluationSettings,
+    DEFAULT_BUDGET_PER_MONTH, DEFAULT_LOCAL_FIT_DAYS, DEFAULT_TARGET_KIND, EvaluationSettings,
 };
-use plimsoll_device::flags::{FalseAlarmTarget, FlagConfig, FlagLevel};
+use plimsoll_device::flags::FlagLevel;
 use plimsoll_device::participate::{ParticipateOptions, run_participate};
 use plimsoll_device::signal::Signal;
 use plimsoll_server::{LocalTraining, StudyConfig};
@@ -164,10 +164,10 @@ enum Command {
         /// are false alarms.
         #[arg(long = "target-kind", default_value = DEFAULT_TARGET_KIND)]
         target_kinds: Vec<String>,
-        /// False-alarm budget ALERTS/DAYS the thresholds are calibrated to (default 1/365:
-        /// one false Alert per participant-year across all detectors).
-        #[arg(long, value_parser = parse_budget)]
-        false_alarm_budget: Option<FalseAlarmTarget>,
+        /// Alert budget: alarm episodes per participant-month the Alert threshold is
+        /// calibrated to on the cohort's own scores (Watch: 3× that).
+        #[arg(long, value_parser = parse_budget, default_value_t = DEFAULT_BUDGET_PER_MONTH)]
+        false_alarm_budget: f64,
         /// Observed days per signal the local-only method fits its hyperparameters on (also
         /// its cold start).
         #[arg(long, default_value_t = DEFAULT_LOCAL_FIT_DAYS)]
@@ -210,16 +210,16 @@ fn read_enrollment_code() -> anyhow::Result<String> {
     Ok(code)
 }
 
-/// Parses `ALERTS/DAYS`, e.g. `1/365`.
-fn parse_budget(text: &str) -> Result<FalseAlarmTarget, String> {
-    let (a, d) = text
-        .split_once('/')
-        .ok_or_else(|| format!("expected ALERTS/DAYS such as 1/365, got `{text}`"))?;
-    let alerts: f64 = a.trim().parse().map_err(|e| format!("`{a}`: {e}"))?;
-    let per_days: f64 = d.trim().parse().map_err(|e| format!("`{d}`: {e}"))?;
-    let target = FalseAlarmTarget { alerts, per_days };
-    FlagConfig::from_target(target).map_err(|e| e.to_string())?;
-    Ok(target)
+/// Parses a positive number of episodes per participant-month, e.g. `0.3`.
+fn parse_budget(text: &str) -> Result<f64, String> {
+    let v: f64 = text
+        .trim()
+        .parse()
+        .map_err(|e| format!("expected episodes per participant-month such as 0.3, got `{text}`: {e}"))?;
+    if !(v.is_finite() && v > 0.0) {
+        return Err(format!("the budget must be a positive number, got {v}"));
+    }
+    Ok(v)
 }
 
 /// Arguments of `plimsoll evaluate` after parsing.
@@ -229,7 +229,7 @@ struct EvaluateArgs {
     prior: Option<PathBuf>,
     rounds: u32,
     target_kinds: Vec<String>,
-    false_alarm_budget: Option<FalseAlarmTarget>,
+    false_alarm_budget: f64,
     local_fit_days: usize,
     alarm_level: AlarmLevel,
 }
@@ -425,9 +425,7 @@ async fn main() -> anyhow::Result<()> {
 async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
     let t0 = std::time::Instant::now();
     let mut settings = EvaluationSettings::new("");
-    if let Some(target) = args.false_alarm_budget {
-        settings.flag_config = FlagConfig::from_target(target)?;
-    }
+    settings.budget_per_month = args.false_alarm_budget;
     settings.target_kinds = args.target_kinds;
     settings.local_fit_days = args.local_fit_days;
     settings.alarm_level = match args.alarm_level {
@@ -474,6 +472,7 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
     println!();
     println!("Outputs:");
     println!("  table (CSV):   {}", outcome.csv.display());
+    println!("  matched (CSV): {}", outcome.matched_csv.display());
     println!("  report (JSON): {}", outcome.json.display());
     println!("  curves (SVG):  {}", outcome.svg.display());
     println!("  shared prior:  {}", outcome.prior.display());

@@ -15,7 +15,7 @@ use indicatif::{ProgressBar, ProgressStyle};
 use plimsoll_server::{LocalTraining, Optimizer, StudyConfig};
 
 use super::prior_file::{read_prior_file, write_prior_file};
-use super::report::{EvaluationReport, render_svg, write_csv, write_json};
+use super::report::{EvaluationReport, render_svg, write_csv, write_json, write_matched_csv};
 use super::run::{EvaluationSettings, evaluate_cohort};
 use crate::client::MIN_DAYS_TO_ENROLL;
 use crate::cohort::{BadRowPolicy, Cohort, read_cohort};
@@ -46,6 +46,7 @@ pub struct EvaluateOptions {
 pub struct EvaluationOutcome {
     pub report: EvaluationReport,
     pub csv: PathBuf,
+    pub matched_csv: PathBuf,
     pub json: PathBuf,
     pub svg: PathBuf,
     pub prior: PathBuf,
@@ -96,7 +97,7 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
     let bar = opts.progress.then(|| {
         ProgressBar::new(cohort.participants.len() as u64).with_style(
             ProgressStyle::with_template(
-                "detection (4 methods × thresholds) {bar:40} {pos}/{len} participants [{elapsed}]",
+                "detection (5 methods) {bar:40} {pos}/{len} participants [{elapsed}]",
             )
             .expect("static template"),
         )
@@ -112,6 +113,9 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
 
     let csv = opts.out_dir.join("evaluation.csv");
     let json = opts.out_dir.join("evaluation.json");
+    let matched_csv = opts.out_dir.join("evaluation-matched.csv");
+    write_matched_csv(&report, &matched_csv)
+        .with_context(|| format!("writing {}", matched_csv.display()))?;
     let svg = opts.out_dir.join("evaluation.svg");
     write_csv(&report, &csv).with_context(|| format!("writing {}", csv.display()))?;
     write_json(&report, &json).with_context(|| format!("writing {}", json.display()))?;
@@ -120,6 +124,7 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
     Ok(EvaluationOutcome {
         report,
         csv,
+        matched_csv,
         json,
         svg,
         prior: prior_path,

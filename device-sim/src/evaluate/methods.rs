@@ -16,6 +16,7 @@
 use std::collections::VecDeque;
 
 use crate::cohort::ParticipantSeries;
+use crate::detect::{DayScore, ParticipantScores};
 use crate::gp::LbfgsConfig;
 use crate::prior::{N_PARAMS, PriorParams};
 use crate::prospective::{OneStep, Predictor, ProspectiveError, Result, StateSpacePrior};
@@ -29,15 +30,17 @@ pub enum Method {
     LocalOnly,
     Population,
     RollingZ,
+    Alavi,
 }
 
 impl Method {
     /// Every method, in report order.
-    pub const ALL: [Method; 4] = [
+    pub const ALL: [Method; 5] = [
         Method::Federated,
         Method::LocalOnly,
         Method::Population,
         Method::RollingZ,
+        Method::Alavi,
     ];
 
     /// Stable key used in the CSV, JSON and plot.
@@ -47,6 +50,7 @@ impl Method {
             Method::LocalOnly => "local_only",
             Method::Population => "population",
             Method::RollingZ => "rolling_z",
+            Method::Alavi => "rhr_median_rule",
         }
     }
 
@@ -64,6 +68,9 @@ impl Method {
             }
             Method::RollingZ => {
                 "rolling-baseline z-score: mean and SD of the last 28 conditioned values"
+            }
+            Method::Alavi => {
+                "resting HR at least 4 bpm above a streaming median baseline on two consecutive nights (Alavi et al. 2022); score = the smaller excess of the two nights, in bpm"
             }
         }
     }
@@ -343,5 +350,56 @@ mod tests {
         }
         // Values 1..=28: mean 14.5.
         assert!((r.predict(40).unwrap().mean - 14.5).abs() < 1e-12);
+    }
+}
+
+/// The published resting-HR rule's score (Alavi et al. 2022, Nat. Med. 28:175): on a night
+/// `t` with resting HR observed on `t` and on the calendar night before, the smaller of the two
+/// nights' excess over the streaming median of every earlier night's resting HR (at least
+/// `min_nights` of them). The rule as published alarms when this is at least 4 bpm; the sweep
+/// varies the 4. The median includes every earlier night ("streaming"), alarm nights too (the
+/// rule has no baseline protection; from memory of the paper's description).
+pub fn alavi_scores(series: &ParticipantSeries, min_nights: usize) -> ParticipantScores {
+    let mut out = ParticipantScores::default();
+    let Some(column) = series.values.get(&crate::signal::Signal::RestingHr) else {
+        return out;
+    };
+    let mut earlier: Vec<f64> = Vec::new();
+    let mut prev_excess: Option<(chrono::NaiveDate, f64)> = None;
+    for (i, &date) in series.dates.iter().enumerate() {
+        let Some(v) = column[i].filter(|v| v.is_finite()) else {
+            continue;
+        };
+        let excess = (earlier.len() >= min_nights.max(1)).then(|| v - sorted_median(&earlier));
+        if let Some(x) = excess {
+            if let Some((d, px)) = prev_excess
+                && (date - d).num_days() == 1
+            {
+                out.days.push(DayScore {
+                    date,
+                    score: Some(x.min(px)),
+                    mirror: None,
+                    window_start: d,
+                    contributions: [0.0; 6],
+                    departures: [None; 6],
+                });
+            }
+            prev_excess = Some((date, x));
+        } else {
+            prev_excess = None;
+        }
+        let pos = earlier.partition_point(|e| *e < v);
+        earlier.insert(pos, v);
+    }
+    out
+}
+
+/// Median of a sorted, non-empty slice.
+fn sorted_median(sorted: &[f64]) -> f64 {
+    let n = sorted.len();
+    if n % 2 == 1 {
+        sorted[n / 2]
+    } else {
+        0.5 * (sorted[n / 2 - 1] + sorted[n / 2])
     }
 }

@@ -57,6 +57,8 @@ pub struct ParticipantResult {
     pub days: Vec<ScoredDay>,
     /// Dates with at least one alarm (a flag at the evaluated level or above).
     pub alarm_dates: BTreeSet<NaiveDate>,
+    /// Alarm episodes as (first, last) alarm date.
+    pub episodes: Vec<(NaiveDate, NaiveDate)>,
 }
 
 /// Group column under which per-period cells are reported.
@@ -101,6 +103,7 @@ struct Cell {
     lead_from_start: Vec<f64>,
     lead_from_onset: Vec<f64>,
     false_alarm_days: usize,
+    false_alarm_episodes: usize,
     days_outside_targets: usize,
     covered: usize,
     coverage_n: usize,
@@ -115,6 +118,8 @@ pub struct Metrics {
     pub events_detected: usize,
     pub sensitivity: Option<f64>,
     pub false_alarms_per_participant_month: Option<f64>,
+    /// Alarm episodes with no alarm day inside a target event, per participant-month.
+    pub false_alarm_episodes_per_participant_month: Option<f64>,
     pub median_lead_from_start_days: Option<f64>,
     pub median_lead_from_onset_days: Option<f64>,
     pub coverage_95: Option<f64>,
@@ -181,6 +186,13 @@ impl Cell {
             .iter()
             .filter(|d| within(**d) && !in_target(**d))
             .count();
+        cell.false_alarm_episodes = result
+            .episodes
+            .iter()
+            .filter(|(first, last)| {
+                within(*first) && !result.alarm_dates.range(*first..=*last).any(|d| in_target(*d))
+            })
+            .count();
         let scored_dates: BTreeSet<NaiveDate> = result
             .days
             .iter()
@@ -217,6 +229,7 @@ impl Cell {
         self.lead_from_start.extend(o.lead_from_start);
         self.lead_from_onset.extend(o.lead_from_onset);
         self.false_alarm_days += o.false_alarm_days;
+        self.false_alarm_episodes += o.false_alarm_episodes;
         self.days_outside_targets += o.days_outside_targets;
         self.covered += o.covered;
         self.coverage_n += o.coverage_n;
@@ -286,6 +299,8 @@ impl Accumulator {
                     sensitivity: (c.events > 0).then(|| c.detected as f64 / c.events as f64),
                     false_alarms_per_participant_month: (months > 0.0)
                         .then(|| c.false_alarm_days as f64 / months),
+                    false_alarm_episodes_per_participant_month: (months > 0.0)
+                        .then(|| c.false_alarm_episodes as f64 / months),
                     median_lead_from_start_days: median(&mut c.lead_from_start),
                     median_lead_from_onset_days: median(&mut c.lead_from_onset),
                     coverage_95: (c.coverage_n > 0).then(|| c.covered as f64 / c.coverage_n as f64),
@@ -353,6 +368,7 @@ mod tests {
             first_date: Some(date(1)),
             days,
             alarm_dates: [date(3), date(11), date(20)].into_iter().collect(),
+            episodes: vec![(date(3), date(3)), (date(11), date(11)), (date(20), date(20))],
         };
         let groups = BTreeMap::from([("sex".to_string(), "female".to_string())]);
         let mut acc = Accumulator::default();
@@ -370,6 +386,9 @@ mod tests {
         assert_eq!(m.calibration_signal_days, 25);
         let fa = m.false_alarms_per_participant_month.unwrap();
         assert!((fa - 2.0 / (25.0 / 30.4375)).abs() < 1e-12);
+        // Three episodes, one inside the event: two false episodes.
+        let fe = m.false_alarm_episodes_per_participant_month.unwrap();
+        assert!((fe - 2.0 / (25.0 / 30.4375)).abs() < 1e-12);
         // Coverage 24/25; NLPD: 24 days at r = 0 (0.5 ln 2π) and one at r = 2.5.
         assert!((m.coverage_95.unwrap() - 24.0 / 25.0).abs() < 1e-12);
         let half_ln_2pi = 0.5 * (2.0 * std::f64::consts::PI).ln();
@@ -404,6 +423,7 @@ mod tests {
                 })
                 .collect(),
             alarm_dates: [date(3), date(11), date(20)].into_iter().collect(),
+            episodes: vec![(date(3), date(3)), (date(11), date(11)), (date(20), date(20))],
         };
         let mut acc =
             Accumulator::with_periods(vec![Period::days(1, Some(14)), Period::days(15, None)]);

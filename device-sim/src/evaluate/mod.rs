@@ -9,3 +9,4 @@ pub mod metrics;
 pub mod prior_file;
 pub mod report;
 pub mod run;
+pub mod sweep;

@@ -7,22 +7,14 @@ use std::path::Path;
 
 use serde::Serialize;
 
+pub use super::sweep::{CurvePoint, MatchedPoint};
 use super::metrics::{Metrics, Subgroup};
-use crate::flags::{FalseAlarmTarget, FlagConfig, FlagLevel};
+use crate::detect::DetectConfig;
+use crate::detect::calibration::Calibrated;
+use crate::flags::FlagLevel;
 
 /// JSON schema identifier; bump when a key changes meaning.
-pub const SCHEMA: &str = "plimsoll.evaluation.v1";
-
-/// One point of a method's threshold sweep.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
-pub struct CurvePoint {
-    /// Multiplier applied to every detector threshold (1 = the calibrated setting).
-    pub threshold_scale: f64,
-    /// `null` when the cohort has no target events.
-    pub sensitivity: Option<f64>,
-    /// `null` when no day was scored outside target events.
-    pub false_alarms_per_participant_month: Option<f64>,
-}
+pub const SCHEMA: &str = "plimsoll.evaluation.v2";
 
 /// One subgroup's metrics.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -47,8 +39,20 @@ pub struct MethodSummary {
     pub notes: Vec<String>,
     /// Metrics at the calibrated thresholds, "all" first, then each subgroup.
     pub subgroups: Vec<SubgroupMetrics>,
-    /// Threshold sweep, ordered by `threshold_scale`.
+    /// Threshold sweep, ordered by threshold.
     pub curve: Vec<CurvePoint>,
+    /// Sensitivity at matched false alarm episode rates (`settings.matched_levels`).
+    pub matched: Vec<MatchedPoint>,
+    /// Area under sensitivity against false alarm episodes per participant-month, 0 to 1,
+    /// divided by 1 (see `docs/evaluation.md`).
+    pub partial_auc_to_1: Option<f64>,
+    /// The Alert threshold calibrated from the summed episode histograms.
+    pub alert_threshold: Calibrated,
+    /// The Watch threshold (budget × `watch_budget_factor`).
+    pub watch_threshold: Calibrated,
+    /// Episode rate per participant-month at the Alert threshold on the calibration data
+    /// (every episode, target events included: what the study would see).
+    pub calibration_rate_at_alert: f64,
 }
 
 /// The whole report.
@@ -70,14 +74,16 @@ pub struct EvaluationReport {
 /// How the evaluation was run.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ReportSettings {
-    /// Lowest flag level that counts as an alarm (`alert` or `watch`).
+    /// Lowest level that counts as an alarm (`alert` or `watch`).
     pub alarm_level: FlagLevel,
-    /// The false-alarm budget the calibrated thresholds come from.
-    pub false_alarm_target: Option<FalseAlarmTarget>,
-    /// Detectors, thresholds and rules shared by every method (scale 1).
-    pub flag_config: FlagConfig,
-    /// Threshold multipliers of the sweep (the curves).
-    pub threshold_scales: Vec<f64>,
+    /// The Alert budget the calibrated thresholds come from.
+    pub budget_alert_episodes_per_participant_month: f64,
+    /// Watch thresholds are calibrated to this many times the budget.
+    pub watch_budget_factor: f64,
+    /// Detector settings shared by every method.
+    pub detect: DetectConfig,
+    /// Pseudo-days shrinking the learned correlation towards the identity.
+    pub correlation_shrink_days: f64,
     /// Where the shared prior of `federated` and `population` came from.
     pub prior_source: String,
     /// Observed days per signal that `local_only` fits its hyperparameters on.
@@ -88,6 +94,8 @@ pub struct ReportSettings {
     pub rolling_min_values: usize,
     /// `rolling_z`: SD floor in standardised units.
     pub rolling_sd_floor: f64,
+    /// False alarm episode rates of the matched comparison.
+    pub matched_levels: Vec<f64>,
 }
 
 /// The caution printed with every evaluation output.
@@ -116,6 +124,11 @@ impl MethodSummary {
                 })
                 .collect(),
             curve,
+            matched: Vec::new(),
+            partial_auc_to_1: None,
+            alert_threshold: Calibrated { threshold: f64::NAN, rate: 0.0, capped: false },
+            watch_threshold: Calibrated { threshold: f64::NAN, rate: 0.0, capped: false },
+            calibration_rate_at_alert: 0.0,
         }
     }
 }
@@ -132,12 +145,13 @@ fn pct(v: Option<f64>) -> String {
 pub fn render_table(report: &EvaluationReport) -> String {
     let mut s = String::new();
     let header = format!(
-        "{:<12} {:<16} {:>6} {:>12} {:>9} {:>10} {:>10} {:>9} {:>7}\n",
+        "{:<15} {:<16} {:>6} {:>12} {:>8} {:>9} {:>10} {:>10} {:>9} {:>7}\n",
         "method",
         "subgroup",
         "events",
         "sensitivity",
-        "FA/p-mo",
+        "FAep/mo",
+        "FAd/mo",
         "lead start",
         "lead onset",
         "cover 95",
@@ -176,11 +190,12 @@ pub fn render_table(report: &EvaluationReport) -> String {
                 let x = &g.metrics;
                 let _ = writeln!(
                     s,
-                    "{:<12} {:<16} {:>6} {:>12} {:>9} {:>10} {:>10} {:>9} {:>7}",
+                    "{:<15} {:<16} {:>6} {:>12} {:>8} {:>9} {:>10} {:>10} {:>9} {:>7}",
                     m.method,
                     level,
                     x.events,
                     pct(x.sensitivity),
+                    opt(x.false_alarm_episodes_per_participant_month, 2),
                     opt(x.false_alarms_per_participant_month, 2),
                     opt(x.median_lead_from_start_days, 1),
                     opt(x.median_lead_from_onset_days, 1),
@@ -191,7 +206,9 @@ pub fn render_table(report: &EvaluationReport) -> String {
         }
         s.push('\n');
     }
-    s.push_str("FA/p-mo: false alarm-days per participant-month outside target events. Lead: median days from\n");
+    s.push_str(&render_matched(report));
+    s.push_str("Rows above: at each method's calibrated Alert threshold. FAep/mo: false alarm episodes per\n");
+    s.push_str("participant-month (episodes with no alarm day in a target event); FAd/mo: false alarm-days. Lead: median days from\n");
     s.push_str("event start / symptom onset to the first alarm (negative = before). cover 95: share of event-free\n");
     s.push_str("days inside the 95% prospective band. NLPD: mean negative log predictive density (standardised units).\n");
     s.push_str(CAUTION);
@@ -199,11 +216,65 @@ pub fn render_table(report: &EvaluationReport) -> String {
     s
 }
 
+/// The matched table: each method's sensitivity and median lead at each matched false alarm
+/// episode rate, the partial AUC and the calibrated thresholds.
+pub fn render_matched(report: &EvaluationReport) -> String {
+    let mut s = String::from("Matched false alarm episodes per participant-month (sensitivity / median lead from start, days)\n");
+    let _ = write!(s, "{:<15}", "method");
+    for l in &report.settings.matched_levels {
+        let _ = write!(s, " {:>14}", format!("at {l}"));
+    }
+    let _ = writeln!(s, " {:>8} {:>9} {:>9}", "pAUC≤1", "Alert ≥", "Watch ≥");
+    for m in &report.methods {
+        let _ = write!(s, "{:<15}", m.method);
+        for p in &m.matched {
+            let cell = match p.sensitivity {
+                Some(x) => format!("{:.1}% / {}", 100.0 * x, opt(p.median_lead_from_start_days, 0)),
+                None => "–".into(),
+            };
+            let _ = write!(s, " {cell:>14}");
+        }
+        let _ = writeln!(
+            s,
+            " {:>8} {:>9.2} {:>9.2}",
+            opt(m.partial_auc_to_1, 3),
+            m.alert_threshold.threshold,
+            m.watch_threshold.threshold
+        );
+    }
+    s.push('\n');
+    s
+}
+
+/// CSV of the matched table: one row per method and level.
+pub fn write_matched_csv(report: &EvaluationReport, path: &Path) -> std::io::Result<()> {
+    let mut s = String::from(
+        "method,false_alarm_episodes_per_participant_month,threshold,achieved_false_alarm_episodes,sensitivity,median_lead_from_start_days,partial_auc_to_1\n",
+    );
+    let f = |v: Option<f64>| v.map(|x| format!("{x:.6}")).unwrap_or_default();
+    for m in &report.methods {
+        for p in &m.matched {
+            let _ = writeln!(
+                s,
+                "{},{},{},{},{},{},{}",
+                m.method,
+                p.false_alarm_episodes_per_participant_month,
+                f(p.threshold),
+                f(p.achieved_false_alarm_episodes),
+                f(p.sensitivity),
+                f(p.median_lead_from_start_days),
+                f(m.partial_auc_to_1)
+            );
+        }
+    }
+    std::fs::write(path, s)
+}
+
 /// CSV: one row per method and subgroup, at the calibrated thresholds.
 pub fn write_csv(report: &EvaluationReport, path: &Path) -> std::io::Result<()> {
     let mut s = String::from(
         "method,subgroup_column,subgroup_level,participants,events,events_detected,sensitivity,\
-false_alarms_per_participant_month,median_lead_from_start_days,median_lead_from_onset_days,coverage_95,mean_nlpd,days_outside_targets,calibration_signal_days\n",
+false_alarms_per_participant_month,false_alarm_episodes_per_participant_month,median_lead_from_start_days,median_lead_from_onset_days,coverage_95,mean_nlpd,days_outside_targets,calibration_signal_days\n",
     );
     let f = |v: Option<f64>| v.map(|x| format!("{x:.6}")).unwrap_or_default();
     for m in &report.methods {
@@ -211,7 +282,7 @@ false_alarms_per_participant_month,median_lead_from_start_days,median_lead_from_
             let x = &g.metrics;
             let _ = writeln!(
                 s,
-                "{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
+                "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
                 m.method,
                 csv_field(&g.column),
                 csv_field(&g.level),
@@ -220,6 +291,7 @@ false_alarms_per_participant_month,median_lead_from_start_days,median_lead_from_
                 x.events_detected,
                 f(x.sensitivity),
                 f(x.false_alarms_per_participant_month),
+                f(x.false_alarm_episodes_per_participant_month),
                 f(x.median_lead_from_start_days),
                 f(x.median_lead_from_onset_days),
                 f(x.coverage_95),
@@ -246,7 +318,8 @@ pub fn write_json(report: &EvaluationReport, path: &Path) -> std::io::Result<()>
 }
 
 /// Okabe & Ito (2008) colour-blind-safe palette, with a distinct marker per series.
-const PALETTE: [(&str, &str); 4] = [
+const PALETTE: [(&str, &str); 5] = [
+    ("#E69F00", "square"),
     ("#0072B2", "circle"),
     ("#D55E00", "square"),
     ("#009E73", "triangle"),
@@ -306,7 +379,7 @@ pub fn render_svg(report: &EvaluationReport) -> String {
         .flat_map(|m| {
             m.curve
                 .iter()
-                .filter_map(|p| p.false_alarms_per_participant_month)
+                .filter_map(|p| p.false_alarm_episodes_per_participant_month)
         })
         .collect();
     let x_max = nice_ceiling(rates.iter().copied().fold(0.1f64, f64::max));
@@ -338,9 +411,9 @@ pub fn render_svg(report: &EvaluationReport) -> String {
             .iter()
             .map(|p| {
                 format!(
-                    "×{:.2}: {} FA, {}",
-                    p.threshold_scale,
-                    opt(p.false_alarms_per_participant_month, 2),
+                    "≥{:.2}: {} FA episodes, {}",
+                    p.threshold,
+                    opt(p.false_alarm_episodes_per_participant_month, 2),
                     pct(p.sensitivity)
                 )
             })
@@ -406,7 +479,7 @@ pub fn render_svg(report: &EvaluationReport) -> String {
             .iter()
             .filter_map(|p| {
                 Some((
-                    sx(p.false_alarms_per_participant_month?),
+                    sx(p.false_alarm_episodes_per_participant_month?),
                     sy(p.sensitivity?),
                 ))
             })
@@ -424,8 +497,16 @@ pub fn render_svg(report: &EvaluationReport) -> String {
             s.push_str(&marker(shape, x, y, colour));
         }
         // Ring the calibrated setting (scale 1).
-        if let Some(p) = m.curve.iter().find(|p| p.threshold_scale == 1.0)
-            && let (Some(fa), Some(sens)) = (p.false_alarms_per_participant_month, p.sensitivity)
+        if let Some(p) = m
+            .curve
+            .iter()
+            .min_by(|a, b| {
+                (a.threshold - m.alert_threshold.threshold)
+                    .abs()
+                    .total_cmp(&(b.threshold - m.alert_threshold.threshold).abs())
+            })
+            && let (Some(fa), Some(sens)) =
+                (p.false_alarm_episodes_per_participant_month, p.sensitivity)
         {
             let _ = write!(
                 s,

@@ -1,12 +1,14 @@
-//! Runs the four methods of [`super::methods`] over every participant of a cohort, at the
-//! calibrated thresholds and at each threshold scale of the sweep, and gathers the metrics of
-//! [`super::metrics`] into an [`EvaluationReport`].
+//! Runs every method of [`super::methods`] over a cohort with the detector of
+//! [`crate::detect`], calibrates each method's thresholds on its own scores the way a study
+//! would (summed per-device episode histograms), sweeps the threshold, and gathers the
+//! metrics of [`super::metrics`] and [`super::sweep`] into an [`EvaluationReport`].
 //!
-//! Every method goes through [`detect_with`] with the same [`FlagConfig`] (detectors,
-//! thresholds, baseline protection); only the predictive differs, and the cold start is the
-//! configured one, lengthened where a method needs more days (`local_only`: its fitting days;
-//! `rolling_z`: [`ROLLING_MIN_VALUES`]). Participants are spread over threads and each thread
-//! keeps its own accumulators, merged at the end.
+//! Every predictor-based method goes through [`score_participant`] with the same
+//! [`DetectConfig`] (guard, windows, joint score, protection); only the one-step predictor
+//! differs, and the cold start is lengthened where a method needs more days. The correlation
+//! `R` of each method is learned from its own residual moments in a first pass (what the
+//! federated statistics round does), then every participant is scored again with it.
+//! Participants are spread over threads.
 
 use std::collections::{BTreeMap, HashMap};
 
@@ -15,18 +17,20 @@ use indicatif::ProgressBar;
 
 use super::methods::{
     Method, PopulationPredictor, ROLLING_MIN_VALUES, ROLLING_SD_FLOOR, ROLLING_WINDOW_VALUES,
-    RollingZ, fit_local,
+    RollingZ, alavi_scores, fit_local,
 };
 use super::metrics::{Accumulator, ParticipantResult, Period, ScoredDay};
-use super::report::{CAUTION, CurvePoint, EvaluationReport, MethodSummary, ReportSettings, SCHEMA};
+use super::report::{CAUTION, EvaluationReport, MethodSummary, ReportSettings, SCHEMA};
+use super::sweep::{self, Compact, Truth};
 use crate::cohort::{Cohort, Event, ParticipantSeries};
-use crate::flags::{Detection, FlagConfig, FlagLevel, detect_with};
+use crate::detect::calibration::EpisodeHistogram;
+use crate::detect::episodes::group;
+use crate::detect::joint::{Correlation, ResidualMoments};
+use crate::detect::{DayScore, DetectConfig, ParticipantScores, score_participant};
+use crate::flags::FlagLevel;
 use crate::prior::PriorParams;
-use crate::prospective::{DailyFilter, DayStatus, StateSpacePrior};
+use crate::prospective::{DailyFilter, StateSpacePrior};
 use crate::signal::Signal;
-
-/// Default threshold multipliers of the sweep (1 = calibrated).
-pub const THRESHOLD_SCALES: [f64; 9] = [0.6, 0.7, 0.8, 0.9, 1.0, 1.15, 1.3, 1.5, 1.75];
 
 /// Default number of observed days per signal that `local_only` fits on.
 pub const DEFAULT_LOCAL_FIT_DAYS: usize = 28;
@@ -34,19 +38,28 @@ pub const DEFAULT_LOCAL_FIT_DAYS: usize = 28;
 /// Default event kinds counted as detection targets.
 pub const DEFAULT_TARGET_KIND: &str = "acute_illness";
 
+/// Default false-alarm budget: Alert episodes per participant-month.
+pub const DEFAULT_BUDGET_PER_MONTH: f64 = 0.3;
+
+/// Watch thresholds are calibrated to this many times the Alert budget.
+pub const WATCH_BUDGET_FACTOR: f64 = 3.0;
+
+/// Pseudo-days by which the learned correlation is shrunk towards the identity.
+pub const CORRELATION_SHRINK_DAYS: f64 = 200.0;
+
 /// How to evaluate.
 #[derive(Debug, Clone, PartialEq)]
 pub struct EvaluationSettings {
-    /// Detectors and calibrated thresholds shared by every method.
-    pub flag_config: FlagConfig,
+    /// Detector settings shared by every method.
+    pub detect: DetectConfig,
+    /// Alert budget: episodes per participant-month on the calibration data.
+    pub budget_per_month: f64,
     /// Event kinds counted as detection targets.
     pub target_kinds: Vec<String>,
-    /// Lowest flag level that counts as an alarm.
+    /// Lowest level that counts as an alarm.
     pub alarm_level: FlagLevel,
     /// Observed days per signal that `local_only` fits on (and its cold start).
     pub local_fit_days: usize,
-    /// Threshold multipliers of the sweep; 1 is added if missing.
-    pub threshold_scales: Vec<f64>,
     /// Worker threads (at least 1).
     pub threads: usize,
     /// Where the shared prior came from, in words (reported).
@@ -54,38 +67,19 @@ pub struct EvaluationSettings {
 }
 
 impl EvaluationSettings {
-    /// The defaults: `FlagConfig::default()`, target `acute_illness`, Alert level, 28 fitting
-    /// days, [`THRESHOLD_SCALES`], one thread per core.
+    /// The defaults: [`DetectConfig::default`], [`DEFAULT_BUDGET_PER_MONTH`], target
+    /// `acute_illness`, Alert level, 28 fitting days, one thread per core.
     pub fn new(prior_source: &str) -> EvaluationSettings {
         EvaluationSettings {
-            flag_config: FlagConfig::default(),
+            detect: DetectConfig::default(),
+            budget_per_month: DEFAULT_BUDGET_PER_MONTH,
             target_kinds: vec![DEFAULT_TARGET_KIND.into()],
             alarm_level: FlagLevel::Alert,
             local_fit_days: DEFAULT_LOCAL_FIT_DAYS,
-            threshold_scales: THRESHOLD_SCALES.to_vec(),
             threads: std::thread::available_parallelism().map_or(2, |n| n.get()),
             prior_source: prior_source.into(),
         }
     }
-}
-
-/// `cfg` with every detector threshold (single-day, CUSUM `h`, multi-signal; Watch and Alert)
-/// multiplied by `factor`. The CUSUM winsorisation, `k` and the rules are unchanged; the
-/// budget is dropped unless `factor` is 1.
-pub fn scale_thresholds(cfg: &FlagConfig, factor: f64) -> FlagConfig {
-    let mut out = cfg.clone();
-    for t in [
-        &mut out.single_day_z,
-        &mut out.cusum_h,
-        &mut out.multi_signal_score,
-    ] {
-        t.watch *= factor;
-        t.alert *= factor;
-    }
-    if factor != 1.0 {
-        out.target = None;
-    }
-    out
 }
 
 /// What happened to the `local_only` fits.
@@ -110,19 +104,57 @@ impl LocalFitStats {
     }
 }
 
-/// Per-thread state: one accumulator per (method, scale).
-struct Worker {
-    accumulators: Vec<Vec<Accumulator>>,
-    local: LocalFitStats,
+/// One participant's scores under every method, kept compact.
+struct Scored {
+    index: usize,
+    per_method: Vec<(Vec<Compact>, Vec<ScoredDay>)>,
 }
 
-/// Evaluates every participant of `cohort` with the four methods, `priors` being the shared
+/// Runs `f` over the participants on `threads` threads, in participant order.
+fn par_map<T: Send>(
+    cohort: &Cohort,
+    threads: usize,
+    f: impl Fn(usize, &ParticipantSeries) -> anyhow::Result<T> + Sync,
+) -> anyhow::Result<Vec<T>> {
+    let n_threads = threads.clamp(1, cohort.participants.len().max(1));
+    let results: Vec<anyhow::Result<Vec<(usize, T)>>> = std::thread::scope(|scope| {
+        let f = &f;
+        let handles: Vec<_> = (0..n_threads)
+            .map(|thread| {
+                scope.spawn(move || -> anyhow::Result<Vec<(usize, T)>> {
+                    let mut out = Vec::new();
+                    for (i, series) in cohort
+                        .participants
+                        .iter()
+                        .enumerate()
+                        .skip(thread)
+                        .step_by(n_threads)
+                    {
+                        out.push((i, f(i, series)?));
+                    }
+                    Ok(out)
+                })
+            })
+            .collect();
+        handles
+            .into_iter()
+            .map(|h| h.join().expect("evaluation thread panicked"))
+            .collect()
+    });
+    let mut all = Vec::with_capacity(cohort.participants.len());
+    for r in results {
+        all.extend(r?);
+    }
+    all.sort_by_key(|(i, _)| *i);
+    Ok(all.into_iter().map(|(_, t)| t).collect())
+}
+
+/// Evaluates every participant of `cohort` with every method, `priors` being the shared
 /// prior of `federated` and `population` (signals without a prior are not analysed by any
-/// method, so that all four see the same signals).
+/// method).
 ///
 /// # Errors
-/// Invalid settings (no thresholds, zero fitting days, a bad flag configuration), an invalid
-/// prior, or a detection error naming the participant and signal.
+/// Invalid settings, an invalid prior, or a detection error naming the participant and signal.
 pub fn evaluate_cohort(
     cohort: &Cohort,
     cohort_name: &str,
@@ -130,24 +162,13 @@ pub fn evaluate_cohort(
     settings: &EvaluationSettings,
     progress: Option<&ProgressBar>,
 ) -> anyhow::Result<EvaluationReport> {
-    settings.flag_config.validate()?;
+    settings.detect.validate()?;
     if settings.local_fit_days == 0 {
         bail!("local_fit_days must be at least 1");
     }
-    let mut scales = settings.threshold_scales.clone();
-    if scales.iter().any(|s| !(s.is_finite() && *s > 0.0)) {
-        bail!("threshold scales must be positive: {scales:?}");
+    if !(settings.budget_per_month.is_finite() && settings.budget_per_month > 0.0) {
+        bail!("the false-alarm budget must be positive, got {}", settings.budget_per_month);
     }
-    if !scales.contains(&1.0) {
-        scales.push(1.0);
-    }
-    scales.sort_by(f64::total_cmp);
-    scales.dedup();
-    let calibrated = scales
-        .iter()
-        .position(|s| *s == 1.0)
-        .expect("1 was added above");
-
     let mut models: Vec<(Signal, StateSpacePrior)> = Vec::with_capacity(priors.len());
     for p in priors {
         if models.iter().any(|(s, _)| *s == p.signal) {
@@ -157,28 +178,62 @@ pub fn evaluate_cohort(
             StateSpacePrior::new(p).with_context(|| format!("shared prior of {}", p.signal))?;
         models.push((p.signal, model));
     }
-
-    // Flag configuration per (method, scale).
-    let configs: Vec<Vec<FlagConfig>> = Method::ALL
+    let configs: Vec<DetectConfig> = Method::ALL
         .iter()
-        .map(|&method| {
-            scales
-                .iter()
-                .map(|&f| {
-                    let mut cfg = scale_thresholds(&settings.flag_config, f);
-                    cfg.min_baseline_days = cold_start(method, settings);
-                    cfg
-                })
-                .collect()
+        .map(|&m| {
+            let mut cfg = settings.detect.clone();
+            cfg.min_baseline_days = cold_start(m, settings);
+            cfg
         })
         .collect();
 
-    let fit_days = settings.local_fit_days as i64;
-    let periods = vec![
-        Period::days(1, Some(fit_days)),
-        Period::days(fit_days + 1, Some(2 * fit_days)),
-        Period::days(2 * fit_days + 1, None),
-    ];
+    // Local fits once per participant (they do not depend on R).
+    let local: Vec<(Vec<(Signal, StateSpacePrior)>, LocalFitStats)> =
+        par_map(cohort, settings.threads, |_, series| {
+            let mut stats = LocalFitStats::default();
+            let m = fit_local_models(series, &models, settings, &mut stats)?;
+            Ok((m, stats))
+        })?;
+
+    // Pass 1: residual moments per method (identity correlation), summed as the aggregator
+    // would.
+    let identity = Correlation::identity();
+    let moments: Vec<Vec<ResidualMoments>> = par_map(cohort, settings.threads, |i, series| {
+        Method::ALL
+            .iter()
+            .enumerate()
+            .map(|(m, &method)| {
+                Ok(run_method(method, series, &models, &local[i].0, &identity, &configs[m])?
+                    .map(|s| s.moments)
+                    .unwrap_or_default())
+            })
+            .collect()
+    })?;
+    let correlations: Vec<Correlation> = (0..Method::ALL.len())
+        .map(|m| {
+            let mut sum = ResidualMoments::default();
+            for p in &moments {
+                sum.merge(&p[m]);
+            }
+            sum.correlation(CORRELATION_SHRINK_DAYS)
+        })
+        .collect();
+
+    // Pass 2: scores with the learned correlation.
+    let scored: Vec<Scored> = par_map(cohort, settings.threads, |i, series| {
+        let mut per_method = Vec::with_capacity(Method::ALL.len());
+        for (m, &method) in Method::ALL.iter().enumerate() {
+            let s = run_method(method, series, &models, &local[i].0, &correlations[m], &configs[m])?;
+            per_method.push(match s {
+                Some(s) => (compact(&s.days), scored_days(&s)),
+                None => (Vec::new(), Vec::new()),
+            });
+        }
+        if let Some(pb) = progress {
+            pb.inc(1);
+        }
+        Ok(Scored { index: i, per_method })
+    })?;
 
     let mut events: HashMap<&str, (Vec<&Event>, Vec<&Event>)> = HashMap::new();
     for e in &cohort.events {
@@ -189,93 +244,73 @@ pub fn evaluate_cohort(
             entry.1.push(e);
         }
     }
-    let no_groups = BTreeMap::new();
     let no_events = (Vec::new(), Vec::new());
-
-    let n_threads = settings.threads.clamp(1, cohort.participants.len().max(1));
-    let new_worker = || Worker {
-        accumulators: Method::ALL
-            .iter()
-            .map(|_| {
-                scales
-                    .iter()
-                    .map(|_| Accumulator::with_periods(periods.clone()))
-                    .collect()
-            })
-            .collect(),
-        local: LocalFitStats::default(),
-    };
-    let results: Vec<anyhow::Result<Worker>> = std::thread::scope(|scope| {
-        let handles: Vec<_> = (0..n_threads)
-            .map(|thread| {
-                let (models, configs, events) = (&models, &configs, &events);
-                let (no_groups, no_events) = (&no_groups, &no_events);
-                let mut worker = new_worker();
-                scope.spawn(move || -> anyhow::Result<Worker> {
-                    for series in cohort.participants.iter().skip(thread).step_by(n_threads) {
-                        let groups = cohort.groups.get(&series.participant).unwrap_or(no_groups);
-                        let (targets, others) =
-                            events.get(series.participant.as_str()).unwrap_or(no_events);
-                        let local_models =
-                            fit_local_models(series, models, settings, &mut worker.local)?;
-                        for (m, &method) in Method::ALL.iter().enumerate() {
-                            for (k, cfg) in configs[m].iter().enumerate() {
-                                let detection =
-                                    run_method(method, series, models, &local_models, cfg)?;
-                                let result =
-                                    participant_result(series, &detection, settings.alarm_level);
-                                worker.accumulators[m][k].add(groups, targets, others, &result);
-                            }
-                        }
-                        if let Some(pb) = progress {
-                            pb.inc(1);
-                        }
-                    }
-                    Ok(worker)
-                })
-            })
-            .collect();
-        handles
-            .into_iter()
-            .map(|h| h.join().expect("evaluation thread panicked"))
-            .collect()
-    });
-    let mut merged = new_worker();
-    for worker in results {
-        let worker = worker?;
-        for (mine, theirs) in merged.accumulators.iter_mut().zip(worker.accumulators) {
-            for (a, b) in mine.iter_mut().zip(theirs) {
-                a.merge(b);
-            }
-        }
-        merged.local.merge(worker.local);
+    let no_groups = BTreeMap::new();
+    let fit_days = settings.local_fit_days as i64;
+    let periods = vec![
+        Period::days(1, Some(fit_days)),
+        Period::days(fit_days + 1, Some(2 * fit_days)),
+        Period::days(2 * fit_days + 1, None),
+    ];
+    let mut local_stats = LocalFitStats::default();
+    for (_, s) in local {
+        local_stats.merge(s);
     }
 
+    let gap = settings.detect.merge_gap_days;
     let mut methods = Vec::with_capacity(Method::ALL.len());
-    for (m, (&method, accumulators)) in Method::ALL.iter().zip(merged.accumulators).enumerate() {
-        let mut subgroups = Vec::new();
-        let mut curve = Vec::with_capacity(scales.len());
-        for (k, acc) in accumulators.into_iter().enumerate() {
-            let finished = acc.finish();
-            let all = &finished.first().context("no participant was evaluated")?.1;
-            curve.push(CurvePoint {
-                threshold_scale: scales[k],
-                sensitivity: all.sensitivity,
-                false_alarms_per_participant_month: all.false_alarms_per_participant_month,
-            });
-            if k == calibrated {
-                subgroups = finished;
-            }
+    for (m, &method) in Method::ALL.iter().enumerate() {
+        // Calibration: summed per-device episode histograms.
+        let mut hist = EpisodeHistogram::default();
+        for s in &scored {
+            hist.merge(&EpisodeHistogram::from_days(&expand(&s.per_method[m].0), gap));
+        }
+        let alert = hist.threshold_for(settings.budget_per_month);
+        let watch = hist.threshold_for(WATCH_BUDGET_FACTOR * settings.budget_per_month);
+        let alarm_threshold = match settings.alarm_level {
+            FlagLevel::Alert => alert.threshold,
+            FlagLevel::Watch => watch.threshold,
+        };
+
+        let truths: Vec<Truth<'_>> = scored
+            .iter()
+            .map(|s| {
+                let series = &cohort.participants[s.index];
+                let (targets, _) = events.get(series.participant.as_str()).unwrap_or(&no_events);
+                Truth {
+                    first_date: series.dates.first().copied(),
+                    days: &s.per_method[m].0,
+                    targets,
+                }
+            })
+            .collect();
+        let curve = sweep::curve(&truths, gap);
+        let matched = sweep::matched(&truths, gap, &sweep::MATCHED_LEVELS);
+        let pauc = sweep::partial_auc(&curve, 1.0);
+
+        let mut acc = Accumulator::with_periods(periods.clone());
+        for s in &scored {
+            let series = &cohort.participants[s.index];
+            let groups = cohort.groups.get(&series.participant).unwrap_or(&no_groups);
+            let (targets, others) = events.get(series.participant.as_str()).unwrap_or(&no_events);
+            let (days, signal_days) = &s.per_method[m];
+            let result = participant_result(series, days, signal_days, alarm_threshold, gap);
+            acc.add(groups, targets, others, &result);
         }
         let mut summary = MethodSummary::new(
             method.key(),
             method.description(),
-            configs[m][calibrated].min_baseline_days,
-            subgroups,
+            configs[m].min_baseline_days,
+            acc.finish(),
             curve,
         );
+        summary.matched = matched;
+        summary.partial_auc_to_1 = pauc;
+        summary.alert_threshold = alert;
+        summary.watch_threshold = watch;
+        summary.calibration_rate_at_alert = alert.rate;
         if method == Method::LocalOnly {
-            let s = &merged.local;
+            let s = &local_stats;
             summary.notes.push(format!(
                 "{} signal series fitted ({} stopped before the L-BFGS convergence test and were used as they were); {} signal series had fewer than {} observed days and were not analysed; {} fits failed",
                 s.fitted, s.not_converged, s.too_few_days, settings.local_fit_days, s.failed
@@ -283,6 +318,11 @@ pub fn evaluate_cohort(
             if let Some(msg) = &s.first_failure {
                 summary.notes.push(format!("first failed fit: {msg}"));
             }
+        }
+        if alert.capped {
+            summary.notes.push(
+                "even the top of the calibration grid exceeds the budget: the Alert threshold is capped".into(),
+            );
         }
         methods.push(summary);
     }
@@ -295,14 +335,16 @@ pub fn evaluate_cohort(
         input_issues: cohort.issues.iter().filter(|i| i.is_row_error()).count(),
         settings: ReportSettings {
             alarm_level: settings.alarm_level,
-            false_alarm_target: settings.flag_config.target,
-            flag_config: settings.flag_config.clone(),
-            threshold_scales: scales,
+            budget_alert_episodes_per_participant_month: settings.budget_per_month,
+            watch_budget_factor: WATCH_BUDGET_FACTOR,
+            detect: settings.detect.clone(),
+            correlation_shrink_days: CORRELATION_SHRINK_DAYS,
             prior_source: settings.prior_source.clone(),
             local_fit_days: settings.local_fit_days,
             rolling_window_values: ROLLING_WINDOW_VALUES,
             rolling_min_values: ROLLING_MIN_VALUES,
             rolling_sd_floor: ROLLING_SD_FLOOR,
+            matched_levels: sweep::MATCHED_LEVELS.to_vec(),
         },
         methods,
         caution: CAUTION.into(),
@@ -311,9 +353,9 @@ pub fn evaluate_cohort(
 
 /// Observed days of a signal before `method` scores it.
 fn cold_start(method: Method, settings: &EvaluationSettings) -> usize {
-    let base = settings.flag_config.min_baseline_days;
+    let base = settings.detect.min_baseline_days;
     match method {
-        Method::Federated | Method::Population => base,
+        Method::Federated | Method::Population | Method::Alavi => base,
         Method::LocalOnly => base.max(settings.local_fit_days),
         Method::RollingZ => base.max(ROLLING_MIN_VALUES),
     }
@@ -347,87 +389,108 @@ fn fit_local_models(
     Ok(out)
 }
 
-/// One method's detection on one participant.
+/// One method's scores on one participant (`None` when the method analyses no signal).
 fn run_method(
     method: Method,
     series: &ParticipantSeries,
     models: &[(Signal, StateSpacePrior)],
     local_models: &[(Signal, StateSpacePrior)],
-    cfg: &FlagConfig,
-) -> anyhow::Result<Detection> {
+    corr: &Correlation,
+    cfg: &DetectConfig,
+) -> anyhow::Result<Option<ParticipantScores>> {
     let filters = |m: &[(Signal, StateSpacePrior)]| -> Vec<(Signal, DailyFilter)> {
         m.iter().map(|(s, m)| (*s, DailyFilter::new(m))).collect()
     };
-    let detection = match method {
-        Method::Federated => detect_with(series, filters(models), cfg),
-        Method::LocalOnly => detect_with(series, filters(local_models), cfg),
-        Method::Population => detect_with(
+    let scores = match method {
+        Method::Federated => score_participant(series, filters(models), corr, cfg),
+        Method::LocalOnly => score_participant(series, filters(local_models), corr, cfg),
+        Method::Population => score_participant(
             series,
             models
                 .iter()
                 .map(|(s, m)| (*s, PopulationPredictor::new(m)))
                 .collect(),
+            corr,
             cfg,
         ),
-        Method::RollingZ => detect_with(
+        Method::RollingZ => score_participant(
             series,
-            models
-                .iter()
-                .map(|(s, _)| (*s, RollingZ::default()))
-                .collect(),
+            models.iter().map(|(s, _)| (*s, RollingZ::default())).collect(),
+            corr,
             cfg,
         ),
+        Method::Alavi => return Ok(Some(alavi_scores(series, cfg.min_baseline_days))),
     };
-    detection.with_context(|| format!("method {}", method.key()))
+    scores
+        .map(Some)
+        .with_context(|| format!("method {}", method.key()))
 }
 
-/// The scored days (past the cold start) and alarm dates of one detection.
+/// The compact form of a score series kept for the sweep.
+fn compact(days: &[DayScore]) -> Vec<Compact> {
+    days.iter()
+        .filter_map(|d| {
+            d.score.map(|s| Compact {
+                date: d.date,
+                score: s as f32,
+                window_days: ((d.date - d.window_start).num_days() + 1) as u8,
+            })
+        })
+        .collect()
+}
+
+/// Back from the compact form (scored days only).
+fn expand(days: &[Compact]) -> Vec<DayScore> {
+    days.iter()
+        .map(|c| DayScore {
+            date: c.date,
+            score: Some(f64::from(c.score)),
+            mirror: None,
+            window_start: c.date - chrono::Duration::days(i64::from(c.window_days) - 1),
+            contributions: [0.0; 6],
+            departures: [None; 6],
+        })
+        .collect()
+}
+
+/// Baseline readings past the cold start, for coverage and NLPD.
+fn scored_days(s: &ParticipantScores) -> Vec<ScoredDay> {
+    s.signal_days
+        .iter()
+        .filter(|d| !d.cold)
+        .map(|d| ScoredDay {
+            signal: d.signal,
+            date: d.date,
+            observed: d.observed,
+            mean: d.mean,
+            sd: d.sd,
+        })
+        .collect()
+}
+
+/// Alarm days and episodes of one participant at one threshold.
 fn participant_result(
     series: &ParticipantSeries,
-    detection: &Detection,
-    alarm_level: FlagLevel,
+    days: &[Compact],
+    signal_days: &[ScoredDay],
+    threshold: f64,
+    gap: i64,
 ) -> ParticipantResult {
+    let expanded = expand(days);
+    let episodes = group(&expanded, threshold, threshold, gap);
+    let alarm_dates = days
+        .iter()
+        .filter(|c| f64::from(c.score) >= threshold)
+        .map(|c| c.date)
+        .collect();
     ParticipantResult {
         first_date: series.dates.first().copied(),
-        days: detection
-            .days
+        days: signal_days.to_vec(),
+        alarm_dates,
+        episodes: episodes
             .iter()
-            .filter(|d| d.status != DayStatus::BuildingBaseline)
-            .map(|d| ScoredDay {
-                signal: d.signal,
-                date: d.date,
-                observed: d.observed,
-                mean: d.mean,
-                sd: d.sd,
-            })
-            .collect(),
-        alarm_dates: detection
-            .flags
-            .iter()
-            .filter(|f| f.level >= alarm_level)
-            .map(|f| f.date)
+            .map(|e| (e.first_alarm, e.last_alarm))
             .collect(),
     }
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn scaling_multiplies_every_threshold_and_nothing_else() {
-        let cfg = FlagConfig::default();
-        let scaled = scale_thresholds(&cfg, 1.5);
-        assert_eq!(scaled.single_day_z.alert, 1.5 * cfg.single_day_z.alert);
-        assert_eq!(scaled.cusum_h.watch, 1.5 * cfg.cusum_h.watch);
-        assert_eq!(
-            scaled.multi_signal_score.alert,
-            1.5 * cfg.multi_signal_score.alert
-        );
-        assert_eq!(scaled.cusum_k, cfg.cusum_k);
-        assert_eq!(scaled.cusum_clip_z, cfg.cusum_clip_z);
-        assert_eq!(scaled.target, None);
-        assert_eq!(scale_thresholds(&cfg, 1.0), cfg);
-        scaled.validate().unwrap();
-    }
-}

@@ -1,0 +1,191 @@
+//! Joint evidence across signals in a stated direction (module docs of [`super`], "Joint
+//! score"), and the per-device residual moments from which the cross-signal correlation is
+//! learned.
+
+use nalgebra::{DMatrix, DVector};
+use serde::{Deserialize, Serialize};
+
+use crate::signal::Signal;
+
+/// Number of signals.
+pub const N_SIGNALS: usize = Signal::ALL.len();
+
+/// Position of a signal in [`Signal::ALL`].
+pub fn signal_index(signal: Signal) -> usize {
+    Signal::ALL
+        .iter()
+        .position(|&s| s == signal)
+        .expect("every signal is in Signal::ALL")
+}
+
+/// The direction of departure that raises alerts: one weight per signal in [`Signal::ALL`]
+/// order (`+` up, `−` down, 0 not part of the pattern).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct TargetPattern {
+    pub weights: [f64; N_SIGNALS],
+}
+
+impl TargetPattern {
+    /// Acute illness: resting HR, skin temperature and respiratory rate up, HRV down (e.g.
+    /// Mishra et al. 2020, Nat. Biomed. Eng. 4:1208; Quer et al. 2021, Nat. Med. 27:73);
+    /// sleep and steps are recorded but not part of the alerting direction.
+    pub const ACUTE_ILLNESS: TargetPattern = TargetPattern {
+        // resting HR, HRV, sleep, skin temp, steps, resp. rate
+        weights: [1.0, -1.0, 0.0, 1.0, 0.0, 1.0],
+    };
+
+    /// The weight of one signal.
+    pub fn weight(&self, signal: Signal) -> f64 {
+        self.weights[signal_index(signal)]
+    }
+}
+
+/// Same-day cross-products of scaled residuals on released days: what a device sends so the
+/// cohort's cross-signal correlation can be learned (sums and counts only, never a daily
+/// value).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ResidualMoments {
+    /// `Σ r_j r_k` over days with both observed.
+    pub cross: [[f64; N_SIGNALS]; N_SIGNALS],
+    /// Number of days with both observed.
+    pub count: [[u64; N_SIGNALS]; N_SIGNALS],
+}
+
+impl Default for ResidualMoments {
+    fn default() -> ResidualMoments {
+        ResidualMoments {
+            cross: [[0.0; N_SIGNALS]; N_SIGNALS],
+            count: [[0; N_SIGNALS]; N_SIGNALS],
+        }
+    }
+}
+
+impl ResidualMoments {
+    /// Adds one day's residuals (`None` = not observed or not usable).
+    pub fn add_day(&mut self, r: &[Option<f64>; N_SIGNALS]) {
+        for j in 0..N_SIGNALS {
+            let Some(a) = r[j] else { continue };
+            for k in 0..N_SIGNALS {
+                if let Some(b) = r[k] {
+                    self.cross[j][k] += a * b;
+                    self.count[j][k] += 1;
+                }
+            }
+        }
+    }
+
+    /// Adds another device's moments (what the aggregator does).
+    pub fn merge(&mut self, other: &ResidualMoments) {
+        for j in 0..N_SIGNALS {
+            for k in 0..N_SIGNALS {
+                self.cross[j][k] += other.cross[j][k];
+                self.count[j][k] += other.count[j][k];
+            }
+        }
+    }
+
+    /// The correlation matrix these moments imply: `ρ_jk = Σ r_j r_k / √(Σ r_j² Σ r_k²)` over
+    /// the days both were observed (pairwise), shrunk towards the identity by
+    /// `n / (n + shrink_days)` and made positive definite (eigenvalues floored at 0.05).
+    /// Signals with no days keep correlation 0.
+    pub fn correlation(&self, shrink_days: f64) -> Correlation {
+        let mut m = [[0.0; N_SIGNALS]; N_SIGNALS];
+        for j in 0..N_SIGNALS {
+            m[j][j] = 1.0;
+            for k in 0..N_SIGNALS {
+                if j == k || self.count[j][k] < 2 {
+                    continue;
+                }
+                let n = self.count[j][k] as f64;
+                let (vj, vk) = (self.cross[j][j], self.cross[k][k]);
+                if vj <= 0.0 || vk <= 0.0 {
+                    continue;
+                }
+                // Pairwise: the diagonal sums cover more days than the pair; rescale them to
+                // the pair's count by their per-day means.
+                let mj = vj / self.count[j][j] as f64;
+                let mk = vk / self.count[k][k] as f64;
+                let rho = (self.cross[j][k] / n) / (mj * mk).sqrt();
+                m[j][k] = rho.clamp(-0.95, 0.95) * n / (n + shrink_days);
+            }
+        }
+        Correlation::new(m)
+    }
+}
+
+/// A positive-definite correlation matrix over the six signals.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Correlation {
+    pub matrix: [[f64; N_SIGNALS]; N_SIGNALS],
+}
+
+impl Correlation {
+    /// Independent signals.
+    pub fn identity() -> Correlation {
+        let mut m = [[0.0; N_SIGNALS]; N_SIGNALS];
+        for (j, row) in m.iter_mut().enumerate() {
+            row[j] = 1.0;
+        }
+        Correlation { matrix: m }
+    }
+
+    /// `m` symmetrised, with eigenvalues floored at 0.05 and the diagonal rescaled to 1.
+    pub fn new(m: [[f64; N_SIGNALS]; N_SIGNALS]) -> Correlation {
+        let a = DMatrix::from_fn(N_SIGNALS, N_SIGNALS, |i, j| 0.5 * (m[i][j] + m[j][i]));
+        let eig = a.symmetric_eigen();
+        let vals = eig.eigenvalues.map(|v| v.max(0.05));
+        let fixed = &eig.eigenvectors * DMatrix::from_diagonal(&vals) * eig.eigenvectors.transpose();
+        let mut out = [[0.0; N_SIGNALS]; N_SIGNALS];
+        for i in 0..N_SIGNALS {
+            for j in 0..N_SIGNALS {
+                out[i][j] = fixed[(i, j)] / (fixed[(i, i)] * fixed[(j, j)]).sqrt();
+            }
+        }
+        Correlation { matrix: out }
+    }
+}
+
+/// The joint score of one window over the signals present in it.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct JointScore {
+    /// `aᵀR⁻¹x / √(aᵀR⁻¹a)`: N(0, 1) when `x ~ N(0, R)`.
+    pub score: f64,
+    /// Each signal's share of the score (`score = Σ contribution`); 0 for absent signals.
+    pub contributions: [f64; N_SIGNALS],
+}
+
+/// Directional joint score of per-signal departures `x` (`None` = absent) under correlation
+/// `corr` in the direction `pattern`: the likelihood-ratio statistic for a mean shift along
+/// `a` when `x ~ N(0, R)` (the matched filter; e.g. Kay 1998, *Fundamentals of Statistical
+/// Signal Processing II*, §4.3). `None` when no signal of the pattern is present.
+pub fn joint_score(
+    x: &[Option<f64>; N_SIGNALS],
+    corr: &Correlation,
+    pattern: &TargetPattern,
+) -> Option<JointScore> {
+    let present: Vec<usize> = (0..N_SIGNALS).filter(|&j| x[j].is_some()).collect();
+    if !present.iter().any(|&j| pattern.weights[j] != 0.0) {
+        return None;
+    }
+    let n = present.len();
+    let r = DMatrix::from_fn(n, n, |a, b| corr.matrix[present[a]][present[b]]);
+    let a = DVector::from_fn(n, |i, _| pattern.weights[present[i]]);
+    let xv = DVector::from_fn(n, |i, _| x[present[i]].unwrap_or(0.0));
+    let chol = r.cholesky()?;
+    let w = chol.solve(&a); // R⁻¹ a
+    let norm = a.dot(&w).sqrt();
+    if !(norm.is_finite() && norm > 0.0) {
+        return None;
+    }
+    let mut contributions = [0.0; N_SIGNALS];
+    let mut score = 0.0;
+    for (i, &j) in present.iter().enumerate() {
+        let c = w[i] * xv[i] / norm;
+        contributions[j] = c;
+        score += c;
+    }
+    Some(JointScore {
+        score,
+        contributions,
+    })
+}
