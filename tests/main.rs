@@ -14,5 +14,6 @@ mod review_browser;
 mod review_support;
 mod server_rpc;
 mod simulator;
+mod ss_likelihood;
 mod support;
 mod transport_tls;

@@ -2,6 +2,7 @@
 //! cohort simulator.
 //!
 //! - [`gp`]: the Gaussian-process engine (plain numerics; no runtime, no wire types).
+//! - [`gp_ss`]: the shared prior's NLML and exact gradient on its state-space form, O(n).
 //! - [`prior`]: the shared prior's parameter layout and the model it defines.
 //! - [`training`]: local FedAvg steps and the centralised yardstick.
 //! - [`personal`]: the personalised (retrospective) posterior and its bands.
@@ -22,6 +23,7 @@ pub mod device_report;
 pub mod evaluate;
 pub mod flags;
 pub mod gp;
+pub mod gp_ss;
 pub mod packets;
 pub mod participate;
 pub mod personal;

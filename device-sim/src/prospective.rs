@@ -247,6 +247,12 @@ impl StateSpacePrior {
         self.weekly_cov
     }
 
+    /// Matérn-3/2 transition `A(Δ)` and process noise `Q(Δ)` over `dt` days (module docs), as
+    /// the filter uses them (for inspection and tests, e.g. that [`crate::gp_ss`] uses the same).
+    pub fn trend_transition(&self, dt: i64) -> ([[f64; 2]; 2], [[f64; 2]; 2]) {
+        self.transition(dt)
+    }
+
     /// Matérn-3/2 transition `A(Δ)` and process noise `Q(Δ)` over `dt` days (module docs).
     fn transition(&self, dt: i64) -> ([[f64; 2]; 2], [[f64; 2]; 2]) {
         let lam = self.trend_rate;

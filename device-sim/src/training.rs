@@ -14,11 +14,20 @@
 //! shared `θ` and averages the results weighted by `n_k`; the fixed point it
 //! targets is the minimiser of the pooled per-day objective
 //! `Σ_k NLML_k(θ) / Σ_k n_k + λ Σ_j −log p_j(θ_j)`.
+//!
+//! The NLML and its gradient come from the state-space form of the prior ([`crate::gp_ss`],
+//! O(n) per series) whenever the days are whole and non-decreasing, which the daily data
+//! format guarantees; otherwise (fractional or unsorted days), or where the state-space form
+//! meets a numerically singular covariance that the dense engine would jitter, from the dense
+//! engine ([`crate::gp::GpRegression::nlml_grad`], O(n³)). Both compute the same function
+//! (tested to 1e-8 in `tests/ss_likelihood.rs`), so the choice changes cost, not results.
 
 use rand::Rng;
 
-use crate::gp::{self, AdamConfig, LbfgsConfig, OptimResult};
+use crate::gp::{self, AdamConfig, GpError, LbfgsConfig, OptimResult};
+use crate::gp_ss;
 use crate::prior::{N_PARAMS, gradient_to_wire, hyperpriors, model_from};
+use crate::prospective::whole_days;
 
 /// One signal's observations on a device, standardised.
 #[derive(Debug, Clone, PartialEq)]
@@ -79,6 +88,50 @@ pub struct LocalUpdate {
 /// full series (a handful of points says nothing about a 2-week trend).
 const MIN_WINDOW_OBS: usize = 14;
 
+/// Which computation of the NLML an objective uses for a series (module docs).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum LikelihoodEngine {
+    /// Kalman filter with sensitivity recursions on whole days ([`crate::gp_ss`]), O(n).
+    StateSpace,
+    /// Dense Cholesky of the `n × n` covariance ([`crate::gp::GpRegression`]), O(n³).
+    Dense,
+}
+
+/// The engine the objectives use for `series`: [`LikelihoodEngine::StateSpace`] when its days
+/// are whole and non-decreasing, else [`LikelihoodEngine::Dense`]. (A state-space evaluation
+/// that meets a numerically singular covariance still falls back to the dense engine, which
+/// adds jitter; see [`nlml_grad`].)
+pub fn likelihood_engine(series: &LocalSeries) -> LikelihoodEngine {
+    match whole_days(&series.t) {
+        Ok(_) => LikelihoodEngine::StateSpace,
+        Err(_) => LikelihoodEngine::Dense,
+    }
+}
+
+/// NLML of one series and its gradient in wire order, from the engine of
+/// [`likelihood_engine`]; falls back to the dense engine when the state-space form reports
+/// [`GpError::NotPositiveDefinite`] (the case in which the dense engine would add jitter).
+///
+/// # Errors
+/// As [`crate::gp::GpRegression::nlml_grad`]; a `values` of the wrong length is a
+/// [`GpError::Shape`].
+pub fn nlml_grad(values: &[f64], series: &LocalSeries) -> gp::Result<(f64, [f64; N_PARAMS])> {
+    let params: &[f64; N_PARAMS] = values.try_into().map_err(|_| {
+        GpError::Shape(format!(
+            "{} parameters given, the prior has {N_PARAMS}",
+            values.len()
+        ))
+    })?;
+    if let Ok(days) = whole_days(&series.t) {
+        match gp_ss::nlml_grad(params, &days, &series.z) {
+            Err(GpError::NotPositiveDefinite { .. }) => {}
+            other => return other,
+        }
+    }
+    let (nlml, engine_grad) = model_from(values).nlml_grad(&series.t, &series.z)?;
+    Ok((nlml, gradient_to_wire(&engine_grad)))
+}
+
 /// Per-day objective `L_k` and its gradient in wire order.
 pub fn per_day_objective(
     values: &[f64],
@@ -86,11 +139,8 @@ pub fn per_day_objective(
     hyperprior_weight_per_day: f64,
 ) -> gp::Result<(f64, Vec<f64>)> {
     let n = series.n_days() as f64;
-    let (nlml, engine_grad) = model_from(values).nlml_grad(&series.t, &series.z)?;
-    let mut grad: Vec<f64> = gradient_to_wire(&engine_grad)
-        .iter()
-        .map(|g| g / n)
-        .collect();
+    let (nlml, wire_grad) = nlml_grad(values, series)?;
+    let mut grad: Vec<f64> = wire_grad.iter().map(|g| g / n).collect();
     let mut value = nlml / n;
     if hyperprior_weight_per_day > 0.0 {
         for (j, prior) in hyperpriors().iter().enumerate() {
