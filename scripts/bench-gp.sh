@@ -1,17 +1,22 @@
 #!/usr/bin/env bash
-# Benchmark (not a test): one device-year GP hyperparameter fit, Plimsoll's engine against
-# scikit-learn's GaussianProcessRegressor.fit on the same data, kernel, start and optimiser
-# tolerances. Prints one summary table with the ratio sklearn/ours for each start.
+# Benchmark (not a test): GP hyperparameter fits of one device-year (365 days) and three
+# device-years (1,095 days), Plimsoll's engines (state space, as training uses, and dense)
+# against scikit-learn's GaussianProcessRegressor.fit on the same data, kernel, start and
+# optimiser tolerances. Prints one summary table with the ratio sklearn/ours for each length
+# and start.
 #
-#   scripts/bench-gp.sh [RUST_REPEATS] [SKLEARN_REPEATS]
+#   scripts/bench-gp.sh [RUST_REPEATS] [SKLEARN_REPEATS] [SKLEARN_REPEATS_3Y]
 #
+# SKLEARN_REPEATS_3Y defaults to half of SKLEARN_REPEATS (one sklearn fit of three years takes
+# tens of seconds).
 # Installs scikit-learn into .venv-bench/ (gitignored) on first use. CARGO_TARGET_DIR is
-# honoured as usual. Exits non-zero if the two engines do not reach the same optimum.
+# honoured as usual. Exits non-zero if the engines do not reach the same optimum.
 set -euo pipefail
 
 root="$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)"
 rust_repeats="${1:-25}"
 sklearn_repeats="${2:-7}"
+sklearn_repeats_3y="${3:-$(( sklearn_repeats / 2 > 0 ? sklearn_repeats / 2 : 1 ))}"
 venv="$root/.venv-bench"
 out="$(mktemp -d "${TMPDIR:-/tmp}/plimsoll-bench-gp.XXXXXX")"
 trap 'rm -rf "$out"' EXIT
@@ -33,4 +38,4 @@ target_dir="${CARGO_TARGET_DIR:-$root/target}"
 # they slow a current numpy, so the baseline runs without them (the BLAS it then uses is
 # printed in the table header).
 env -u OPENBLAS_CORETYPE -u OPENBLAS_L2_SIZE \
-    "$venv/bin/python" "$root/scripts/bench_gp_sklearn.py" "$out" "$out/ours.jsonl" "$sklearn_repeats"
+    "$venv/bin/python" "$root/scripts/bench_gp_sklearn.py" "$out" "$out/ours.jsonl" "$sklearn_repeats" "$sklearn_repeats_3y"

@@ -273,10 +273,11 @@ fn set_weekly_block(p: &mut Mat, c: &[[f64; WEEK]; WEEK]) {
 #[inline]
 fn propagate_cov(a: &M2, m: &mut Mat) {
     let (i0, i1) = (IDX_TREND, IDX_TREND + 1);
-    for c in 0..STATE_DIM {
-        let (x0, x1) = (m[i0][c], m[i1][c]);
-        m[i0][c] = a[0][0] * x0 + a[0][1] * x1;
-        m[i1][c] = a[1][0] * x0 + a[1][1] * x1;
+    let (upper, lower) = m.split_at_mut(i1);
+    for (y0, y1) in upper[i0].iter_mut().zip(lower[0].iter_mut()) {
+        let (x0, x1) = (*y0, *y1);
+        *y0 = a[0][0] * x0 + a[0][1] * x1;
+        *y1 = a[1][0] * x0 + a[1][1] * x1;
     }
     for row in m.iter_mut() {
         let (x0, x1) = (row[i0], row[i1]);
@@ -602,8 +603,8 @@ mod tests {
                 let tr = trend_transition(s2, rate(log_len), delta);
                 let lam = rate(log_len);
                 let scale = [[1.0, 1.0 / lam], [lam, 1.0]];
-                for i in 0..2 {
-                    for j in 0..2 {
+                for (i, scale_row) in scale.iter().enumerate() {
+                    for (j, &entry_scale) in scale_row.iter().enumerate() {
                         let fd_a = central_difference(
                             |ll| trend_transition(s2, rate(ll), delta).a[i][j],
                             log_len,
@@ -614,7 +615,7 @@ mod tests {
                             log_len,
                             1e-5,
                         );
-                        let tol = 1e-8 * scale[i][j].max(1.0) * lam.max(1.0);
+                        let tol = 1e-8 * entry_scale.max(1.0) * lam.max(1.0);
                         assert!(
                             (fd_a - tr.da_dlog_len[i][j]).abs() < tol,
                             "dA[{i}][{j}] ℓ=e^{log_len} Δ={delta}: {fd_a} vs {}",
