@@ -39,7 +39,8 @@
 //! obtained by differentiating every filter line (Gupta & Mehra 1974, "Computational aspects of
 //! maximum likelihood estimation and reduction in sensitivity function calculations", IEEE
 //! Trans. Automatic Control 19(6):774–783, §III; Särkkä 2013, §12.3.1 with the Kalman-filter
-//! parameter derivatives of Appendix A.2). Writing `∂` for `∂/∂θ_j`:
+//! parameter derivatives of Appendix A.2 — section numbers from memory). Writing `∂` for
+//! `∂/∂θ_j`:
 //!
 //! ```text
 //! ∂m⁻ = ∂Ā m + Ā ∂m
@@ -79,9 +80,9 @@
 //! them; each observation has its own noise, as the dense `White` term). A predictive variance
 //! `S_k ≤ n ε max(diag K)` is reported as [`GpError::NotPositiveDefinite`] (with
 //! `max_jitter = 0`, none having been tried): that is the dense engine's own pivot test
-//! (`gp::cholesky_with_jitter`), since `S_k` is the k-th squared Cholesky pivot, so where the
-//! dense engine would need jitter this module refuses and the caller can use the dense engine
-//! (as [`crate::training`] does).
+//! (`gp::cholesky_with_jitter`), since `S_k` is the k-th squared Cholesky pivot, so (up to
+//! rounding) where the dense engine would need jitter this module refuses and the caller can
+//! use the dense engine (as [`crate::training`] does).
 
 use crate::gp::{GpError, Result};
 use crate::prior::{N_PARAMS, WEEK_DAYS};
