@@ -4,7 +4,7 @@
 use serde::{Deserialize, Serialize};
 
 use super::DayScore;
-use super::episodes::episode_counts;
+use super::episodes::{Grouping, episode_counts};
 
 /// Days per month used for every per-month rate (365.25 / 12).
 pub const DAYS_PER_MONTH: f64 = 30.4375;
@@ -41,9 +41,9 @@ impl Default for EpisodeHistogram {
 
 impl EpisodeHistogram {
     /// The histogram of one participant's scores.
-    pub fn from_days(days: &[DayScore], merge_gap_days: i64) -> EpisodeHistogram {
+    pub fn from_days(days: &[DayScore], rule: Grouping) -> EpisodeHistogram {
         EpisodeHistogram {
-            episodes: episode_counts(days, &edges(), merge_gap_days),
+            episodes: episode_counts(days, &edges(), rule),
             scored_days: days.iter().filter(|d| d.score.is_some()).count() as u64,
         }
     }

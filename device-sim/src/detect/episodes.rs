@@ -27,10 +27,29 @@ pub struct Episode {
     pub alarm_days: usize,
 }
 
-/// Groups the days whose score reaches `watch` into episodes: an alarm day starts a new
-/// episode unless the previous alarm day is at most `merge_gap_days` days earlier. Level
-/// Alert when some day reaches `alert` (`alert ≥ watch`).
-pub fn group(days: &[DayScore], watch: f64, alert: f64, merge_gap_days: i64) -> Vec<Episode> {
+/// How alarm days are grouped into episodes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Grouping {
+    /// An alarm day at most this many days after the previous one joins its episode.
+    pub merge_gap_days: i64,
+    /// An episode covers at most this many days from its first alarm day; a later alarm day
+    /// starts a new episode (a persisting alarm is reviewed again).
+    pub max_episode_days: i64,
+}
+
+impl Grouping {
+    /// Whether an alarm day on `date` joins an episode whose first and last alarm days are
+    /// `first` and `last`.
+    pub fn joins(&self, first: NaiveDate, last: NaiveDate, date: NaiveDate) -> bool {
+        (date - last).num_days() <= self.merge_gap_days
+            && (date - first).num_days() < self.max_episode_days
+    }
+}
+
+/// Groups the days whose score reaches `watch` into episodes by the rule of [`Grouping`].
+/// Level Alert when some day reaches `alert` (`alert ≥ watch`).
+pub fn group(days: &[DayScore], watch: f64, alert: f64, rule: Grouping) -> Vec<Episode> {
+    let merge_gap_days = rule.merge_gap_days;
     let mut out: Vec<Episode> = Vec::new();
     let last_scored = days.iter().rev().find(|d| d.score.is_some()).map(|d| d.date);
     for d in days {
@@ -44,7 +63,7 @@ pub fn group(days: &[DayScore], watch: f64, alert: f64, merge_gap_days: i64) -> 
             FlagLevel::Watch
         };
         match out.last_mut() {
-            Some(e) if (d.date - e.last_alarm).num_days() <= merge_gap_days => {
+            Some(e) if rule.joins(e.first_alarm, e.last_alarm, d.date) => {
                 e.last_alarm = d.date;
                 e.alarm_days += 1;
                 e.level = e.level.max(level);
@@ -72,9 +91,9 @@ pub fn group(days: &[DayScore], watch: f64, alert: f64, merge_gap_days: i64) -> 
 }
 
 /// Number of episodes at each threshold of `edges` (ascending), at one level: for each edge
-/// `h`, the number of groups of days with score ≥ `h` under the merge rule of [`group`].
+/// `h`, the number of groups of days with score ≥ `h` under the rule of [`group`].
 /// One pass per edge; `O(edges × days)`.
-pub fn episode_counts(days: &[DayScore], edges: &[f64], merge_gap_days: i64) -> Vec<u64> {
+pub fn episode_counts(days: &[DayScore], edges: &[f64], rule: Grouping) -> Vec<u64> {
     let scored: Vec<(NaiveDate, f64)> = days
         .iter()
         .filter_map(|d| d.score.map(|s| (d.date, s)))
@@ -83,15 +102,18 @@ pub fn episode_counts(days: &[DayScore], edges: &[f64], merge_gap_days: i64) -> 
         .iter()
         .map(|&h| {
             let mut n = 0u64;
-            let mut last: Option<NaiveDate> = None;
+            let mut open: Option<(NaiveDate, NaiveDate)> = None;
             for &(date, s) in &scored {
                 if s < h {
                     continue;
                 }
-                if last.is_none_or(|l| (date - l).num_days() > merge_gap_days) {
-                    n += 1;
+                match &mut open {
+                    Some((first, last)) if rule.joins(*first, *last, date) => *last = date,
+                    _ => {
+                        n += 1;
+                        open = Some((date, date));
+                    }
                 }
-                last = Some(date);
             }
             n
         })

@@ -53,8 +53,9 @@
 //!
 //! # Episodes ([`episodes`])
 //! Days whose score reaches the Watch threshold are alarm days; an alarm day within
-//! `merge_gap_days` days of the previous one joins its episode. An episode's level is the
-//! highest its days reached.
+//! `merge_gap_days` days of the previous one joins its episode, unless the episode already
+//! spans `max_episode_days` days from its first alarm day (a persisting alarm then opens a new
+//! episode, to be reviewed again). An episode's level is the highest its days reached.
 
 pub mod baseline;
 pub mod calibration;
@@ -89,21 +90,34 @@ pub struct DetectConfig {
     pub max_protected_days: usize,
     /// Alarm days at most this many days apart form one episode.
     pub merge_gap_days: i64,
+    /// An episode covers at most this many days from its first alarm day.
+    pub max_episode_days: i64,
     /// The alerting direction.
     pub pattern: TargetPattern,
+}
+
+impl DetectConfig {
+    /// The episode grouping rule of these settings.
+    pub fn grouping(&self) -> episodes::Grouping {
+        episodes::Grouping {
+            merge_gap_days: self.merge_gap_days,
+            max_episode_days: self.max_episode_days,
+        }
+    }
 }
 
 impl Default for DetectConfig {
     fn default() -> DetectConfig {
         DetectConfig {
-            guard_days: 7,
+            guard_days: 3,
             windows: vec![1, 2, 3, 4, 5, 7],
-            min_baseline_days: 14,
+            min_baseline_days: 0,
             scale_prior_days: 14.0,
             clip_z: 4.0,
             protect_score: 3.0,
             max_protected_days: 21,
             merge_gap_days: 3,
+            max_episode_days: 14,
             pattern: TargetPattern::ACUTE_ILLNESS,
         }
     }
@@ -127,6 +141,9 @@ impl DetectConfig {
         }
         if !self.protect_score.is_finite() {
             return bad(format!("protect_score must be finite, got {}", self.protect_score));
+        }
+        if self.max_episode_days < 1 {
+            return bad(format!("max_episode_days must be ≥ 1, got {}", self.max_episode_days));
         }
         if self.merge_gap_days < 0 {
             return bad(format!("merge_gap_days must be ≥ 0, got {}", self.merge_gap_days));

@@ -257,7 +257,7 @@ pub fn evaluate_cohort(
         local_stats.merge(s);
     }
 
-    let gap = settings.detect.merge_gap_days;
+    let gap = settings.detect.grouping();
     let mut methods = Vec::with_capacity(Method::ALL.len());
     for (m, &method) in Method::ALL.iter().enumerate() {
         // Calibration: summed per-device episode histograms.
@@ -355,7 +355,8 @@ pub fn evaluate_cohort(
 fn cold_start(method: Method, settings: &EvaluationSettings) -> usize {
     let base = settings.detect.min_baseline_days;
     match method {
-        Method::Federated | Method::Population | Method::Alavi => base,
+        Method::Federated | Method::Population => base,
+        Method::Alavi => base.max(ROLLING_MIN_VALUES),
         Method::LocalOnly => base.max(settings.local_fit_days),
         Method::RollingZ => base.max(ROLLING_MIN_VALUES),
     }
@@ -474,7 +475,7 @@ fn participant_result(
     days: &[Compact],
     signal_days: &[ScoredDay],
     threshold: f64,
-    gap: i64,
+    gap: crate::detect::episodes::Grouping,
 ) -> ParticipantResult {
     let expanded = expand(days);
     let episodes = group(&expanded, threshold, threshold, gap);

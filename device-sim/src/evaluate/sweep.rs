@@ -8,6 +8,7 @@ use serde::Serialize;
 
 use crate::cohort::Event;
 use crate::detect::calibration::DAYS_PER_MONTH;
+use crate::detect::episodes::Grouping;
 
 /// False alarm episodes per participant-month at which methods are compared.
 pub const MATCHED_LEVELS: [f64; 4] = [0.1, 0.3, 0.5, 1.0];
@@ -61,7 +62,7 @@ pub struct MatchedPoint {
 }
 
 /// The figures at threshold `h`.
-pub fn at_threshold(truths: &[Truth<'_>], h: f64, gap: i64) -> CurvePoint {
+pub fn at_threshold(truths: &[Truth<'_>], h: f64, rule: Grouping) -> CurvePoint {
     let (mut events, mut detected) = (0usize, 0usize);
     let (mut fa_episodes, mut fa_days, mut outside) = (0usize, 0usize, 0usize);
     let mut leads: Vec<f64> = Vec::new();
@@ -79,7 +80,7 @@ pub fn at_threshold(truths: &[Truth<'_>], h: f64, gap: i64) -> CurvePoint {
             }
         }
         // Episodes: groups of alarm days; false when none of its days is in a target event.
-        let mut last: Option<NaiveDate> = None;
+        let mut span: Option<(NaiveDate, NaiveDate)> = None;
         let mut current_true = false;
         let mut open = false;
         for c in t.days {
@@ -93,8 +94,13 @@ pub fn at_threshold(truths: &[Truth<'_>], h: f64, gap: i64) -> CurvePoint {
             if !target {
                 fa_days += 1;
             }
-            let joins = last.is_some_and(|l| (c.date - l).num_days() <= gap);
-            if !joins {
+            let joins = span.is_some_and(|(f, l)| rule.joins(f, l, c.date));
+            if joins {
+                if let Some((_, l)) = &mut span {
+                    *l = c.date;
+                }
+            } else {
+                span = Some((c.date, c.date));
                 if open && !current_true {
                     fa_episodes += 1;
                 }
@@ -102,7 +108,6 @@ pub fn at_threshold(truths: &[Truth<'_>], h: f64, gap: i64) -> CurvePoint {
                 current_true = false;
             }
             current_true |= target;
-            last = Some(c.date);
         }
         if open && !current_true {
             fa_episodes += 1;
@@ -134,11 +139,11 @@ fn median(sorted: &[f64]) -> Option<f64> {
 /// The curve on the grid `0, SWEEP_STEP, …, SWEEP_MAX` from the top down to the first point
 /// with more than [`CURVE_MAX_FA`] false alarm episodes per participant-month (included), in
 /// ascending threshold order.
-pub fn curve(truths: &[Truth<'_>], gap: i64) -> Vec<CurvePoint> {
+pub fn curve(truths: &[Truth<'_>], rule: Grouping) -> Vec<CurvePoint> {
     let n = (SWEEP_MAX / SWEEP_STEP).round() as usize;
     let mut out = Vec::new();
     for i in (0..=n).rev() {
-        let p = at_threshold(truths, i as f64 * SWEEP_STEP, gap);
+        let p = at_threshold(truths, i as f64 * SWEEP_STEP, rule);
         let stop = p
             .false_alarm_episodes_per_participant_month
             .is_some_and(|f| f > CURVE_MAX_FA);
@@ -157,9 +162,9 @@ pub fn curve(truths: &[Truth<'_>], gap: i64) -> Vec<CurvePoint> {
 /// it and the step before; the sensitivity is read at the upper end (rate at most the level).
 /// Scanning from the top matters: far below the useful range, alarm days run together into a
 /// few long episodes and the episode rate falls again.
-pub fn matched(truths: &[Truth<'_>], gap: i64, levels: &[f64]) -> Vec<MatchedPoint> {
+pub fn matched(truths: &[Truth<'_>], rule: Grouping, levels: &[f64]) -> Vec<MatchedPoint> {
     let fa = |h: f64| {
-        at_threshold(truths, h, gap)
+        at_threshold(truths, h, rule)
             .false_alarm_episodes_per_participant_month
             .unwrap_or(0.0)
     };
@@ -197,7 +202,7 @@ pub fn matched(truths: &[Truth<'_>], gap: i64, levels: &[f64]) -> Vec<MatchedPoi
                     }
                 }
             }
-            let p = at_threshold(truths, hi, gap);
+            let p = at_threshold(truths, hi, rule);
             MatchedPoint {
                 false_alarm_episodes_per_participant_month: level,
                 threshold: Some(hi),
