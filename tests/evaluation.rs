@@ -10,7 +10,15 @@ use plimsoll_device::evaluate::command::{EvaluateOptions, EvaluationOutcome, run
 use plimsoll_device::evaluate::run::EvaluationSettings;
 use serde_json::Value;
 
-const METHODS: [&str; 4] = ["federated", "local_only", "population", "rolling_z"];
+const METHODS: [&str; 5] = [
+    "federated",
+    "local_only",
+    "population",
+    "rolling_z",
+    "rhr_median_rule",
+];
+/// Methods with a predictive band (coverage and NLPD).
+const BANDED: usize = 4;
 
 /// Keys of one subgroup object in `evaluation.json` (docs/evaluation.md).
 const SUBGROUP_KEYS: [&str; 13] = [
@@ -70,7 +78,7 @@ async fn evaluate_command_end_to_end() {
     let report = json(&outcome);
 
     // Top level.
-    assert_eq!(report["schema"], "plimsoll.evaluation.v1");
+    assert_eq!(report["schema"], "plimsoll.evaluation.v2");
     assert_eq!(report["participants"], 12);
     assert_eq!(report["target_kinds"], serde_json::json!(["acute_illness"]));
     assert_eq!(report["settings"]["alarm_level"], "alert");
@@ -86,8 +94,8 @@ async fn evaluate_command_end_to_end() {
             .unwrap()
             .contains("not a diagnosis")
     );
-    let scales = report["settings"]["threshold_scales"].as_array().unwrap();
-    assert!(scales.iter().any(|s| s.as_f64() == Some(1.0)));
+    let levels = report["settings"]["matched_levels"].as_array().unwrap();
+    assert_eq!(levels.len(), 4);
 
     // Methods, subgroups, curves.
     let methods = report["methods"].as_array().unwrap();
@@ -100,9 +108,9 @@ async fn evaluate_command_end_to_end() {
         .iter()
         .map(|m| m["cold_start_observed_days"].as_u64().unwrap())
         .collect();
-    assert_eq!(cold, [14, 28, 14, 14]);
+    assert_eq!(cold, [0, 28, 0, 14, 14]);
     let n_subgroups = methods[0]["subgroups"].as_array().unwrap().len();
-    for m in methods {
+    for (mi, m) in methods.iter().enumerate() {
         let subgroups = m["subgroups"].as_array().unwrap();
         assert_eq!(subgroups.len(), n_subgroups, "{}", m["method"]);
         assert_eq!(
@@ -132,13 +140,16 @@ async fn evaluate_command_end_to_end() {
         );
         assert!(all["sensitivity"].is_number());
         // Each GP or baseline band covers most event-free days.
-        assert!(all["coverage_95"].as_f64().unwrap() > 0.5, "{all}");
+        if mi < BANDED {
+            assert!(all["coverage_95"].as_f64().unwrap() > 0.5, "{all}");
+        }
         let curve = m["curve"].as_array().unwrap();
-        assert_eq!(curve.len(), scales.len());
+        assert!(!curve.is_empty());
         for p in curve {
             assert!(in_unit_interval(&p["sensitivity"]));
-            assert!(p["false_alarms_per_participant_month"].as_f64().unwrap() >= 0.0);
+            assert!(p["false_alarm_episodes_per_participant_month"].as_f64().unwrap() >= 0.0);
         }
+        assert_eq!(m["matched"].as_array().unwrap().len(), 4);
     }
     // Local-only scores nothing before its fitting days are over.
     let local_first = methods[1]["subgroups"]
@@ -212,9 +223,8 @@ async fn evaluate_command_end_to_end() {
         let all = &subgroups[0];
         assert_eq!(all["events"], 0);
         assert!(all["sensitivity"].is_null());
-        assert!(all["false_alarms_per_participant_month"].as_f64().unwrap() >= 0.0);
-        // Without events.csv every scored day is a calibration day.
-        assert!(all["calibration_signal_days"].as_u64().unwrap() > 0);
+        let fa = &all["false_alarms_per_participant_month"];
+        assert!(fa.is_null() || fa.as_f64().unwrap() >= 0.0);
         for p in m["curve"].as_array().unwrap() {
             assert!(p["sensitivity"].is_null());
         }
@@ -222,24 +232,4 @@ async fn evaluate_command_end_to_end() {
     let svg2 = std::fs::read_to_string(&bare_outcome.svg).unwrap();
     assert_eq!(svg2.matches("<polyline").count(), 0);
     assert!(svg2.contains("No target events"));
-    // Same prior, same days, same detection: without events every alarm-day is false, so the
-    // false alarm-day count (rate × days / 30.4375) can only be at least that of the run with
-    // events, over at least as many days.
-    let count = |r: &Value, i: usize| {
-        let all = &r["methods"][i]["subgroups"][0];
-        let days = all["days_outside_targets"].as_f64().unwrap();
-        (
-            all["false_alarms_per_participant_month"].as_f64().unwrap() * days / 30.4375,
-            days,
-        )
-    };
-    for (i, method) in METHODS.iter().enumerate() {
-        let (with_events, days_with) = count(&report, i);
-        let (without, days_without) = count(&report2, i);
-        assert!(
-            without >= with_events - 1e-6,
-            "{method}: {without} < {with_events}"
-        );
-        assert!(days_without >= days_with);
-    }
 }
