@@ -147,7 +147,12 @@ async fn evaluate_command_end_to_end() {
         assert!(!curve.is_empty());
         for p in curve {
             assert!(in_unit_interval(&p["sensitivity"]));
-            assert!(p["false_alarm_episodes_per_participant_month"].as_f64().unwrap() >= 0.0);
+            assert!(
+                p["false_alarm_episodes_per_participant_month"]
+                    .as_f64()
+                    .unwrap()
+                    >= 0.0
+            );
         }
         assert_eq!(m["matched"].as_array().unwrap().len(), 4);
     }

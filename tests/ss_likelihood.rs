@@ -187,7 +187,15 @@ fn single_day_has_the_closed_form() {
     let r = z - 0.3;
     let expected = 0.5 * (2.0 * std::f64::consts::PI * var).ln() + r * r / (2.0 * var);
     let dvar = |x: f64| x * (0.5 / var - r * r / (2.0 * var * var));
-    let expected_grad = [-r / var, dvar(0.4), dvar(0.25), 0.0, dvar(0.08), 0.0, dvar(0.2)];
+    let expected_grad = [
+        -r / var,
+        dvar(0.4),
+        dvar(0.25),
+        0.0,
+        dvar(0.08),
+        0.0,
+        dvar(0.2),
+    ];
     for day in [0, 5, 400] {
         let (value, grad) = gp_ss::nlml_grad(&theta, &[day], &[z]).unwrap();
         assert!((value - expected).abs() < 1e-13);

@@ -212,10 +212,9 @@ fn read_enrollment_code() -> anyhow::Result<String> {
 
 /// Parses a positive number of episodes per participant-month, e.g. `0.3`.
 fn parse_budget(text: &str) -> Result<f64, String> {
-    let v: f64 = text
-        .trim()
-        .parse()
-        .map_err(|e| format!("expected episodes per participant-month such as 0.3, got `{text}`: {e}"))?;
+    let v: f64 = text.trim().parse().map_err(|e| {
+        format!("expected episodes per participant-month such as 0.3, got `{text}`: {e}")
+    })?;
     if !(v.is_finite() && v > 0.0) {
         return Err(format!("the budget must be a positive number, got {v}"));
     }

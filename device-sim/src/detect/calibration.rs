@@ -18,7 +18,9 @@ pub const N_EDGES: usize = 150;
 
 /// The fixed threshold grid every device counts on.
 pub fn edges() -> Vec<f64> {
-    (0..N_EDGES).map(|i| EDGE_MIN + EDGE_STEP * i as f64).collect()
+    (0..N_EDGES)
+        .map(|i| EDGE_MIN + EDGE_STEP * i as f64)
+        .collect()
 }
 
 /// What a device sends for calibration: for each threshold of [`edges`], the number of

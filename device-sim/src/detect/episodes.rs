@@ -51,7 +51,11 @@ impl Grouping {
 pub fn group(days: &[DayScore], watch: f64, alert: f64, rule: Grouping) -> Vec<Episode> {
     let merge_gap_days = rule.merge_gap_days;
     let mut out: Vec<Episode> = Vec::new();
-    let last_scored = days.iter().rev().find(|d| d.score.is_some()).map(|d| d.date);
+    let last_scored = days
+        .iter()
+        .rev()
+        .find(|d| d.score.is_some())
+        .map(|d| d.date);
     for d in days {
         let Some(s) = d.score else { continue };
         if s < watch {

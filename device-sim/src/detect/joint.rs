@@ -134,7 +134,8 @@ impl Correlation {
         let a = DMatrix::from_fn(N_SIGNALS, N_SIGNALS, |i, j| 0.5 * (m[i][j] + m[j][i]));
         let eig = a.symmetric_eigen();
         let vals = eig.eigenvalues.map(|v| v.max(0.05));
-        let fixed = &eig.eigenvectors * DMatrix::from_diagonal(&vals) * eig.eigenvectors.transpose();
+        let fixed =
+            &eig.eigenvectors * DMatrix::from_diagonal(&vals) * eig.eigenvectors.transpose();
         let mut out = [[0.0; N_SIGNALS]; N_SIGNALS];
         for i in 0..N_SIGNALS {
             for j in 0..N_SIGNALS {

@@ -66,7 +66,9 @@ use chrono::NaiveDate;
 use serde::{Deserialize, Serialize};
 
 use self::baseline::GuardedBaseline;
-use self::joint::{Correlation, N_SIGNALS, ResidualMoments, TargetPattern, joint_score, signal_index};
+use self::joint::{
+    Correlation, N_SIGNALS, ResidualMoments, TargetPattern, joint_score, signal_index,
+};
 use crate::cohort::ParticipantSeries;
 use crate::prospective::{Predictor, ProspectiveError, Result};
 use crate::signal::Signal;
@@ -131,22 +133,37 @@ impl DetectConfig {
     pub fn validate(&self) -> Result<()> {
         let bad = |m: String| Err(ProspectiveError::Config(m));
         if self.windows.is_empty() || self.windows.contains(&0) {
-            return bad(format!("windows must be non-empty and ≥ 1 day, got {:?}", self.windows));
+            return bad(format!(
+                "windows must be non-empty and ≥ 1 day, got {:?}",
+                self.windows
+            ));
         }
         if !(self.scale_prior_days.is_finite() && self.scale_prior_days > 0.0) {
-            return bad(format!("scale_prior_days must be > 0, got {}", self.scale_prior_days));
+            return bad(format!(
+                "scale_prior_days must be > 0, got {}",
+                self.scale_prior_days
+            ));
         }
         if !(self.clip_z.is_finite() && self.clip_z > 0.0) {
             return bad(format!("clip_z must be > 0, got {}", self.clip_z));
         }
         if !self.protect_score.is_finite() {
-            return bad(format!("protect_score must be finite, got {}", self.protect_score));
+            return bad(format!(
+                "protect_score must be finite, got {}",
+                self.protect_score
+            ));
         }
         if self.max_episode_days < 1 {
-            return bad(format!("max_episode_days must be ≥ 1, got {}", self.max_episode_days));
+            return bad(format!(
+                "max_episode_days must be ≥ 1, got {}",
+                self.max_episode_days
+            ));
         }
         if self.merge_gap_days < 0 {
-            return bad(format!("merge_gap_days must be ≥ 0, got {}", self.merge_gap_days));
+            return bad(format!(
+                "merge_gap_days must be ≥ 0, got {}",
+                self.merge_gap_days
+            ));
         }
         if self.pattern.weights.iter().all(|w| *w == 0.0) {
             return bad("the target pattern has no signal".into());
@@ -297,10 +314,16 @@ pub fn score_participant<P: Predictor>(
             });
             if !cold {
                 today[track.index] = Some(b.residual);
-                track.recent.push_back((day, b.residual.clamp(-cfg.clip_z, cfg.clip_z)));
+                track
+                    .recent
+                    .push_back((day, b.residual.clamp(-cfg.clip_z, cfg.clip_z)));
                 any = true;
             }
-            while track.recent.front().is_some_and(|&(d, _)| d <= day - max_window) {
+            while track
+                .recent
+                .front()
+                .is_some_and(|&(d, _)| d <= day - max_window)
+            {
                 track.recent.pop_front();
             }
         }

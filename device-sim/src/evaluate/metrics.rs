@@ -190,7 +190,11 @@ impl Cell {
             .episodes
             .iter()
             .filter(|(first, last)| {
-                within(*first) && !result.alarm_dates.range(*first..=*last).any(|d| in_target(*d))
+                within(*first)
+                    && !result
+                        .alarm_dates
+                        .range(*first..=*last)
+                        .any(|d| in_target(*d))
             })
             .count();
         let scored_dates: BTreeSet<NaiveDate> = result
@@ -368,7 +372,11 @@ mod tests {
             first_date: Some(date(1)),
             days,
             alarm_dates: [date(3), date(11), date(20)].into_iter().collect(),
-            episodes: vec![(date(3), date(3)), (date(11), date(11)), (date(20), date(20))],
+            episodes: vec![
+                (date(3), date(3)),
+                (date(11), date(11)),
+                (date(20), date(20)),
+            ],
         };
         let groups = BTreeMap::from([("sex".to_string(), "female".to_string())]);
         let mut acc = Accumulator::default();
@@ -423,7 +431,11 @@ mod tests {
                 })
                 .collect(),
             alarm_dates: [date(3), date(11), date(20)].into_iter().collect(),
-            episodes: vec![(date(3), date(3)), (date(11), date(11)), (date(20), date(20))],
+            episodes: vec![
+                (date(3), date(3)),
+                (date(11), date(11)),
+                (date(20), date(20)),
+            ],
         };
         let mut acc =
             Accumulator::with_periods(vec![Period::days(1, Some(14)), Period::days(15, None)]);

@@ -7,8 +7,8 @@ use std::path::Path;
 
 use serde::Serialize;
 
-pub use super::sweep::{CurvePoint, MatchedPoint};
 use super::metrics::{Metrics, Subgroup};
+pub use super::sweep::{CurvePoint, MatchedPoint};
 use crate::detect::DetectConfig;
 use crate::detect::calibration::Calibrated;
 use crate::flags::FlagLevel;
@@ -126,8 +126,16 @@ impl MethodSummary {
             curve,
             matched: Vec::new(),
             partial_auc_to_1: None,
-            alert_threshold: Calibrated { threshold: f64::NAN, rate: 0.0, capped: false },
-            watch_threshold: Calibrated { threshold: f64::NAN, rate: 0.0, capped: false },
+            alert_threshold: Calibrated {
+                threshold: f64::NAN,
+                rate: 0.0,
+                capped: false,
+            },
+            watch_threshold: Calibrated {
+                threshold: f64::NAN,
+                rate: 0.0,
+                capped: false,
+            },
             calibration_rate_at_alert: 0.0,
         }
     }
@@ -219,7 +227,9 @@ pub fn render_table(report: &EvaluationReport) -> String {
 /// The matched table: each method's sensitivity and median lead at each matched false alarm
 /// episode rate, the partial AUC and the calibrated thresholds.
 pub fn render_matched(report: &EvaluationReport) -> String {
-    let mut s = String::from("Matched false alarm episodes per participant-month (sensitivity / median lead from start, days)\n");
+    let mut s = String::from(
+        "Matched false alarm episodes per participant-month (sensitivity / median lead from start, days)\n",
+    );
     let _ = write!(s, "{:<15}", "method");
     for l in &report.settings.matched_levels {
         let _ = write!(s, " {:>14}", format!("at {l}"));
@@ -229,7 +239,11 @@ pub fn render_matched(report: &EvaluationReport) -> String {
         let _ = write!(s, "{:<15}", m.method);
         for p in &m.matched {
             let cell = match p.sensitivity {
-                Some(x) => format!("{:.1}% / {}", 100.0 * x, opt(p.median_lead_from_start_days, 0)),
+                Some(x) => format!(
+                    "{:.1}% / {}",
+                    100.0 * x,
+                    opt(p.median_lead_from_start_days, 0)
+                ),
                 None => "–".into(),
             };
             let _ = write!(s, " {cell:>14}");
@@ -497,16 +511,12 @@ pub fn render_svg(report: &EvaluationReport) -> String {
             s.push_str(&marker(shape, x, y, colour));
         }
         // Ring the calibrated setting (scale 1).
-        if let Some(p) = m
-            .curve
-            .iter()
-            .min_by(|a, b| {
-                (a.threshold - m.alert_threshold.threshold)
-                    .abs()
-                    .total_cmp(&(b.threshold - m.alert_threshold.threshold).abs())
-            })
-            && let (Some(fa), Some(sens)) =
-                (p.false_alarm_episodes_per_participant_month, p.sensitivity)
+        if let Some(p) = m.curve.iter().min_by(|a, b| {
+            (a.threshold - m.alert_threshold.threshold)
+                .abs()
+                .total_cmp(&(b.threshold - m.alert_threshold.threshold).abs())
+        }) && let (Some(fa), Some(sens)) =
+            (p.false_alarm_episodes_per_participant_month, p.sensitivity)
         {
             let _ = write!(
                 s,

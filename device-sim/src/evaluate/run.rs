@@ -167,7 +167,10 @@ pub fn evaluate_cohort(
         bail!("local_fit_days must be at least 1");
     }
     if !(settings.budget_per_month.is_finite() && settings.budget_per_month > 0.0) {
-        bail!("the false-alarm budget must be positive, got {}", settings.budget_per_month);
+        bail!(
+            "the false-alarm budget must be positive, got {}",
+            settings.budget_per_month
+        );
     }
     let mut models: Vec<(Signal, StateSpacePrior)> = Vec::with_capacity(priors.len());
     for p in priors {
@@ -203,9 +206,11 @@ pub fn evaluate_cohort(
             .iter()
             .enumerate()
             .map(|(m, &method)| {
-                Ok(run_method(method, series, &models, &local[i].0, &identity, &configs[m])?
-                    .map(|s| s.moments)
-                    .unwrap_or_default())
+                Ok(
+                    run_method(method, series, &models, &local[i].0, &identity, &configs[m])?
+                        .map(|s| s.moments)
+                        .unwrap_or_default(),
+                )
             })
             .collect()
     })?;
@@ -223,7 +228,14 @@ pub fn evaluate_cohort(
     let scored: Vec<Scored> = par_map(cohort, settings.threads, |i, series| {
         let mut per_method = Vec::with_capacity(Method::ALL.len());
         for (m, &method) in Method::ALL.iter().enumerate() {
-            let s = run_method(method, series, &models, &local[i].0, &correlations[m], &configs[m])?;
+            let s = run_method(
+                method,
+                series,
+                &models,
+                &local[i].0,
+                &correlations[m],
+                &configs[m],
+            )?;
             per_method.push(match s {
                 Some(s) => (compact(&s.days), scored_days(&s)),
                 None => (Vec::new(), Vec::new()),
@@ -232,7 +244,10 @@ pub fn evaluate_cohort(
         if let Some(pb) = progress {
             pb.inc(1);
         }
-        Ok(Scored { index: i, per_method })
+        Ok(Scored {
+            index: i,
+            per_method,
+        })
     })?;
 
     let mut events: HashMap<&str, (Vec<&Event>, Vec<&Event>)> = HashMap::new();
@@ -263,7 +278,10 @@ pub fn evaluate_cohort(
         // Calibration: summed per-device episode histograms.
         let mut hist = EpisodeHistogram::default();
         for s in &scored {
-            hist.merge(&EpisodeHistogram::from_days(&expand(&s.per_method[m].0), gap));
+            hist.merge(&EpisodeHistogram::from_days(
+                &expand(&s.per_method[m].0),
+                gap,
+            ));
         }
         let alert = hist.threshold_for(settings.budget_per_month);
         let watch = hist.threshold_for(WATCH_BUDGET_FACTOR * settings.budget_per_month);
@@ -276,7 +294,9 @@ pub fn evaluate_cohort(
             .iter()
             .map(|s| {
                 let series = &cohort.participants[s.index];
-                let (targets, _) = events.get(series.participant.as_str()).unwrap_or(&no_events);
+                let (targets, _) = events
+                    .get(series.participant.as_str())
+                    .unwrap_or(&no_events);
                 Truth {
                     first_date: series.dates.first().copied(),
                     days: &s.per_method[m].0,
@@ -292,7 +312,9 @@ pub fn evaluate_cohort(
         for s in &scored {
             let series = &cohort.participants[s.index];
             let groups = cohort.groups.get(&series.participant).unwrap_or(&no_groups);
-            let (targets, others) = events.get(series.participant.as_str()).unwrap_or(&no_events);
+            let (targets, others) = events
+                .get(series.participant.as_str())
+                .unwrap_or(&no_events);
             let (days, signal_days) = &s.per_method[m];
             let result = participant_result(series, days, signal_days, alarm_threshold, gap);
             acc.add(groups, targets, others, &result);
@@ -416,7 +438,10 @@ fn run_method(
         ),
         Method::RollingZ => score_participant(
             series,
-            models.iter().map(|(s, _)| (*s, RollingZ::default())).collect(),
+            models
+                .iter()
+                .map(|(s, _)| (*s, RollingZ::default()))
+                .collect(),
             corr,
             cfg,
         ),
@@ -494,4 +519,3 @@ fn participant_result(
             .collect(),
     }
 }
-

@@ -222,7 +222,12 @@ pub fn matched(truths: &[Truth<'_>], rule: Grouping, levels: &[f64]) -> Vec<Matc
 pub fn partial_auc(curve: &[CurvePoint], max_fa: f64) -> Option<f64> {
     let mut pts: Vec<(f64, f64)> = curve
         .iter()
-        .filter_map(|p| Some((p.false_alarm_episodes_per_participant_month?, p.sensitivity?)))
+        .filter_map(|p| {
+            Some((
+                p.false_alarm_episodes_per_participant_month?,
+                p.sensitivity?,
+            ))
+        })
         .collect();
     if pts.is_empty() {
         return None;
@@ -232,7 +237,11 @@ pub fn partial_auc(curve: &[CurvePoint], max_fa: f64) -> Option<f64> {
     let (mut x0, mut y0) = (0.0, 0.0);
     for (x, y) in pts {
         if x >= max_fa {
-            let y_cut = if x > x0 { y0 + (y - y0) * (max_fa - x0) / (x - x0) } else { y };
+            let y_cut = if x > x0 {
+                y0 + (y - y0) * (max_fa - x0) / (x - x0)
+            } else {
+                y
+            };
             area += 0.5 * (y0 + y_cut) * (max_fa - x0);
             return Some(area / max_fa);
         }
