@@ -276,6 +276,57 @@ pub fn fit_local(
     }))
 }
 
+/// The published resting-HR rule's score (Alavi et al. 2022, Nat. Med. 28:175): on a night
+/// `t` with resting HR observed on `t` and on the calendar night before, the smaller of the two
+/// nights' excess over the streaming median of every earlier night's resting HR (at least
+/// `min_nights` of them). The rule as published alarms when this is at least 4 bpm; the sweep
+/// varies the 4. The median includes every earlier night ("streaming"), alarm nights too (the
+/// rule has no baseline protection; from memory of the paper's description).
+pub fn alavi_scores(series: &ParticipantSeries, min_nights: usize) -> ParticipantScores {
+    let mut out = ParticipantScores::default();
+    let Some(column) = series.values.get(&crate::signal::Signal::RestingHr) else {
+        return out;
+    };
+    let mut earlier: Vec<f64> = Vec::new();
+    let mut prev_excess: Option<(chrono::NaiveDate, f64)> = None;
+    for (i, &date) in series.dates.iter().enumerate() {
+        let Some(v) = column[i].filter(|v| v.is_finite()) else {
+            continue;
+        };
+        let excess = (earlier.len() >= min_nights.max(1)).then(|| v - sorted_median(&earlier));
+        if let Some(x) = excess {
+            if let Some((d, px)) = prev_excess
+                && (date - d).num_days() == 1
+            {
+                out.days.push(DayScore {
+                    date,
+                    score: Some(x.min(px)),
+                    mirror: None,
+                    window_start: d,
+                    contributions: [0.0; 6],
+                    departures: [None; 6],
+                });
+            }
+            prev_excess = Some((date, x));
+        } else {
+            prev_excess = None;
+        }
+        let pos = earlier.partition_point(|e| *e < v);
+        earlier.insert(pos, v);
+    }
+    out
+}
+
+/// Median of a sorted, non-empty slice.
+fn sorted_median(sorted: &[f64]) -> f64 {
+    let n = sorted.len();
+    if n % 2 == 1 {
+        sorted[n / 2]
+    } else {
+        0.5 * (sorted[n / 2 - 1] + sorted[n / 2])
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -350,56 +401,5 @@ mod tests {
         }
         // Values 1..=28: mean 14.5.
         assert!((r.predict(40).unwrap().mean - 14.5).abs() < 1e-12);
-    }
-}
-
-/// The published resting-HR rule's score (Alavi et al. 2022, Nat. Med. 28:175): on a night
-/// `t` with resting HR observed on `t` and on the calendar night before, the smaller of the two
-/// nights' excess over the streaming median of every earlier night's resting HR (at least
-/// `min_nights` of them). The rule as published alarms when this is at least 4 bpm; the sweep
-/// varies the 4. The median includes every earlier night ("streaming"), alarm nights too (the
-/// rule has no baseline protection; from memory of the paper's description).
-pub fn alavi_scores(series: &ParticipantSeries, min_nights: usize) -> ParticipantScores {
-    let mut out = ParticipantScores::default();
-    let Some(column) = series.values.get(&crate::signal::Signal::RestingHr) else {
-        return out;
-    };
-    let mut earlier: Vec<f64> = Vec::new();
-    let mut prev_excess: Option<(chrono::NaiveDate, f64)> = None;
-    for (i, &date) in series.dates.iter().enumerate() {
-        let Some(v) = column[i].filter(|v| v.is_finite()) else {
-            continue;
-        };
-        let excess = (earlier.len() >= min_nights.max(1)).then(|| v - sorted_median(&earlier));
-        if let Some(x) = excess {
-            if let Some((d, px)) = prev_excess
-                && (date - d).num_days() == 1
-            {
-                out.days.push(DayScore {
-                    date,
-                    score: Some(x.min(px)),
-                    mirror: None,
-                    window_start: d,
-                    contributions: [0.0; 6],
-                    departures: [None; 6],
-                });
-            }
-            prev_excess = Some((date, x));
-        } else {
-            prev_excess = None;
-        }
-        let pos = earlier.partition_point(|e| *e < v);
-        earlier.insert(pos, v);
-    }
-    out
-}
-
-/// Median of a sorted, non-empty slice.
-fn sorted_median(sorted: &[f64]) -> f64 {
-    let n = sorted.len();
-    if n % 2 == 1 {
-        sorted[n / 2]
-    } else {
-        0.5 * (sorted[n / 2 - 1] + sorted[n / 2])
     }
 }
