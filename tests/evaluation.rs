@@ -45,6 +45,7 @@ fn options(cohort: &Path, out: &Path, prior: Option<PathBuf>) -> EvaluateOptions
         out_dir: out.to_owned(),
         prior,
         rounds: 3,
+        screened: true,
         settings,
         progress: false,
     }

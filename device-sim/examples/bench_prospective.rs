@@ -1,6 +1,6 @@
-//! Benchmark (not a test): throughput of prospective prediction and flagging
-//! ([`plimsoll_device::flags::detect`]) in device-years per second, against the dense per-day
-//! refit it replaces.
+//! Benchmark (not a test): throughput of the detector ([`plimsoll_device::detect`]: guarded
+//! baseline, window-limited departure test, joint score) in device-years per second, against
+//! the plain one-step filter it builds on and the dense per-day refit the filter replaces.
 //!
 //! ```text
 //! cargo run --release -p plimsoll-device --example bench_prospective -- [DEVICE_YEARS] [DENSE_YEARS]
@@ -13,6 +13,10 @@
 //! `detect`, 1 for the dense baseline.
 //!
 //! Reported, one line each and a JSON summary line:
+//! - `score_participant` (the new detection, what devices and the evaluation run), single-
+//!   threaded, and its ratio against the plain filter below (the named baseline of the same
+//!   run);
+//! - the plain filter: [`one_step_ahead`] over every signal, single-threaded;
 //! - `detect`, single-threaded;
 //! - `detect` on all cores (participants split over `std::thread::scope` workers);
 //! - the baseline: for each signal and observed day, a dense GP conditioned on all earlier
@@ -26,9 +30,11 @@ use std::time::Instant;
 
 use chrono::{Duration, NaiveDate};
 use plimsoll_device::cohort::ParticipantSeries;
+use plimsoll_device::detect::joint::Correlation;
+use plimsoll_device::detect::{DetectConfig, score_participant};
 use plimsoll_device::flags::{FlagConfig, FlagLevel, detect};
 use plimsoll_device::prior::PriorParams;
-use plimsoll_device::prospective::{StateSpacePrior, one_step_ahead};
+use plimsoll_device::prospective::{DailyFilter, StateSpacePrior, one_step_ahead};
 use plimsoll_device::signal::Signal;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -105,6 +111,50 @@ fn run_detect(
     })
 }
 
+/// Runs the detector of `plimsoll_device::detect` over every participant; returns the number
+/// of days whose score reached 3 (so the work is used).
+fn run_score(cohort: &[ParticipantSeries], priors: &[PriorParams], cfg: &DetectConfig) -> usize {
+    let corr = Correlation::identity();
+    cohort
+        .iter()
+        .map(|s| {
+            let predictors = priors
+                .iter()
+                .map(|p| {
+                    let model = StateSpacePrior::new(p).expect("valid prior");
+                    (p.signal, DailyFilter::new(&model))
+                })
+                .collect();
+            score_participant(s, predictors, &corr, cfg)
+                .expect("scores")
+                .days
+                .iter()
+                .filter(|d| d.score.is_some_and(|x| x >= 3.0))
+                .count()
+        })
+        .sum()
+}
+
+/// The plain one-step filter over every signal of every participant; returns the number of
+/// one-step predictions.
+fn run_filter(cohort: &[ParticipantSeries], priors: &[PriorParams]) -> usize {
+    cohort
+        .iter()
+        .map(|s| {
+            let origin = s.dates[0];
+            priors
+                .iter()
+                .map(|p| {
+                    let (t, y) = s.observations(p.signal, origin);
+                    let (centre, scale) = p.signal.reference();
+                    let z: Vec<f64> = y.iter().map(|y| (y - centre) / scale).collect();
+                    one_step_ahead(p, &t, &z).expect("filter").len()
+                })
+                .sum::<usize>()
+        })
+        .sum()
+}
+
 fn main() {
     let mut args = std::env::args().skip(1);
     let n_years: usize = args
@@ -129,6 +179,43 @@ fn main() {
 
     // Warm-up (page in code and data).
     run_detect(&cohort[..n_years.min(20)], &priors, &cfg);
+    let detect_cfg = DetectConfig::default();
+    run_score(&cohort[..n_years.min(20)], &priors, &detect_cfg);
+
+    let t0 = Instant::now();
+    let n_high = run_score(&cohort[..n_years], &priors, &detect_cfg);
+    let score_s = t0.elapsed().as_secs_f64();
+    let score_rate = n_years as f64 / score_s;
+    let t0 = Instant::now();
+    let n_steps = run_filter(&cohort[..n_years], &priors);
+    let filter_s = t0.elapsed().as_secs_f64();
+    let filter_rate = n_years as f64 / filter_s;
+    println!(
+        "score_participant (new detection), 1 thread: {score_s:.3} s, {score_rate:.0} device-years/s ({n_high} days scoring >= 3 on data drawn from the priors)"
+    );
+    println!(
+        "plain one-step filter (baseline), 1 thread: {filter_s:.3} s, {filter_rate:.0} device-years/s ({n_steps} predictions)"
+    );
+    println!(
+        "new detection costs {:.2}x the plain filter's time",
+        filter_rate / score_rate
+    );
+    let n_threads = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let chunk = n_years.div_ceil(n_threads).max(1);
+    let t0 = Instant::now();
+    let n_high_par: usize = std::thread::scope(|scope| {
+        let handles: Vec<_> = cohort[..n_years]
+            .chunks(chunk)
+            .map(|part| scope.spawn(|| run_score(part, &priors, &detect_cfg)))
+            .collect();
+        handles.into_iter().map(|h| h.join().expect("worker")).sum()
+    });
+    let score_par_s = t0.elapsed().as_secs_f64();
+    let score_par_rate = n_years as f64 / score_par_s;
+    assert_eq!(n_high, n_high_par);
+    println!(
+        "score_participant, {n_threads} threads: {score_par_s:.3} s, {score_par_rate:.0} device-years/s (target 2,000)"
+    );
 
     let t0 = Instant::now();
     let (n_flags, n_alerts) = run_detect(&cohort[..n_years], &priors, &cfg);
@@ -138,8 +225,6 @@ fn main() {
         "detect, 1 thread:   {single_s:.3} s, {single_rate:.0} device-years/s ({n_flags} flags, {n_alerts} at Alert level, on data drawn from the priors: all false alarms)"
     );
 
-    let n_threads = std::thread::available_parallelism().map_or(1, |n| n.get());
-    let chunk = n_years.div_ceil(n_threads).max(1);
     let t0 = Instant::now();
     let n_flags_par: (usize, usize) = std::thread::scope(|scope| {
         let handles: Vec<_> = cohort[..n_years]
@@ -205,6 +290,9 @@ fn main() {
         "{}",
         json!({
             "device_years": n_years,
+            "score_single_thread_device_years_per_s": score_rate,
+            "score_all_threads_device_years_per_s": score_par_rate,
+            "plain_filter_single_thread_device_years_per_s": filter_rate,
             "false_alerts_per_device_year": n_alerts as f64 / n_years as f64,
             "threads": n_threads,
             "detect_single_thread_device_years_per_s": single_rate,

@@ -160,6 +160,10 @@ enum Command {
         /// Federated rounds when learning the prior (all devices per round up to 100, else 100).
         #[arg(long, default_value_t = 80)]
         rounds: u32,
+        /// After the federated rounds, run a screened second pass that leaves out the days the
+        /// detector's baseline protected (illness episodes, artifacts); see docs/evaluation.md.
+        #[arg(long)]
+        screened_prior: bool,
         /// Event kind counted as a detection target (repeatable); alarms inside other events
         /// are false alarms.
         #[arg(long = "target-kind", default_value = DEFAULT_TARGET_KIND)]
@@ -175,6 +179,12 @@ enum Command {
         /// Lowest flag level that counts as an alarm.
         #[arg(long, value_enum, default_value_t = AlarmLevel::Alert)]
         alarm_level: AlarmLevel,
+        /// Detector settings (TOML; any field of the detector's settings, the rest default:
+        /// guard_days, windows, min_baseline_days, scale_prior_days, clip_z, protect_score,
+        /// max_protected_days, merge_gap_days, max_episode_days, pattern.weights; see
+        /// docs/evaluation.md).
+        #[arg(long)]
+        detector: Option<PathBuf>,
     },
 }
 
@@ -227,10 +237,12 @@ struct EvaluateArgs {
     out: PathBuf,
     prior: Option<PathBuf>,
     rounds: u32,
+    screened_prior: bool,
     target_kinds: Vec<String>,
     false_alarm_budget: f64,
     local_fit_days: usize,
     alarm_level: AlarmLevel,
+    detector: Option<PathBuf>,
 }
 
 #[tokio::main]
@@ -401,20 +413,24 @@ async fn main() -> anyhow::Result<()> {
             out,
             prior,
             rounds,
+            screened_prior,
             target_kinds,
             false_alarm_budget,
             local_fit_days,
             alarm_level,
+            detector,
         } => {
             evaluate(EvaluateArgs {
                 cohort,
                 out,
                 prior,
                 rounds,
+                screened_prior,
                 target_kinds,
                 false_alarm_budget,
                 local_fit_days,
                 alarm_level,
+                detector,
             })
             .await
         }
@@ -427,6 +443,9 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
     settings.budget_per_month = args.false_alarm_budget;
     settings.target_kinds = args.target_kinds;
     settings.local_fit_days = args.local_fit_days;
+    if let Some(path) = &args.detector {
+        settings.detect = plimsoll_device::detect::DetectConfig::from_toml_file(path)?;
+    }
     settings.alarm_level = match args.alarm_level {
         AlarmLevel::Alert => FlagLevel::Alert,
         AlarmLevel::Watch => FlagLevel::Watch,
@@ -436,6 +455,7 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
         out_dir: args.out,
         prior: args.prior,
         rounds: args.rounds,
+        screened: args.screened_prior,
         settings,
         progress: true,
     })

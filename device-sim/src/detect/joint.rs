@@ -190,3 +190,47 @@ pub fn joint_score(
         contributions,
     })
 }
+
+/// [`joint_score`] precomputed for one correlation and pattern: for every subset of present
+/// signals (a bitmask over [`Signal::ALL`]), the weights `R⁻¹a / √(aᵀR⁻¹a)`, so a day's score
+/// is a dot product (the detector scores every day and window; one small Cholesky per subset
+/// instead of per window).
+#[derive(Debug, Clone)]
+pub struct JointWeights {
+    table: Vec<Option<[f64; N_SIGNALS]>>,
+}
+
+impl JointWeights {
+    /// Weights for every subset of signals under `corr` and `pattern`.
+    pub fn new(corr: &Correlation, pattern: &TargetPattern) -> JointWeights {
+        let table = (0..1usize << N_SIGNALS)
+            .map(|mask| {
+                let x: [Option<f64>; N_SIGNALS] =
+                    std::array::from_fn(|j| (mask & (1 << j) != 0).then_some(1.0));
+                // With x = 1 on every present signal, each contribution is its weight.
+                joint_score(&x, corr, pattern).map(|s| s.contributions)
+            })
+            .collect();
+        JointWeights { table }
+    }
+
+    /// The same value as [`joint_score`] with this table's correlation and pattern.
+    pub fn score(&self, x: &[Option<f64>; N_SIGNALS]) -> Option<JointScore> {
+        let mask = (0..N_SIGNALS)
+            .filter(|&j| x[j].is_some())
+            .fold(0usize, |m, j| m | (1 << j));
+        let w = self.table[mask].as_ref()?;
+        let mut contributions = [0.0; N_SIGNALS];
+        let mut score = 0.0;
+        for j in 0..N_SIGNALS {
+            if let Some(v) = x[j] {
+                contributions[j] = w[j] * v;
+                score += contributions[j];
+            }
+        }
+        Some(JointScore {
+            score,
+            contributions,
+        })
+    }
+}

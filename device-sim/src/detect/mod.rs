@@ -67,14 +67,16 @@ use serde::{Deserialize, Serialize};
 
 use self::baseline::GuardedBaseline;
 use self::joint::{
-    Correlation, N_SIGNALS, ResidualMoments, TargetPattern, joint_score, signal_index,
+    Correlation, JointWeights, N_SIGNALS, ResidualMoments, TargetPattern, signal_index,
 };
 use crate::cohort::ParticipantSeries;
 use crate::prospective::{Predictor, ProspectiveError, Result};
 use crate::signal::Signal;
 
-/// Settings of the detector (module docs for each rule).
+/// Settings of the detector (module docs for each rule). In a file, any subset of the fields
+/// (missing ones take their defaults; unknown ones are refused).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
 pub struct DetectConfig {
     /// Days the baseline is kept behind the day scored.
     pub guard_days: usize,
@@ -126,6 +128,36 @@ impl Default for DetectConfig {
 }
 
 impl DetectConfig {
+    /// Reads settings from a TOML file (any subset of the fields) and validates them.
+    ///
+    /// # Errors
+    /// The file cannot be read, is not valid TOML for these settings (the message names the
+    /// file, line and column and the field), or a setting is unusable.
+    pub fn from_toml_file(path: &std::path::Path) -> anyhow::Result<DetectConfig> {
+        use anyhow::Context;
+        let text = std::fs::read_to_string(path)
+            .with_context(|| format!("reading detector settings {}", path.display()))?;
+        let cfg: DetectConfig = toml::from_str(&text).map_err(|e| {
+            let at = e
+                .span()
+                .map(|span| {
+                    let before = &text[..span.start.min(text.len())];
+                    let line = before.matches('\n').count() + 1;
+                    let column = before.len() - before.rfind('\n').map_or(0, |i| i + 1) + 1;
+                    format!(", line {line}, column {column}")
+                })
+                .unwrap_or_default();
+            anyhow::anyhow!(
+                "detector settings {}{at}: {}",
+                path.display(),
+                e.message()
+            )
+        })?;
+        cfg.validate()
+            .with_context(|| format!("detector settings {}", path.display()))?;
+        Ok(cfg)
+    }
+
     /// Checks that every setting is usable.
     ///
     /// # Errors
@@ -186,6 +218,10 @@ pub struct SignalDay {
     pub residual: f64,
     /// In the signal's cold start (not part of the score).
     pub cold: bool,
+    /// Kept out of the baseline (module docs, "Baseline": the day's joint score reached
+    /// `protect_score` and the signal is in the pattern, or its own residual exceeded
+    /// `clip_z`). A day released later by the lasting-change rule stays marked.
+    pub protected: bool,
 }
 
 /// One calendar day of a participant with data.
@@ -212,6 +248,28 @@ pub struct ParticipantScores {
     pub signal_days: Vec<SignalDay>,
     /// Cross-products of the released-day residuals (for learning `R`).
     pub moments: ResidualMoments,
+}
+
+/// A copy of `series` without the signal-days its baseline kept out (`SignalDay::protected`
+/// in `scores`, which must come from scoring this series): what a device trains on in the
+/// screened second pass of the shared prior (so that illness episodes and artifacts do not
+/// shape the prior's length scales). Returns the copy and the number of values removed.
+pub fn without_protected_days(
+    series: &ParticipantSeries,
+    scores: &ParticipantScores,
+) -> (ParticipantSeries, usize) {
+    let mut out = series.clone();
+    let mut removed = 0;
+    let index: std::collections::HashMap<NaiveDate, usize> =
+        series.dates.iter().enumerate().map(|(i, &d)| (d, i)).collect();
+    for d in scores.signal_days.iter().filter(|d| d.protected) {
+        if let (Some(column), Some(&i)) = (out.values.get_mut(&d.signal), index.get(&d.date)) {
+            if column[i].take().is_some() {
+                removed += 1;
+            }
+        }
+    }
+    (out, removed)
 }
 
 /// Per-signal state.
@@ -244,6 +302,7 @@ pub fn score_participant<P: Predictor>(
         source: Box::new(source),
     };
     let max_window = *cfg.windows.iter().max().expect("validated") as i64;
+    let weights = JointWeights::new(corr, &cfg.pattern);
     let mut tracks: Vec<Track<'_, P>> = Vec::new();
     for (signal, predictor) in predictors {
         let Some(column) = series.values.get(&signal) else {
@@ -283,6 +342,7 @@ pub fn score_participant<P: Predictor>(
     };
     for (i, &date) in series.dates.iter().enumerate() {
         let day = (date - origin).num_days();
+        let first_of_day = out.signal_days.len();
         let mut today: [Option<f64>; N_SIGNALS] = [None; N_SIGNALS];
         let mut any = false;
         for track in &mut tracks {
@@ -311,6 +371,7 @@ pub fn score_participant<P: Predictor>(
                 sd: scale * b.sd,
                 residual: b.residual,
                 cold,
+                protected: false,
             });
             if !cold {
                 today[track.index] = Some(b.residual);
@@ -346,7 +407,7 @@ pub fn score_participant<P: Predictor>(
                         x[track.index] = Some(sum / (n as f64).sqrt());
                     }
                 }
-                if let Some(j) = joint_score(&x, corr, &cfg.pattern) {
+                if let Some(j) = weights.score(&x) {
                     if best.as_ref().is_none_or(|b| j.score > b.0) {
                         best = Some((j.score, w, j.contributions, x));
                     }
@@ -366,7 +427,14 @@ pub fn score_participant<P: Predictor>(
             let in_pattern = cfg.pattern.weights[track.index] != 0.0;
             let protect = extreme || (protect_joint && in_pattern);
             track.baseline.protect_last(protect);
-            if !protect {
+            if protect {
+                if let Some(d) = out.signal_days[first_of_day..]
+                    .iter_mut()
+                    .find(|d| d.signal == track.signal)
+                {
+                    d.protected = true;
+                }
+            } else {
                 usable[track.index] = r;
             }
         }

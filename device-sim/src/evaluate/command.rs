@@ -21,6 +21,7 @@ use crate::client::MIN_DAYS_TO_ENROLL;
 use crate::cohort::{BadRowPolicy, Cohort, read_cohort};
 use crate::demo::{cohort_signals, initial_layouts, run_federated};
 use crate::prior::PriorParams;
+use crate::prospective::{DailyFilter, StateSpacePrior};
 use crate::signal::Signal;
 
 /// Devices per federated round when the cohort has more than this many.
@@ -35,6 +36,8 @@ pub struct EvaluateOptions {
     pub prior: Option<PathBuf>,
     /// Federated rounds when learning the prior.
     pub rounds: u32,
+    /// Follow the federated rounds with the screened second pass ([`learn_prior`]).
+    pub screened: bool,
     /// Everything about detection and metrics.
     pub settings: EvaluationSettings,
     /// Show progress bars.
@@ -80,7 +83,7 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
         }
         None => {
             let work = opts.out_dir.join("federated");
-            learn_prior(&cohort, opts.rounds, &work, opts.progress).await?
+            learn_prior(&cohort, opts.rounds, opts.screened, &work, opts.progress).await?
         }
     };
     let training = t_train.elapsed();
@@ -139,14 +142,25 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
 /// with the demo's local training (2 plain-SGD steps of size 1 per round on the full series),
 /// all devices per round up to [`MAX_DEVICES_PER_ROUND`] and that many above. Participants
 /// without a signal of `MIN_DAYS_TO_ENROLL` observed days cannot enrol and are left out of
-/// training (not of the evaluation). The aggregator database and the devices' outputs go to
-/// `work_dir`. Returns the last published prior and a description of how it was learned.
+/// training (not of the evaluation). The aggregator databases and the devices' outputs go to
+/// `work_dir`.
+///
+/// With `screened`, a second pass follows (the robust prior of `docs/evaluation.md`): each
+/// device scores its own days under the first pass's prior with the detector's guarded
+/// baseline ([`crate::detect`], identity correlation), leaves out the signal-days that
+/// baseline protected (departures in the alerting direction scoring `protect_score` or more,
+/// and single residuals beyond `clip_z`), and training continues from the first pass's prior
+/// for [`screened_rounds`] more rounds on what is left. Illness episodes and artifacts then
+/// shape the prior less (they otherwise shorten its trend length, so the one-step forecast
+/// follows a departure). Returns the last published prior and a description of how it was
+/// learned, with the trend lengths before and after the second pass.
 ///
 /// # Errors
-/// No participant can enrol, or the federated run fails.
+/// No participant can enrol, or a federated run fails.
 pub async fn learn_prior(
     cohort: &Cohort,
     rounds: u32,
+    screened: bool,
     work_dir: &Path,
     progress: bool,
 ) -> anyhow::Result<(Vec<PriorParams>, String)> {
@@ -191,6 +205,97 @@ pub async fn learn_prior(
         selection_seed: 7,
         aggregation: Default::default(),
     };
+    let (first, version) = federated_pass(
+        &training_cohort,
+        config.clone(),
+        &work_dir.join("pass-1"),
+        "federated rounds",
+        progress,
+    )
+    .await?;
+    let mut source = format!(
+        "federated: {rounds} rounds over loopback gRPC on this cohort, {n} devices enrolled, {per_round} per round, prior version {version}"
+    );
+    if !screened {
+        return Ok((first, source));
+    }
+    let detect = crate::detect::DetectConfig::default();
+    let mut removed = 0usize;
+    let mut total = 0usize;
+    let mut screened_participants = Vec::with_capacity(n);
+    for series in &training_cohort.participants {
+        let predictors = first
+            .iter()
+            .map(|p| Ok((p.signal, DailyFilter::new(&StateSpacePrior::new(p)?))))
+            .collect::<crate::prospective::Result<Vec<_>>>()?;
+        let scores = crate::detect::score_participant(
+            series,
+            predictors,
+            &crate::detect::joint::Correlation::identity(),
+            &detect,
+        )?;
+        let (kept, n_removed) = crate::detect::without_protected_days(series, &scores);
+        removed += n_removed;
+        total += scores.signal_days.len();
+        screened_participants.push(kept);
+    }
+    let screened_cohort = Cohort {
+        participants: screened_participants,
+        ..Cohort::default()
+    };
+    let more = screened_rounds(rounds);
+    let mut second_config = config;
+    second_config.study_id = "evaluation-screened".into();
+    second_config.rounds = more;
+    for layout in &mut second_config.signals {
+        if let Some(p) = first.iter().find(|p| p.signal.column() == layout.signal) {
+            layout.initial = p.values.to_vec();
+        }
+    }
+    let (second, version) = federated_pass(
+        &screened_cohort,
+        second_config,
+        &work_dir.join("pass-2-screened"),
+        "screened rounds",
+        progress,
+    )
+    .await?;
+    let lengths: Vec<String> = second
+        .iter()
+        .filter_map(|p| {
+            let before = first.iter().find(|q| q.signal == p.signal)?;
+            Some(format!(
+                "{} {:.1} -> {:.1}",
+                p.signal.column(),
+                before.values[3].exp(),
+                p.values[3].exp()
+            ))
+        })
+        .collect();
+    source.push_str(&format!(
+        "; then {more} screened rounds (version {version}) without the {removed} of {total} signal-days ({:.1}%) the guarded baseline protected; trend length (days) first pass -> screened: {}",
+        100.0 * removed as f64 / total.max(1) as f64,
+        lengths.join(", ")
+    ));
+    Ok((second, source))
+}
+
+/// Rounds of the screened second pass after `rounds` first-pass rounds: a quarter, at least
+/// 10 (it starts from the first pass's prior, so it only needs to move, not to converge from
+/// the generic start).
+pub fn screened_rounds(rounds: u32) -> u32 {
+    (rounds / 4).max(10)
+}
+
+/// One federated training run of `config` on `cohort` in `work_dir` (a fresh aggregator
+/// database); returns the last published prior and its version.
+async fn federated_pass(
+    cohort: &Cohort,
+    config: StudyConfig,
+    work_dir: &Path,
+    label: &str,
+    progress: bool,
+) -> anyhow::Result<(Vec<PriorParams>, u32)> {
     std::fs::create_dir_all(work_dir)
         .with_context(|| format!("creating {}", work_dir.display()))?;
     let db_path = work_dir.join("aggregator.db");
@@ -202,13 +307,13 @@ pub async fn learn_prior(
         }
     }
     let bar = progress.then(|| {
-        ProgressBar::new(u64::from(rounds)).with_style(
-            ProgressStyle::with_template("federated rounds {bar:40} {pos}/{len} [{elapsed}]")
+        ProgressBar::new(u64::from(config.rounds)).with_style(
+            ProgressStyle::with_template(&format!("{label} {{bar:40}} {{pos}}/{{len}} [{{elapsed}}]"))
                 .expect("static template"),
         )
     });
     let run = run_federated(
-        &training_cohort,
+        cohort,
         config,
         &db_path,
         &work_dir.join("devices"),
@@ -227,9 +332,5 @@ pub async fn learn_prior(
                 .with_context(|| format!("published prior of {signal}"))?,
         );
     }
-    let source = format!(
-        "federated: {rounds} rounds over loopback gRPC on this cohort, {n} devices enrolled, {per_round} per round, prior version {}",
-        latest.version
-    );
-    Ok((priors, source))
+    Ok((priors, latest.version))
 }
