@@ -105,8 +105,13 @@ fn baseline_and_score_match_a_dense_refit() {
         let mut raw = Vec::new();
         let mut residuals = Vec::new();
         for i in 0..t.len() {
-            let cut = t.iter().take_while(|&&d| d <= t[i] - guard as f64 - 1.0).count();
-            let post = model.posterior(&t[..cut], &z[..cut]).expect("dense posterior");
+            let cut = t
+                .iter()
+                .take_while(|&&d| d <= t[i] - guard as f64 - 1.0)
+                .count();
+            let post = model
+                .posterior(&t[..cut], &z[..cut])
+                .expect("dense posterior");
             let pred = post.predict(&[t[i]]);
             let (m, v) = (pred.mean[0], pred.var_obs[0]);
             let u = (z[i] - m) / v.sqrt();
@@ -228,7 +233,11 @@ fn joint_score_matches_its_closed_form_and_the_table() {
         let pattern = TargetPattern::ACUTE_ILLNESS;
         let got = joint_score(&x, &corr, &pattern).expect("pattern signals present");
         let want = (1.3 - -0.4) / (2.0 * (1.0 - rho)).sqrt();
-        assert!((got.score - want).abs() < 1e-12, "ρ {rho}: {} vs {want}", got.score);
+        assert!(
+            (got.score - want).abs() < 1e-12,
+            "ρ {rho}: {} vs {want}",
+            got.score
+        );
         let sum: f64 = got.contributions.iter().sum();
         assert!((sum - got.score).abs() < 1e-12);
     }
@@ -236,7 +245,11 @@ fn joint_score_matches_its_closed_form_and_the_table() {
     let mut m = [[0.0; N_SIGNALS]; N_SIGNALS];
     for j in 0..N_SIGNALS {
         for k in 0..N_SIGNALS {
-            m[j][k] = if j == k { 1.0 } else { rng.random_range(-0.3..0.3) };
+            m[j][k] = if j == k {
+                1.0
+            } else {
+                rng.random_range(-0.3..0.3)
+            };
         }
     }
     let corr = Correlation::new(m);
@@ -296,7 +309,11 @@ fn calibration_recovers_the_normal_quantile() {
     let normal = Normal::new(0.0, 1.0).expect("valid");
     let c = total.threshold_for(0.3);
     assert!(!c.capped);
-    assert!((c.threshold - 2.4).abs() < 1e-9, "threshold {}", c.threshold);
+    assert!(
+        (c.threshold - 2.4).abs() < 1e-9,
+        "threshold {}",
+        c.threshold
+    );
     let expected = (1.0 - normal.cdf(2.4)) * 30.4375;
     // 730,000 days: the rate's binomial relative SD at p = 0.0082 is about 1.2 %; allow 5 %.
     assert!(
@@ -319,7 +336,10 @@ fn calibration_recovers_the_normal_quantile() {
     // Stated odds: the rate of an episode peaking at 3.05 is the rate at edge 3.0.
     let at3 = total.rate_at(3.05);
     let want3 = (1.0 - normal.cdf(3.0)) * 30.4375;
-    assert!((at3 / want3 - 1.0).abs() < 0.15, "rate at 3: {at3} vs {want3}");
+    assert!(
+        (at3 / want3 - 1.0).abs() < 0.15,
+        "rate at 3: {at3} vs {want3}"
+    );
 }
 
 /// The grouping rule on a worked example (common practice for alarm grouping; the rule is the
@@ -355,7 +375,13 @@ fn episodes_group_by_the_stated_rule() {
     // 34..47, 48..49.
     assert_eq!(
         spans,
-        vec![(2, 6, 3), (10, 10, 1), (20, 33, 14), (34, 47, 14), (48, 49, 2)]
+        vec![
+            (2, 6, 3),
+            (10, 10, 1),
+            (20, 33, 14),
+            (34, 47, 14),
+            (48, 49, 2)
+        ]
     );
     assert_eq!(episodes[0].level, FlagLevel::Alert);
     assert_eq!(episodes[0].peak, date(5));
@@ -368,4 +394,34 @@ fn episodes_group_by_the_stated_rule() {
     // Cut the series on day 50: the last episode is still open.
     let open = group(&days[..51], 2.4, 3.5, rule);
     assert!(open.last().expect("episodes").ongoing);
+}
+
+/// `--detector` files: a partial file keeps the other defaults; an unknown key or a wrong type
+/// is refused naming the file, line and column; an unusable value names the setting (common
+/// practice for configuration errors).
+#[test]
+fn detector_settings_files_are_read_and_checked() {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let path = dir.path().join("detector.toml");
+    std::fs::write(&path, "guard_days = 5\nwindows = [1, 2]\n").expect("write");
+    let cfg = DetectConfig::from_toml_file(&path).expect("valid settings");
+    assert_eq!(cfg.guard_days, 5);
+    assert_eq!(cfg.windows, vec![1, 2]);
+    assert_eq!(cfg.clip_z, DetectConfig::default().clip_z);
+
+    std::fs::write(&path, "guard_days = 5\ngaurd = 2\n").expect("write");
+    let err = format!("{:#}", DetectConfig::from_toml_file(&path).unwrap_err());
+    assert!(
+        err.contains("detector.toml") && err.contains("line 2"),
+        "{err}"
+    );
+    assert!(err.contains("gaurd"), "{err}");
+
+    std::fs::write(&path, "clip_z = \"high\"\n").expect("write");
+    let err = format!("{:#}", DetectConfig::from_toml_file(&path).unwrap_err());
+    assert!(err.contains("line 1, column 10"), "{err}");
+
+    std::fs::write(&path, "windows = [0, 3]\n").expect("write");
+    let err = format!("{:#}", DetectConfig::from_toml_file(&path).unwrap_err());
+    assert!(err.contains("windows"), "{err}");
 }

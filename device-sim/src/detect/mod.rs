@@ -147,11 +147,7 @@ impl DetectConfig {
                     format!(", line {line}, column {column}")
                 })
                 .unwrap_or_default();
-            anyhow::anyhow!(
-                "detector settings {}{at}: {}",
-                path.display(),
-                e.message()
-            )
+            anyhow::anyhow!("detector settings {}{at}: {}", path.display(), e.message())
         })?;
         cfg.validate()
             .with_context(|| format!("detector settings {}", path.display()))?;
@@ -260,8 +256,12 @@ pub fn without_protected_days(
 ) -> (ParticipantSeries, usize) {
     let mut out = series.clone();
     let mut removed = 0;
-    let index: std::collections::HashMap<NaiveDate, usize> =
-        series.dates.iter().enumerate().map(|(i, &d)| (d, i)).collect();
+    let index: std::collections::HashMap<NaiveDate, usize> = series
+        .dates
+        .iter()
+        .enumerate()
+        .map(|(i, &d)| (d, i))
+        .collect();
     for d in scores.signal_days.iter().filter(|d| d.protected) {
         if let (Some(column), Some(&i)) = (out.values.get_mut(&d.signal), index.get(&d.date)) {
             if column[i].take().is_some() {

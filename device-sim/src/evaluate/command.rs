@@ -308,8 +308,10 @@ async fn federated_pass(
     }
     let bar = progress.then(|| {
         ProgressBar::new(u64::from(config.rounds)).with_style(
-            ProgressStyle::with_template(&format!("{label} {{bar:40}} {{pos}}/{{len}} [{{elapsed}}]"))
-                .expect("static template"),
+            ProgressStyle::with_template(&format!(
+                "{label} {{bar:40}} {{pos}}/{{len}} [{{elapsed}}]"
+            ))
+            .expect("static template"),
         )
     });
     let run = run_federated(
