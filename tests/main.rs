@@ -2,6 +2,7 @@
 
 mod cohort_io;
 mod cusum_arl;
+mod detection_stats;
 mod device_identity;
 mod evaluation;
 mod federated;
