@@ -685,3 +685,30 @@ async fn every_device_ends_with_the_cohort_calibration() {
         assert_eq!(&written, got);
     }
 }
+
+/// The aggregator's fixed lengths are the detector's, the signal order is
+/// the one the proto's `ResidualMomentSums` comment states, and entry (j, k)
+/// travels at index 6·j + k (one contract checked at both ends; common
+/// practice).
+#[test]
+fn the_wire_layout_matches_the_detector() {
+    assert_eq!(plimsoll_server::detection::MOMENT_SIGNALS, N_SIGNALS);
+    assert_eq!(plimsoll_server::detection::HISTOGRAM_EDGES, N_EDGES);
+    let order: Vec<&str> = Signal::ALL.iter().map(|s| s.column()).collect();
+    assert_eq!(
+        order,
+        [
+            "resting_hr_bpm",
+            "hrv_rmssd_ms",
+            "sleep_h",
+            "skin_temp_delta_c",
+            "steps",
+            "resp_rate_brpm"
+        ]
+    );
+    let m = random_moments(9, 40);
+    let wire = moments_to_pb(&m);
+    assert_eq!(wire.cross_products[2 * N_SIGNALS + 5], m.cross[2][5]);
+    assert_eq!(wire.pair_days[5 * N_SIGNALS + 1], m.count[5][1]);
+    assert_eq!(moments_from_pb("m", &wire).unwrap(), m);
+}
