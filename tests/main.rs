@@ -3,6 +3,7 @@
 mod cohort_io;
 mod cusum_arl;
 mod detect;
+mod detection_stats;
 mod device_identity;
 mod evaluation;
 mod federated;

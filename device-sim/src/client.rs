@@ -5,7 +5,11 @@
 //! Privacy: what leaves the device is exactly the `plimsoll.v1` requests —
 //! the participant's pseudonymous label, the names of its signals, the
 //! participant's consent choice about sharing flags, and per round and
-//! signal a parameter vector, a day count and a scalar loss. With consent,
+//! signal a parameter vector, a day count and a scalar loss. After training,
+//! for the detector's calibration ([`calibrate_detection`]): sums of same-day
+//! residual cross-products and pair counts (6×6), then episode counts on a
+//! fixed 150-threshold grid with the number of scored days; never a daily
+//! value or a score. With consent,
 //! and only then, one flag packet per alarm (see [`crate::packets`] for
 //! exactly what it holds), sent through a [`FlagSender`].
 //!
@@ -28,10 +32,15 @@ use tokio::sync::Semaphore;
 use tonic::transport::Channel;
 
 use crate::cohort::ParticipantSeries;
+use crate::detect::DetectConfig;
+use crate::detect::calibration::{
+    StudyCalibration, cohort_correlation, device_histogram, device_moments,
+};
 use crate::device_report::detect_and_write;
 use crate::flags::{FlagConfig, FlagLevel};
 use crate::packets::{DayRow, FlagFacts, build_packet};
 use crate::personal::{DayBand, posterior_bands, standardised, write_posterior_csv};
+use crate::prior::PriorParams;
 use crate::retry::{Backoff, retry};
 use crate::signal::Signal;
 use crate::training::{LocalSeries, LocalUpdate, train_local};
@@ -208,6 +217,198 @@ pub struct DeviceReport {
     pub alerts: usize,
     /// Flag packets sent to reviewers (0 without consent).
     pub packets_sent: usize,
+    /// The study's detector calibration as this device computed it from the published
+    /// sums (also written as `calibration.json` in the device's folder).
+    pub calibration: StudyCalibration,
+}
+
+/// File in the device's output folder holding its [`StudyCalibration`] (JSON).
+pub const CALIBRATION_FILE: &str = "calibration.json";
+
+/// The detector's federated calibration, run by a device after training (the
+/// `SubmitDetectionStats` / `GetDetectionCalibration` protocol):
+///
+/// 1. scores its own days against the final `priors` with independent signals and sends
+///    the residual moments (sums of cross-products and pair counts);
+/// 2. waits for the stage to complete and takes the cohort's correlation from the summed
+///    moments ([`cohort_correlation`]);
+/// 3. scores again with it and sends its episode histogram (episode counts per grid
+///    threshold and scored days);
+/// 4. waits, and sets the Alert and Watch thresholds from the summed histogram at the
+///    study's false-alarm budget (`Study.alert_budget_per_participant_month`).
+///
+/// Scoring runs on the blocking pool under a `cpu` permit. Every call carries the device's
+/// credential; submissions are retried on transient failures (a repeat replaces the same
+/// submission). Long-polls for `wait_ms` per call until a stage completes.
+///
+/// # Errors
+/// A refused call, a detection error, or sums of the wrong shape.
+pub async fn calibrate_detection(
+    channel: Channel,
+    credential: &DeviceCredential,
+    study_id: &str,
+    series: Arc<ParticipantSeries>,
+    priors: Arc<Vec<PriorParams>>,
+    wait_ms: u32,
+    cpu: Arc<Semaphore>,
+) -> anyhow::Result<StudyCalibration> {
+    use pb::detection_calibration::Sum;
+    use pb::submit_detection_stats_request::Stats;
+    let mut client = AggregatorClient::new(channel);
+    let device_id = credential.device_id;
+    let seed = seed_of(&series.participant) ^ 0xca1b;
+    let study = retry(&Backoff::default(), seed, || {
+        let mut c = client.clone();
+        let r = pb::GetStudyRequest {
+            study_id: study_id.to_owned(),
+        };
+        async move { c.get_study(r).await }
+    })
+    .await
+    .with_context(|| format!("GetStudy `{study_id}`"))?
+    .into_inner();
+    let budget = study.alert_budget_per_participant_month;
+    if !(budget.is_finite() && budget > 0.0) {
+        return Err(anyhow!(
+            "study `{study_id}` states no usable false-alarm budget ({budget})"
+        ));
+    }
+    let cfg = DetectConfig::default();
+
+    let moments = {
+        let (series, priors, cfg) = (series.clone(), priors.clone(), cfg.clone());
+        let permit = cpu.clone().acquire_owned().await?;
+        tokio::task::spawn_blocking(move || {
+            let _permit = permit;
+            device_moments(&series, &priors, &cfg)
+        })
+        .await??
+    };
+    submit_stats(
+        &mut client,
+        credential,
+        study_id,
+        Stats::ResidualMoments(wire::moments_to_pb(&moments)),
+        seed,
+    )
+    .await?;
+    let published = await_stage(
+        &mut client,
+        credential,
+        study_id,
+        pb::DetectionStage::ResidualMoments,
+        wait_ms,
+    )
+    .await?;
+    let moment_devices = published.devices_submitted;
+    let Some(Sum::ResidualMoments(sum)) = published.sum else {
+        return Err(anyhow!(
+            "GetDetectionCalibration for device {device_id}: the complete residual_moments stage carries no moment sums"
+        ));
+    };
+    let summed = wire::moments_from_pb("residual_moments", &sum)?;
+    let correlation = cohort_correlation(&summed);
+
+    let histogram = {
+        let (series, priors, cfg, corr) =
+            (series.clone(), priors.clone(), cfg, correlation.clone());
+        let permit = cpu.clone().acquire_owned().await?;
+        tokio::task::spawn_blocking(move || {
+            let _permit = permit;
+            device_histogram(&series, &priors, &corr, &cfg)
+        })
+        .await??
+    };
+    submit_stats(
+        &mut client,
+        credential,
+        study_id,
+        Stats::EpisodeHistogram(wire::histogram_to_pb(&histogram)),
+        seed ^ 1,
+    )
+    .await?;
+    let published = await_stage(
+        &mut client,
+        credential,
+        study_id,
+        pb::DetectionStage::EpisodeHistogram,
+        wait_ms,
+    )
+    .await?;
+    let Some(Sum::EpisodeHistogram(sum)) = published.sum else {
+        return Err(anyhow!(
+            "GetDetectionCalibration for device {device_id}: the complete episode_histogram stage carries no histogram"
+        ));
+    };
+    let summed = wire::histogram_from_pb("episode_histogram", &sum)?;
+    Ok(StudyCalibration::new(
+        correlation,
+        summed,
+        budget,
+        moment_devices,
+        published.devices_submitted,
+    ))
+}
+
+/// Sends one stage's statistics, retried on transient failures.
+async fn submit_stats(
+    client: &mut AggregatorClient<Channel>,
+    credential: &DeviceCredential,
+    study_id: &str,
+    stats: pb::submit_detection_stats_request::Stats,
+    seed: u64,
+) -> anyhow::Result<pb::SubmitDetectionStatsResponse> {
+    let request = pb::SubmitDetectionStatsRequest {
+        study_id: study_id.to_owned(),
+        device_id: credential.device_id,
+        stats: Some(stats),
+    };
+    Ok(retry(&Backoff::default(), seed, || {
+        let mut c = client.clone();
+        let r = authorized(credential, request.clone());
+        async move { c.submit_detection_stats(r).await }
+    })
+    .await
+    .with_context(|| format!("SubmitDetectionStats for device {}", credential.device_id))?
+    .into_inner())
+}
+
+/// Long-polls `GetDetectionCalibration` until `stage` is complete.
+async fn await_stage(
+    client: &mut AggregatorClient<Channel>,
+    credential: &DeviceCredential,
+    study_id: &str,
+    stage: pb::DetectionStage,
+    wait_ms: u32,
+) -> anyhow::Result<pb::DetectionCalibration> {
+    let request = pb::GetDetectionCalibrationRequest {
+        study_id: study_id.to_owned(),
+        device_id: credential.device_id,
+        stage: stage as i32,
+        wait_ms,
+    };
+    loop {
+        let view = retry(&Backoff::default(), credential.device_id, || {
+            let mut c = client.clone();
+            let r = authorized(credential, request.clone());
+            async move { c.get_detection_calibration(r).await }
+        })
+        .await
+        .with_context(|| {
+            format!(
+                "GetDetectionCalibration ({}) for device {}",
+                stage.as_str_name(),
+                credential.device_id
+            )
+        })?
+        .into_inner();
+        if view.complete {
+            return Ok(view);
+        }
+        if wait_ms == 0 {
+            tokio::time::sleep(Duration::from_millis(250)).await;
+        }
+    }
 }
 
 /// Runs one device to the end of the study, enrolled without consent to
@@ -339,7 +540,26 @@ pub async fn run_device_with(
     .await
     .context("GetPrior")?
     .into_inner();
-    let priors = wire::prior_from_pb(&prior).context("published prior")?;
+    let priors = Arc::new(wire::prior_from_pb(&prior).context("published prior")?);
+    let series = Arc::new(series);
+    let calibration = calibrate_detection(
+        channel.clone(),
+        &credential,
+        &opts.study_id,
+        series.clone(),
+        priors.clone(),
+        opts.wait_ms,
+        cpu.clone(),
+    )
+    .await?;
+    std::fs::create_dir_all(&opts.out_dir)
+        .with_context(|| format!("creating {}", opts.out_dir.display()))?;
+    let calibration_path = opts.out_dir.join(CALIBRATION_FILE);
+    std::fs::write(
+        &calibration_path,
+        serde_json::to_string_pretty(&calibration)? + "\n",
+    )
+    .with_context(|| format!("writing {}", calibration_path.display()))?;
     let permit = cpu.clone().acquire_owned().await?;
     let out_dir = opts.out_dir.clone();
     let packet_priors = priors.clone();
@@ -391,6 +611,7 @@ pub async fn run_device_with(
             .filter(|f| f.level == FlagLevel::Alert)
             .count(),
         packets_sent,
+        calibration,
     })
 }
 

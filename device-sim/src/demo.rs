@@ -73,7 +73,8 @@ pub struct FederatedRun {
 }
 
 /// Runs every participant of `cohort` as a device against a fresh aggregator
-/// with its database at `db_path`, until the study's rounds are done.
+/// with its database at `db_path`, through the study's rounds and the
+/// detector's calibration ([`crate::client::calibrate_detection`]).
 pub async fn run_federated(
     cohort: &Cohort,
     config: StudyConfig,
@@ -207,6 +208,8 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         round_deadline_ms: 120_000,
         selection_seed: 7,
         aggregation: Default::default(),
+        alert_budget_per_participant_month:
+            plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
     };
     let db_path = opts.out_dir.join("aggregator.db");
     for suffix in ["", "-wal", "-shm"] {
@@ -306,6 +309,19 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         "  per-device flags and report:    {}/<participant>/{{flags.csv,flags.json,prospective.csv,report.html}}",
         devices_dir.display()
     )?;
+    writeln!(
+        out,
+        "  per-device detector calibration: {}/<participant>/{}",
+        devices_dir.display(),
+        crate::client::CALIBRATION_FILE
+    )?;
+    if let Some(c) = run.reports.first().map(|r| &r.calibration) {
+        writeln!(
+            out,
+            "Detector calibrated over gRPC from {} devices' sums: Alert at score {:.1}, Watch at {:.1} (budget {} Alert episodes per participant-month).",
+            c.histogram_devices, c.alert.threshold, c.watch.threshold, c.budget_per_month
+        )?;
+    }
     let flags: usize = run.reports.iter().map(|r| r.flags).sum();
     let alerts: usize = run.reports.iter().map(|r| r.alerts).sum();
     let sent: usize = run.reports.iter().map(|r| r.packets_sent).sum();

@@ -106,6 +106,10 @@ enum Command {
         /// How long a round stays open, in minutes.
         #[arg(long, default_value_t = 60)]
         round_minutes: u32,
+        /// False-alarm budget of the detector: Alert episodes per
+        /// participant-month on the study's own data (Watch gets 3×).
+        #[arg(long, value_parser = parse_budget, default_value_t = DEFAULT_BUDGET_PER_MONTH)]
+        false_alarm_budget: f64,
         /// Output file (never overwritten).
         #[arg(long, default_value = "study.json")]
         out: PathBuf,
@@ -261,6 +265,7 @@ async fn main() -> anyhow::Result<()> {
             rounds,
             min_quorum,
             round_minutes,
+            false_alarm_budget,
             out,
         } => {
             let signals: Vec<Signal> = if signals.is_empty() {
@@ -286,6 +291,7 @@ async fn main() -> anyhow::Result<()> {
                 round_deadline_ms: u64::from(round_minutes) * 60_000,
                 selection_seed: rand::random(),
                 aggregation: Default::default(),
+                alert_budget_per_participant_month: false_alarm_budget,
             };
             config
                 .validate()
@@ -343,6 +349,11 @@ async fn main() -> anyhow::Result<()> {
             println!(
                 "device {} of `{}`: {} rounds trained, prior version {}",
                 report.device_id, opts.study_id, report.rounds_trained, report.prior_version
+            );
+            let c = &report.calibration;
+            println!(
+                "detector calibrated with {} devices: Alert at score {:.1}, Watch at {:.1} ({} Alert episodes per participant-month budget)",
+                c.histogram_devices, c.alert.threshold, c.watch.threshold, c.budget_per_month
             );
             println!(
                 "{} flags ({} Alerts), {} sent for review; outputs in {}",

@@ -27,6 +27,12 @@
 //! no timestamps finer than a date, no name or other identifier. Without
 //! consent nothing is sent ([`crate::client::FlagSender`] cannot be made)
 //! and the aggregator refuses packets from the device anyway.
+//!
+//! Besides packets and training updates, every device sends for the
+//! detector's calibration ([`crate::client::calibrate_detection`]) the sums
+//! of same-day residual cross-products and pair counts (6×6), and the
+//! episode counts on a fixed 150-threshold grid with the number of scored
+//! days: never a daily value or a score.
 
 use std::collections::BTreeMap;
 

@@ -4,6 +4,8 @@
 
 use plimsoll_proto::v1 as pb;
 
+use crate::detect::calibration::{EpisodeHistogram, N_EDGES};
+use crate::detect::joint::{N_SIGNALS, ResidualMoments};
 use crate::prior::PriorParams;
 use crate::signal::Signal;
 use crate::training::{LocalOptimizer, LocalSettings, LocalUpdate};
@@ -97,4 +99,70 @@ pub fn prior_from_pb(p: &pb::PublishedPrior) -> Result<Vec<PriorParams>, WireErr
         .enumerate()
         .map(|(i, sp)| params_from_pb(&format!("prior.params[{i}]"), sp))
         .collect()
+}
+
+/// A device's residual moments on the wire: 6×6 row-major, signals in [`Signal::ALL`]
+/// order (the proto's fixed order).
+pub fn moments_to_pb(m: &ResidualMoments) -> pb::ResidualMomentSums {
+    pb::ResidualMomentSums {
+        cross_products: m.cross.iter().flatten().copied().collect(),
+        pair_days: m.count.iter().flatten().copied().collect(),
+    }
+}
+
+/// Summed moments published by the aggregator.
+pub fn moments_from_pb(
+    field: &str,
+    m: &pb::ResidualMomentSums,
+) -> Result<ResidualMoments, WireError> {
+    let n = N_SIGNALS * N_SIGNALS;
+    if m.cross_products.len() != n || m.pair_days.len() != n {
+        return Err(invalid(
+            field,
+            format!(
+                "expected {n} cross-products and {n} pair counts, got {} and {}",
+                m.cross_products.len(),
+                m.pair_days.len()
+            ),
+        ));
+    }
+    if let Some(i) = m.cross_products.iter().position(|v| !v.is_finite()) {
+        return Err(invalid(
+            format!("{field}.cross_products[{i}]"),
+            "not finite",
+        ));
+    }
+    let mut out = ResidualMoments::default();
+    for j in 0..N_SIGNALS {
+        for k in 0..N_SIGNALS {
+            out.cross[j][k] = m.cross_products[j * N_SIGNALS + k];
+            out.count[j][k] = m.pair_days[j * N_SIGNALS + k];
+        }
+    }
+    Ok(out)
+}
+
+/// A device's episode histogram on the wire.
+pub fn histogram_to_pb(h: &EpisodeHistogram) -> pb::EpisodeCounts {
+    pb::EpisodeCounts {
+        episodes: h.episodes.clone(),
+        scored_days: h.scored_days,
+    }
+}
+
+/// The summed histogram published by the aggregator.
+pub fn histogram_from_pb(
+    field: &str,
+    h: &pb::EpisodeCounts,
+) -> Result<EpisodeHistogram, WireError> {
+    if h.episodes.len() != N_EDGES {
+        return Err(invalid(
+            format!("{field}.episodes"),
+            format!("expected {N_EDGES} counts, got {}", h.episodes.len()),
+        ));
+    }
+    Ok(EpisodeHistogram {
+        episodes: h.episodes.clone(),
+        scored_days: h.scored_days,
+    })
 }

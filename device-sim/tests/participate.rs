@@ -100,6 +100,8 @@ async fn two_devices_take_part_over_tls_and_resume() {
                 round_deadline_ms: 120_000,
                 selection_seed: 5,
                 aggregation: Default::default(),
+                alert_budget_per_participant_month:
+                    plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
             },
             now_ms(),
         )

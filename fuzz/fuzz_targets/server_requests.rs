@@ -78,6 +78,7 @@ fn world() -> World {
                 round_deadline_ms: 600_000,
                 selection_seed: 1,
                 aggregation: Default::default(),
+                alert_budget_per_participant_month: plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
             },
             0,
         )

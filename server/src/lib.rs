@@ -6,9 +6,12 @@
 //! training never sends it a raw observation. Flag packets ([`packets`]) are
 //! the one exception, sent only by devices whose participant consented, and
 //! hold numbers the device already computed: the aggregator stores and shows
-//! them ([`review`]) and never fits or evaluates a model.
+//! them ([`review`]) and never fits or evaluates a model. The detector's
+//! calibration ([`detection`]) sends it fixed-length arrays of sums and
+//! counts, which it only validates, stores and adds up.
 
 pub mod aggregate;
+pub mod detection;
 pub mod error;
 pub mod packets;
 pub mod presentation;

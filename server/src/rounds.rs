@@ -1,5 +1,6 @@
 //! The round coordinator: enrolment, device selection, task hand-out,
-//! validation of submissions, FedAvg aggregation and deadline handling.
+//! validation of submissions, FedAvg aggregation and deadline handling,
+//! and the two stages of the detector's calibration after training.
 //!
 //! In-memory state mirrors the database; every change is written to the
 //! database first (one transaction each) and applied in memory only after the
@@ -16,10 +17,11 @@ use tokio::sync::watch;
 
 use plimsoll_proto::auth::{DeviceCredential, check_secret};
 
+use crate::detection::{DetectionStage, DetectionStats, StageView, StatsOutcome};
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
-use crate::store::{Store, StoredOpenRound};
+use crate::store::{CompletedStage, Store, StoredOpenRound};
 use crate::study::{
     Contribution, PriorVersion, SignalParams, SignalUpdate, StudyConfig, StudyStatus,
     SubmitOutcome, Work, valid_id,
@@ -55,12 +57,19 @@ struct StudyRuntime {
     rounds_completed: u32,
     last_round_id: u64,
     open: Option<OpenRound>,
+    /// Which calibration stages are complete (by [`DetectionStage::index`]);
+    /// the database holds the rest of their state.
+    detection_complete: [bool; 2],
 }
 
 impl StudyRuntime {
     /// Enrolled devices that were not revoked.
     fn active_devices(&self) -> usize {
         self.devices.values().filter(|d| !d.revoked).count()
+    }
+
+    fn training_done(&self) -> bool {
+        self.rounds_completed >= self.config.rounds
     }
 }
 
@@ -138,6 +147,10 @@ impl Coordinator {
                 members: r.members.into_iter().collect(),
                 submissions: r.submissions.into_iter().collect(),
             });
+            let mut detection_complete = [false; 2];
+            for stage in DetectionStage::ALL {
+                detection_complete[stage.index()] = store.completed_stage(&id, stage)?.is_some();
+            }
             let mut runtime = StudyRuntime {
                 rounds_completed: store.rounds_completed(&id)?,
                 last_round_id: store.last_round_id(&id)?,
@@ -146,6 +159,7 @@ impl Coordinator {
                 labels,
                 latest,
                 open,
+                detection_complete,
             };
             // A crash between the last accepted submission and the closing
             // transaction leaves a complete round open: finish it now.
@@ -226,6 +240,7 @@ impl Coordinator {
                 rounds_completed: 0,
                 last_round_id: 0,
                 open: None,
+                detection_complete: [false; 2],
             },
         );
         Ok(code)
@@ -256,6 +271,16 @@ impl Coordinator {
             d.revoked = true;
         }
         tracing::warn!(study = %study_id, device_id = id, "device revoked");
+        // The revoked device may have been the last one a calibration stage
+        // was waiting for.
+        let mut completed = false;
+        for stage in DetectionStage::ALL {
+            completed |= complete_stage_if_due(store, rt, stage, now_ms)?;
+        }
+        drop(state);
+        if completed {
+            self.notify();
+        }
         Ok(id)
     }
 
@@ -595,6 +620,15 @@ impl Coordinator {
         let State { store, studies } = &mut *state;
         let mut changed = false;
         for rt in studies.values_mut() {
+            for stage in DetectionStage::ALL {
+                if rt.detection_complete[stage.index()] {
+                    continue;
+                }
+                let due = stage_deadline_ms(store, rt, stage)?.is_some_and(|d| now_ms > d);
+                if due {
+                    changed |= complete_stage_if_due(store, rt, stage, now_ms)?;
+                }
+            }
             let Some(open) = &rt.open else { continue };
             if now_ms <= open.deadline_ms {
                 continue;
@@ -680,6 +714,121 @@ impl Coordinator {
         check_flag_consent(rt, study_id, device_id)
     }
 
+    /// Validates and stores a device's contribution to a calibration stage
+    /// (the stage is the one `stats` belongs to), replacing its earlier one
+    /// while the stage is open, and completes the stage when this was the
+    /// last expected submission (completion rule: [`complete_stage_if_due`]).
+    /// Once the stage is complete an identical resubmission is answered as
+    /// before and a different one is refused (FAILED_PRECONDITION naming
+    /// `stage`): the published sum never changes.
+    pub fn submit_detection_stats(
+        &self,
+        study_id: &str,
+        device_id: u64,
+        stats: &DetectionStats,
+        now_ms: i64,
+    ) -> Result<StatsOutcome> {
+        stats.validate()?;
+        let stage = stats.stage();
+        let mut state = self.lock();
+        let State { store, studies } = &mut *state;
+        let rt = study_mut(studies, study_id)?;
+        if !rt.devices.contains_key(&device_id) {
+            return Err(unknown_device(study_id, device_id));
+        }
+        if let Some(done) = store.completed_stage(study_id, stage)? {
+            let mine = store
+                .detection_submissions(study_id, stage)?
+                .into_iter()
+                .find(|(d, _)| *d == device_id);
+            if mine.is_some_and(|(_, s)| &s == stats) {
+                return Ok(StatsOutcome {
+                    devices_submitted: done.n_devices,
+                    stage_complete: true,
+                });
+            }
+            return Err(AggregatorError::FailedPrecondition(format!(
+                "stage: {} of study `{study_id}` is complete and its sum is published; it \
+                 takes no new or changed submission",
+                stage.as_str()
+            )));
+        }
+        if stage_deadline_ms(store, rt, stage)?.is_none() {
+            return Err(AggregatorError::FailedPrecondition(format!(
+                "stage: {} of study `{study_id}` is not open yet ({})",
+                stage.as_str(),
+                match stage {
+                    DetectionStage::ResidualMoments => format!(
+                        "it opens when training ends; {} of {} rounds completed",
+                        rt.rounds_completed, rt.config.rounds
+                    ),
+                    DetectionStage::EpisodeHistogram =>
+                        "it opens when the residual_moments stage is complete".to_owned(),
+                }
+            )));
+        }
+        let mut submitters = store.detection_submitters(study_id, stage)?;
+        submitters.insert(device_id);
+        let completed = due_completion(store, rt, stage, &submitters, now_ms)?
+            .then(|| summed(store, study_id, stage, Some((device_id, stats)), now_ms))
+            .transpose()?;
+        store.put_detection_stats(study_id, device_id, stats, completed.as_ref(), now_ms)?;
+        let stage_complete = completed.is_some();
+        if stage_complete {
+            rt.detection_complete[stage.index()] = true;
+            tracing::info!(study = %study_id, stage = stage.as_str(), devices = submitters.len(), "calibration stage complete");
+        }
+        drop(state);
+        if stage_complete {
+            self.notify();
+        }
+        Ok(StatsOutcome {
+            devices_submitted: submitters.len() as u32,
+            stage_complete,
+        })
+    }
+
+    /// A calibration stage as `device_id` sees it; the sum only once the
+    /// stage is complete.
+    pub fn detection_stage(
+        &self,
+        study_id: &str,
+        device_id: u64,
+        stage: DetectionStage,
+    ) -> Result<StageView> {
+        let state = self.lock();
+        let rt = study(&state.studies, study_id)?;
+        let store = &state.store;
+        let devices_expected = rt.active_devices() as u32;
+        if let Some(done) = store.completed_stage(study_id, stage)? {
+            let submitters = store.detection_submitters(study_id, stage)?;
+            return Ok(StageView {
+                stage,
+                open: false,
+                complete: true,
+                devices_submitted: done.n_devices,
+                devices_expected,
+                device_submitted: submitters.contains(&device_id),
+                deadline_ms: stage_deadline_ms(store, rt, stage)?,
+                completed_ms: Some(done.completed_ms),
+                sum: Some(done.sum),
+            });
+        }
+        let deadline_ms = stage_deadline_ms(store, rt, stage)?;
+        let submitters = store.detection_submitters(study_id, stage)?;
+        Ok(StageView {
+            stage,
+            open: deadline_ms.is_some(),
+            complete: false,
+            devices_submitted: submitters.len() as u32,
+            devices_expected,
+            device_submitted: submitters.contains(&device_id),
+            deadline_ms,
+            completed_ms: None,
+            sum: None,
+        })
+    }
+
     /// SQLite's integrity report (`["ok"]` when sound).
     pub fn integrity_check(&self) -> Result<Vec<String>> {
         self.lock().store.integrity_check()
@@ -720,6 +869,113 @@ fn unknown_device(study_id: &str, device_id: u64) -> AggregatorError {
     AggregatorError::NotFound(format!(
         "device_id: device {device_id} is not enrolled in study `{study_id}`"
     ))
+}
+
+/// When `stage` opened plus the study's round deadline: the instant after
+/// which the stage completes with a quorum. `None` while the stage is not
+/// open: the residual-moments stage opens when the last round's prior is
+/// published, the episode-histogram stage when the moments stage completes.
+fn stage_deadline_ms(
+    store: &Store,
+    rt: &StudyRuntime,
+    stage: DetectionStage,
+) -> Result<Option<i64>> {
+    let opened_ms = match stage {
+        DetectionStage::ResidualMoments => rt.training_done().then_some(rt.latest.created_unix_ms),
+        DetectionStage::EpisodeHistogram => {
+            if !rt.detection_complete[DetectionStage::ResidualMoments.index()] {
+                return Ok(None);
+            }
+            store
+                .completed_stage(&rt.config.study_id, DetectionStage::ResidualMoments)?
+                .map(|c| c.completed_ms)
+        }
+    };
+    Ok(opened_ms.map(|t| t.saturating_add(rt.config.round_deadline_ms as i64)))
+}
+
+/// The completion rule of a calibration stage, given the devices that have
+/// submitted to it: every enrolled device that is not revoked has
+/// submitted, or the stage's deadline has passed and at least
+/// `min_quorum` devices have. Revocations are read from the database first
+/// (another process may have revoked a device).
+fn due_completion(
+    store: &Store,
+    rt: &mut StudyRuntime,
+    stage: DetectionStage,
+    submitters: &BTreeSet<u64>,
+    now_ms: i64,
+) -> Result<bool> {
+    if submitters.is_empty() || rt.detection_complete[stage.index()] {
+        return Ok(false);
+    }
+    let Some(deadline_ms) = stage_deadline_ms(store, rt, stage)? else {
+        return Ok(false);
+    };
+    for id in store.revoked_devices(&rt.config.study_id)? {
+        if let Some(d) = rt.devices.get_mut(&id) {
+            d.revoked = true;
+        }
+    }
+    let everyone = rt
+        .devices
+        .iter()
+        .filter(|(_, d)| !d.revoked)
+        .all(|(id, _)| submitters.contains(id));
+    let quorum = now_ms > deadline_ms && submitters.len() as u32 >= rt.config.min_quorum;
+    Ok(everyone || quorum)
+}
+
+/// The element-by-element sum of a stage's stored submissions, with
+/// `pending` (a device's submission not stored yet) in place of that
+/// device's stored one.
+fn summed(
+    store: &Store,
+    study_id: &str,
+    stage: DetectionStage,
+    pending: Option<(u64, &DetectionStats)>,
+    now_ms: i64,
+) -> Result<CompletedStage> {
+    let mut sum = DetectionStats::zero(stage);
+    let mut n_devices = 0u32;
+    for (device, stats) in store.detection_submissions(study_id, stage)? {
+        if pending.is_some_and(|(d, _)| d == device) {
+            continue;
+        }
+        sum.add(&stats);
+        n_devices += 1;
+    }
+    if let Some((_, stats)) = pending {
+        sum.add(stats);
+        n_devices += 1;
+    }
+    Ok(CompletedStage {
+        completed_ms: now_ms,
+        n_devices,
+        sum,
+    })
+}
+
+/// Completes `stage` when its completion rule holds now; true when it did.
+fn complete_stage_if_due(
+    store: &mut Store,
+    rt: &mut StudyRuntime,
+    stage: DetectionStage,
+    now_ms: i64,
+) -> Result<bool> {
+    if rt.detection_complete[stage.index()] {
+        return Ok(false);
+    }
+    let study_id = rt.config.study_id.clone();
+    let submitters = store.detection_submitters(&study_id, stage)?;
+    if !due_completion(store, rt, stage, &submitters, now_ms)? {
+        return Ok(false);
+    }
+    let completed = summed(store, &study_id, stage, None, now_ms)?;
+    store.complete_stage(&study_id, &completed)?;
+    rt.detection_complete[stage.index()] = true;
+    tracing::info!(study = %study_id, stage = stage.as_str(), devices = completed.n_devices, "calibration stage complete");
+    Ok(true)
 }
 
 /// Checks a submission's shape before anything is stored.

@@ -199,6 +199,58 @@ impl Aggregator for AggregatorService {
         .await?;
         Ok(Response::new(pb::SubmitFlagPacketResponse { packet_id }))
     }
+
+    async fn submit_detection_stats(
+        &self,
+        req: Request<pb::SubmitDetectionStatsRequest>,
+    ) -> Result<Response<pb::SubmitDetectionStatsResponse>, Status> {
+        let cred = credential("SubmitDetectionStats", &req)?;
+        let c = self.coordinator.clone();
+        let r = req.into_inner();
+        let outcome = blocking("SubmitDetectionStats", move || {
+            c.authenticate(&r.study_id, Some(r.device_id), &cred)?;
+            let stats = wire::detection_stats_from_pb(r.stats)?;
+            c.submit_detection_stats(&r.study_id, r.device_id, &stats, now_ms())
+        })
+        .await?;
+        Ok(Response::new(pb::SubmitDetectionStatsResponse {
+            devices_submitted: outcome.devices_submitted,
+            stage_complete: outcome.stage_complete,
+        }))
+    }
+
+    async fn get_detection_calibration(
+        &self,
+        req: Request<pb::GetDetectionCalibrationRequest>,
+    ) -> Result<Response<pb::DetectionCalibration>, Status> {
+        const RPC: &str = "GetDetectionCalibration";
+        let cred = credential(RPC, &req)?;
+        let r = req.into_inner();
+        let c = self.coordinator.clone();
+        let (study_id, device_id) = (r.study_id.clone(), r.device_id);
+        let stage = blocking(RPC, move || {
+            c.authenticate(&study_id, Some(device_id), &cred)?;
+            wire::detection_stage_from_pb(r.stage)
+        })
+        .await?;
+        let wait = Duration::from_millis(u64::from(r.wait_ms.min(MAX_WAIT_MS)));
+        let until = tokio::time::Instant::now() + wait;
+        let mut changes = self.coordinator.subscribe();
+        loop {
+            changes.borrow_and_update();
+            let c = self.coordinator.clone();
+            let study_id = r.study_id.clone();
+            let view = blocking(RPC, move || {
+                c.detection_stage(&study_id, r.device_id, stage)
+            })
+            .await?;
+            if view.complete || tokio::time::Instant::now() >= until {
+                return Ok(Response::new(wire::stage_view_to_pb(view)));
+            }
+            // Sleep until something completes, or the long-poll ends.
+            let _ = tokio::time::timeout_at(until, changes.changed()).await;
+        }
+    }
 }
 
 /// Closes rounds whose deadline passed, every `period`, until the coordinator

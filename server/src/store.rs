@@ -8,24 +8,29 @@
 //! synchronous"). Measured: about 2× the submissions per second of `FULL`.
 //!
 //! Federated training stores no raw observation: only study configuration, enrolment, round membership, submitted parameter
-//! vectors with their day counts and losses, and published priors. The one
+//! vectors with their day counts and losses, published priors, and the
+//! detector's calibration sums and counts (never a daily value). The one
 //! place observed values are kept is `flag_packets`, filled only from devices
 //! whose participant consented to share flags (see [`crate::packets`]).
 //!
 //! Schema versions: 1 is the federated-training schema; 2 adds the recorded
 //! consent on `devices`, flag packets, and the review tables (reviewers,
 //! their study assignments, sessions, and the append-only action log).
-//! Opening a version-1 database migrates it in one transaction.
+//! 3 adds enrollment codes, device credentials and revocation; 4 adds the
+//! detector's calibration statistics (per-device submissions and each
+//! stage's published sum, see [`crate::detection`]). Opening an older
+//! database migrates it in one transaction.
 
 use std::path::Path;
 
 use rusqlite::{Connection, OptionalExtension, params};
 
+use crate::detection::{DetectionStage, DetectionStats};
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::study::{PriorVersion, SignalUpdate, StudyConfig};
 
-const SCHEMA_VERSION: i64 = 3;
+const SCHEMA_VERSION: i64 = 4;
 
 /// Version 1: federated training.
 const SCHEMA_V1: &str = "
@@ -139,6 +144,40 @@ ALTER TABLE devices ADD COLUMN revoked_ms INTEGER;
 UPDATE schema_version SET version = 3;
 ";
 
+/// Version 3 → 4: the detector's calibration statistics. One row per
+/// device and stage in `detection_stats` (replaced when the device submits
+/// again while the stage is open); one row per completed stage in
+/// `detection_stages` with the published sum, written in the same
+/// transaction as the submission that completed it (or by the deadline
+/// check).
+const MIGRATE_V3_TO_V4: &str = "
+CREATE TABLE detection_stats (
+    study_id     TEXT NOT NULL REFERENCES studies(study_id),
+    stage        TEXT NOT NULL CHECK (stage IN ('residual_moments', 'episode_histogram')),
+    device_id    INTEGER NOT NULL REFERENCES devices(device_id),
+    payload_json TEXT NOT NULL,
+    received_ms  INTEGER NOT NULL,
+    PRIMARY KEY (study_id, stage, device_id)
+);
+CREATE TABLE detection_stages (
+    study_id     TEXT NOT NULL REFERENCES studies(study_id),
+    stage        TEXT NOT NULL CHECK (stage IN ('residual_moments', 'episode_histogram')),
+    completed_ms INTEGER NOT NULL,
+    n_devices    INTEGER NOT NULL,
+    sum_json     TEXT NOT NULL,
+    PRIMARY KEY (study_id, stage)
+);
+UPDATE schema_version SET version = 4;
+";
+
+/// A completed calibration stage as stored.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CompletedStage {
+    pub completed_ms: i64,
+    pub n_devices: u32,
+    pub sum: DetectionStats,
+}
+
 /// Who a device is, as the credential check needs it.
 #[derive(Debug, Clone, PartialEq)]
 pub struct DeviceIdentity {
@@ -216,15 +255,22 @@ impl Store {
                 tx.execute("INSERT INTO schema_version (version) VALUES (1)", [])?;
                 tx.execute_batch(MIGRATE_V1_TO_V2)?;
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
+                tx.execute_batch(MIGRATE_V3_TO_V4)?;
             }
             Some(1) => {
-                tracing::info!("migrating the aggregator database from schema 1 to 3");
+                tracing::info!("migrating the aggregator database from schema 1 to 4");
                 tx.execute_batch(MIGRATE_V1_TO_V2)?;
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
+                tx.execute_batch(MIGRATE_V3_TO_V4)?;
             }
             Some(2) => {
-                tracing::info!("migrating the aggregator database from schema 2 to 3");
+                tracing::info!("migrating the aggregator database from schema 2 to 4");
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
+                tx.execute_batch(MIGRATE_V3_TO_V4)?;
+            }
+            Some(3) => {
+                tracing::info!("migrating the aggregator database from schema 3 to 4");
+                tx.execute_batch(MIGRATE_V3_TO_V4)?;
             }
             Some(SCHEMA_VERSION) => {}
             Some(other) => {
@@ -725,12 +771,135 @@ impl Store {
         Ok(())
     }
 
+    /// Every device's stored submission to a stage, by device id.
+    pub fn detection_submissions(
+        &self,
+        study_id: &str,
+        stage: DetectionStage,
+    ) -> Result<Vec<(u64, DetectionStats)>> {
+        let mut stmt = self.conn.prepare_cached(
+            "SELECT device_id, payload_json FROM detection_stats
+             WHERE study_id = ?1 AND stage = ?2 ORDER BY device_id",
+        )?;
+        let rows = stmt.query_map(params![study_id, stage.as_str()], |r| {
+            Ok((r.get::<_, i64>(0)?, r.get::<_, String>(1)?))
+        })?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (device, json) = row?;
+            let stats = serde_json::from_str(&json)
+                .map_err(|e| corrupt(&format!("{} of device {device}", stage.as_str()), e))?;
+            out.push((device as u64, stats));
+        }
+        Ok(out)
+    }
+
+    /// Ids of the devices with a stored submission to a stage.
+    pub fn detection_submitters(
+        &self,
+        study_id: &str,
+        stage: DetectionStage,
+    ) -> Result<std::collections::BTreeSet<u64>> {
+        let mut stmt = self.conn.prepare_cached(
+            "SELECT device_id FROM detection_stats WHERE study_id = ?1 AND stage = ?2",
+        )?;
+        let ids = stmt.query_map(params![study_id, stage.as_str()], |r| r.get::<_, i64>(0))?;
+        Ok(ids
+            .map(|id| id.map(|id| id as u64))
+            .collect::<std::result::Result<_, _>>()?)
+    }
+
+    /// A completed stage's published sum, if the stage is complete.
+    pub fn completed_stage(
+        &self,
+        study_id: &str,
+        stage: DetectionStage,
+    ) -> Result<Option<CompletedStage>> {
+        let row: Option<(i64, i64, String)> = self
+            .conn
+            .prepare_cached(
+                "SELECT completed_ms, n_devices, sum_json FROM detection_stages
+                 WHERE study_id = ?1 AND stage = ?2",
+            )?
+            .query_row(params![study_id, stage.as_str()], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?))
+            })
+            .optional()?;
+        row.map(|(completed_ms, n, json)| {
+            Ok(CompletedStage {
+                completed_ms,
+                n_devices: n as u32,
+                sum: serde_json::from_str(&json)
+                    .map_err(|e| corrupt(&format!("published {}", stage.as_str()), e))?,
+            })
+        })
+        .transpose()
+    }
+
+    /// Stores (or replaces) a device's submission to a stage and, when
+    /// `complete` is given, publishes the stage's sum, in one transaction.
+    pub fn put_detection_stats(
+        &mut self,
+        study_id: &str,
+        device_id: u64,
+        stats: &DetectionStats,
+        complete: Option<&CompletedStage>,
+        now_ms: i64,
+    ) -> Result<()> {
+        let tx = self.conn.transaction()?;
+        tx.execute(
+            "INSERT INTO detection_stats (study_id, stage, device_id, payload_json, received_ms)
+             VALUES (?1, ?2, ?3, ?4, ?5)
+             ON CONFLICT (study_id, stage, device_id)
+             DO UPDATE SET payload_json = excluded.payload_json, received_ms = excluded.received_ms",
+            params![
+                study_id,
+                stats.stage().as_str(),
+                device_id as i64,
+                to_json(stats),
+                now_ms
+            ],
+        )?;
+        if let Some(c) = complete {
+            insert_completed_stage(&tx, study_id, c)?;
+        }
+        tx.commit()?;
+        Ok(())
+    }
+
+    /// Publishes a stage's sum (completion at the deadline).
+    pub fn complete_stage(&mut self, study_id: &str, completed: &CompletedStage) -> Result<()> {
+        let tx = self.conn.transaction()?;
+        insert_completed_stage(&tx, study_id, completed)?;
+        tx.commit()?;
+        Ok(())
+    }
+
     /// Runs SQLite's own consistency check; returns its report lines.
     pub fn integrity_check(&self) -> Result<Vec<String>> {
         let mut stmt = self.conn.prepare("PRAGMA integrity_check")?;
         let rows = stmt.query_map([], |r| r.get::<_, String>(0))?;
         Ok(rows.collect::<rusqlite::Result<Vec<_>>>()?)
     }
+}
+
+fn insert_completed_stage(
+    tx: &rusqlite::Transaction<'_>,
+    study_id: &str,
+    c: &CompletedStage,
+) -> Result<()> {
+    tx.execute(
+        "INSERT INTO detection_stages (study_id, stage, completed_ms, n_devices, sum_json)
+         VALUES (?1, ?2, ?3, ?4, ?5)",
+        params![
+            study_id,
+            c.sum.stage().as_str(),
+            c.completed_ms,
+            c.n_devices,
+            to_json(&c.sum)
+        ],
+    )?;
+    Ok(())
 }
 
 fn insert_prior(
@@ -809,6 +978,27 @@ mod tests {
             "old devices have no credential"
         );
         assert_eq!(store.enrollment_code_hash("s").unwrap(), None);
+        // Version 4's tables exist after migrating, empty (common practice:
+        // a migration test checks the new schema objects are there).
+        for table in ["detection_stats", "detection_stages"] {
+            let n: i64 = store
+                .conn()
+                .query_row(&format!("SELECT COUNT(*) FROM {table}"), [], |r| r.get(0))
+                .unwrap_or_else(|e| panic!("table {table} after migrating: {e}"));
+            assert_eq!(n, 0, "{table}");
+        }
+        assert!(
+            store
+                .detection_submissions("s", DetectionStage::ResidualMoments)
+                .unwrap()
+                .is_empty()
+        );
+        assert_eq!(
+            store
+                .completed_stage("s", DetectionStage::EpisodeHistogram)
+                .unwrap(),
+            None
+        );
         drop(store);
         // Opening again is a no-op.
         assert_eq!(

@@ -76,6 +76,19 @@ pub struct StudyConfig {
     /// How submissions are combined (FedAvg unless set).
     #[serde(default)]
     pub aggregation: crate::aggregate::Aggregation,
+    /// False-alarm budget of the detector: Alert episodes per
+    /// participant-month on the study's own data (Watch gets 3×). Devices
+    /// calibrate their thresholds to it; > 0.
+    #[serde(default = "default_alert_budget")]
+    pub alert_budget_per_participant_month: f64,
+}
+
+/// Default false-alarm budget: 0.3 Alert episodes per participant-month
+/// (about one in three months).
+pub const DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH: f64 = 0.3;
+
+fn default_alert_budget() -> f64 {
+    DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH
 }
 
 impl StudyConfig {
@@ -126,6 +139,13 @@ impl StudyConfig {
         }
         if self.round_deadline_ms == 0 {
             return Err("round_deadline_ms must be positive".into());
+        }
+        let budget = self.alert_budget_per_participant_month;
+        // Above 30 per participant-month an Alert would be expected daily.
+        if !(budget.is_finite() && budget > 0.0 && budget <= 30.0) {
+            return Err(format!(
+                "alert_budget_per_participant_month must be in (0, 30], got {budget}"
+            ));
         }
         self.aggregation.validate()
     }

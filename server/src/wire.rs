@@ -4,6 +4,7 @@
 use plimsoll_proto::v1 as pb;
 use tonic::Status;
 
+use crate::detection::{DetectionStage, DetectionStats, StageView};
 use crate::error::{AggregatorError, Result};
 use crate::packets::{
     DayStatus, FlagKind, FlagLevel, FlagPacket, PopulationBand, SignalWindow, WindowDay,
@@ -112,6 +113,79 @@ pub fn status_to_pb(s: &StudyStatus) -> pb::Study {
         devices_enrolled: s.devices_enrolled,
         prior_version: s.prior_version,
         min_quorum: s.config.min_quorum,
+        alert_budget_per_participant_month: s.config.alert_budget_per_participant_month,
+    }
+}
+
+/// The statistics of a `SubmitDetectionStats` request (exactly one stage's
+/// message must be set). Their values are checked by
+/// [`DetectionStats::validate`].
+pub fn detection_stats_from_pb(
+    stats: Option<pb::submit_detection_stats_request::Stats>,
+) -> Result<DetectionStats> {
+    use pb::submit_detection_stats_request::Stats;
+    match stats {
+        Some(Stats::ResidualMoments(m)) => Ok(DetectionStats::ResidualMoments {
+            cross_products: m.cross_products,
+            pair_days: m.pair_days,
+        }),
+        Some(Stats::EpisodeHistogram(h)) => Ok(DetectionStats::EpisodeHistogram {
+            episodes: h.episodes,
+            scored_days: h.scored_days,
+        }),
+        None => Err(AggregatorError::invalid(
+            "stats",
+            "missing: set residual_moments or episode_histogram",
+        )),
+    }
+}
+
+/// The stage named in a `GetDetectionCalibration` request.
+pub fn detection_stage_from_pb(stage: i32) -> Result<DetectionStage> {
+    match pb::DetectionStage::try_from(stage) {
+        Ok(pb::DetectionStage::ResidualMoments) => Ok(DetectionStage::ResidualMoments),
+        Ok(pb::DetectionStage::EpisodeHistogram) => Ok(DetectionStage::EpisodeHistogram),
+        _ => Err(AggregatorError::invalid(
+            "stage",
+            format!("unknown or unspecified detection stage {stage}"),
+        )),
+    }
+}
+
+fn detection_stage_to_pb(stage: DetectionStage) -> pb::DetectionStage {
+    match stage {
+        DetectionStage::ResidualMoments => pb::DetectionStage::ResidualMoments,
+        DetectionStage::EpisodeHistogram => pb::DetectionStage::EpisodeHistogram,
+    }
+}
+
+pub fn stage_view_to_pb(v: StageView) -> pb::DetectionCalibration {
+    use pb::detection_calibration::Sum;
+    pb::DetectionCalibration {
+        stage: detection_stage_to_pb(v.stage) as i32,
+        open: v.open,
+        complete: v.complete,
+        devices_submitted: v.devices_submitted,
+        devices_expected: v.devices_expected,
+        device_submitted: v.device_submitted,
+        deadline_unix_ms: v.deadline_ms.unwrap_or(0),
+        completed_unix_ms: v.completed_ms.unwrap_or(0),
+        sum: v.sum.map(|s| match s {
+            DetectionStats::ResidualMoments {
+                cross_products,
+                pair_days,
+            } => Sum::ResidualMoments(pb::ResidualMomentSums {
+                cross_products,
+                pair_days,
+            }),
+            DetectionStats::EpisodeHistogram {
+                episodes,
+                scored_days,
+            } => Sum::EpisodeHistogram(pb::EpisodeCounts {
+                episodes,
+                scored_days,
+            }),
+        }),
     }
 }
 

@@ -1,10 +1,19 @@
 //! Empirical calibration of the alert thresholds from fixed-bin episode counts (module docs
-//! of [`super`], "Calibration").
+//! of [`super`], "Calibration"), and what a device computes for, and keeps from, the study's
+//! federated calibration ([`device_moments`], [`device_histogram`], [`StudyCalibration`]).
 
 use serde::{Deserialize, Serialize};
 
-use super::DayScore;
 use super::episodes::{Grouping, episode_counts};
+use super::joint::{CORRELATION_SHRINK_DAYS, Correlation, ResidualMoments};
+use super::{DayScore, DetectConfig, score_participant};
+use crate::cohort::ParticipantSeries;
+use crate::prior::PriorParams;
+use crate::prospective::{DailyFilter, Result, StateSpacePrior};
+use crate::signal::Signal;
+
+/// Watch thresholds are calibrated to this many times the Alert budget.
+pub const WATCH_BUDGET_FACTOR: f64 = 3.0;
 
 /// Days per month used for every per-month rate (365.25 / 12).
 pub const DAYS_PER_MONTH: f64 = 30.4375;
@@ -122,5 +131,109 @@ pub fn once_in(rate_per_month: f64) -> String {
         format!("about once in {months:.1} participant-months")
     } else {
         format!("about once in {:.0} participant-months", months)
+    }
+}
+
+/// The one-step predictor of the shared prior (its exact Kalman filter) for every signal of
+/// `priors` that `series` has: the predictors the detector runs on a device (the `federated`
+/// method of the evaluation).
+///
+/// # Errors
+/// An invalid prior.
+pub fn shared_prior_filters(
+    series: &ParticipantSeries,
+    priors: &[PriorParams],
+) -> Result<Vec<(Signal, DailyFilter)>> {
+    priors
+        .iter()
+        .filter(|p| series.values.contains_key(&p.signal))
+        .map(|p| Ok((p.signal, DailyFilter::new(&StateSpacePrior::new(p)?))))
+        .collect()
+}
+
+/// Stage 1 of the federated calibration, on the device: the residual moments of its own
+/// days, scored against the shared prior with independent signals
+/// ([`Correlation::identity`]). Sums of cross-products and pair counts only.
+///
+/// # Errors
+/// As [`score_participant`].
+pub fn device_moments(
+    series: &ParticipantSeries,
+    priors: &[PriorParams],
+    cfg: &DetectConfig,
+) -> Result<ResidualMoments> {
+    let filters = shared_prior_filters(series, priors)?;
+    Ok(score_participant(series, filters, &Correlation::identity(), cfg)?.moments)
+}
+
+/// Stage 2, on the device: the episode histogram of its own days scored with the cohort's
+/// correlation `corr` (from the summed moments, [`cohort_correlation`]), grouped by `cfg`'s
+/// rule. Counts only.
+///
+/// # Errors
+/// As [`score_participant`].
+pub fn device_histogram(
+    series: &ParticipantSeries,
+    priors: &[PriorParams],
+    corr: &Correlation,
+    cfg: &DetectConfig,
+) -> Result<EpisodeHistogram> {
+    let filters = shared_prior_filters(series, priors)?;
+    let scores = score_participant(series, filters, corr, cfg)?;
+    Ok(EpisodeHistogram::from_days(&scores.days, cfg.grouping()))
+}
+
+/// The cohort's cross-signal correlation from the summed moments, shrunk by
+/// [`CORRELATION_SHRINK_DAYS`] (as the evaluation does).
+pub fn cohort_correlation(summed: &ResidualMoments) -> Correlation {
+    summed.correlation(CORRELATION_SHRINK_DAYS)
+}
+
+/// What a device keeps from the study's federated calibration: the cohort's correlation,
+/// the thresholds at the study's false-alarm budget, and the summed histogram they came
+/// from (for stated odds: [`StudyCalibration::rate_at`]). Written as `calibration.json`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct StudyCalibration {
+    /// Cross-signal correlation of the residuals, learned from the cohort's summed moments.
+    pub correlation: Correlation,
+    /// The study's Alert budget: episodes per participant-month.
+    pub budget_per_month: f64,
+    /// Alert threshold: at most `budget_per_month` episodes per participant-month.
+    pub alert: Calibrated,
+    /// Watch threshold: at most [`WATCH_BUDGET_FACTOR`] × the budget.
+    pub watch: Calibrated,
+    /// The cohort's summed episode histogram.
+    pub histogram: EpisodeHistogram,
+    /// Devices whose moments entered the correlation.
+    pub moment_devices: u32,
+    /// Devices whose histogram entered the thresholds.
+    pub histogram_devices: u32,
+}
+
+impl StudyCalibration {
+    /// The thresholds for `budget_per_month` (Alert) and [`WATCH_BUDGET_FACTOR`] times it
+    /// (Watch) from the cohort's summed `histogram`, as the evaluation calibrates.
+    pub fn new(
+        correlation: Correlation,
+        histogram: EpisodeHistogram,
+        budget_per_month: f64,
+        moment_devices: u32,
+        histogram_devices: u32,
+    ) -> StudyCalibration {
+        StudyCalibration {
+            alert: histogram.threshold_for(budget_per_month),
+            watch: histogram.threshold_for(WATCH_BUDGET_FACTOR * budget_per_month),
+            correlation,
+            budget_per_month,
+            histogram,
+            moment_devices,
+            histogram_devices,
+        }
+    }
+
+    /// How often an episode peaking at `score` starts on this study's data, per
+    /// participant-month ([`EpisodeHistogram::rate_at`]; [`once_in`] words it).
+    pub fn rate_at(&self, score: f64) -> f64 {
+        self.histogram.rate_at(score)
     }
 }

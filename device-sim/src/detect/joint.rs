@@ -10,6 +10,11 @@ use crate::signal::Signal;
 /// Number of signals.
 pub const N_SIGNALS: usize = Signal::ALL.len();
 
+/// Pseudo-days by which the learned correlation is shrunk towards the identity
+/// ([`ResidualMoments::correlation`]); used by the evaluation and by devices after the
+/// federated calibration.
+pub const CORRELATION_SHRINK_DAYS: f64 = 200.0;
+
 /// Position of a signal in [`Signal::ALL`].
 pub fn signal_index(signal: Signal) -> usize {
     Signal::ALL

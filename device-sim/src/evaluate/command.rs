@@ -204,6 +204,8 @@ pub async fn learn_prior(
         round_deadline_ms: 120_000,
         selection_seed: 7,
         aggregation: Default::default(),
+        alert_budget_per_participant_month:
+            plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
     };
     let (first, version) = federated_pass(
         &training_cohort,

@@ -41,11 +41,8 @@ pub const DEFAULT_TARGET_KIND: &str = "acute_illness";
 /// Default false-alarm budget: Alert episodes per participant-month.
 pub const DEFAULT_BUDGET_PER_MONTH: f64 = 0.3;
 
-/// Watch thresholds are calibrated to this many times the Alert budget.
-pub const WATCH_BUDGET_FACTOR: f64 = 3.0;
-
-/// Pseudo-days by which the learned correlation is shrunk towards the identity.
-pub const CORRELATION_SHRINK_DAYS: f64 = 200.0;
+pub use crate::detect::calibration::WATCH_BUDGET_FACTOR;
+pub use crate::detect::joint::CORRELATION_SHRINK_DAYS;
 
 /// How to evaluate.
 #[derive(Debug, Clone, PartialEq)]
