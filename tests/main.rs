@@ -3,6 +3,7 @@
 mod cohort_io;
 mod cusum_arl;
 mod device_identity;
+mod episodes;
 mod evaluation;
 mod federated;
 mod flag_packets;

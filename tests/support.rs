@@ -29,6 +29,7 @@ pub fn study_config(id: &str, signals: &[Signal], devices: u32, rounds: u32) -> 
         round_deadline_ms: 600_000,
         selection_seed: 1,
         aggregation: Default::default(),
+        review_level: plimsoll_server::packets::FlagLevel::Alert,
     }
 }
 

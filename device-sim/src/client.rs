@@ -6,8 +6,9 @@
 //! the participant's pseudonymous label, the names of its signals, the
 //! participant's consent choice about sharing flags, and per round and
 //! signal a parameter vector, a day count and a scalar loss. With consent,
-//! and only then, one flag packet per alarm (see [`crate::packets`] for
-//! exactly what it holds), sent through a [`FlagSender`].
+//! and only then, one flag packet per episode at or above the study's
+//! review level (see [`crate::packets`] for exactly what it holds), sent
+//! through a [`FlagSender`].
 //!
 //! Identity: the device enrols with the study's enrollment code and a
 //! 256-bit secret it draws itself ([`new_device_secret`]); every later call
@@ -28,9 +29,10 @@ use tokio::sync::Semaphore;
 use tonic::transport::Channel;
 
 use crate::cohort::ParticipantSeries;
+use crate::detect::calibration::StudyCalibration;
 use crate::device_report::detect_and_write;
-use crate::flags::{FlagConfig, FlagLevel};
-use crate::packets::{DayRow, FlagFacts, build_packet};
+use crate::flags::FlagLevel;
+use crate::packets::build_packet;
 use crate::personal::{DayBand, posterior_bands, standardised, write_posterior_csv};
 use crate::retry::{Backoff, retry};
 use crate::signal::Signal;
@@ -55,6 +57,10 @@ pub struct DeviceOptions {
     /// The device's secret from an earlier run (enrolling again with it is
     /// a retry that returns the same device id); `None` draws a new one.
     pub device_secret: Option<String>,
+    /// The study's detection calibration (correlation, thresholds, episode
+    /// histogram); [`StudyCalibration::uncalibrated`] until the study has
+    /// run a calibration phase, and every reason then says so.
+    pub calibration: StudyCalibration,
 }
 
 /// The participant's choice, recorded at enrolment, about sharing flag
@@ -64,7 +70,8 @@ pub enum FlagSharing {
     /// Nothing about flags leaves the device (the default).
     #[default]
     Withheld,
-    /// One packet per alarm may be sent to the aggregator.
+    /// One packet per episode (at or above the study's review level) may be
+    /// sent to the aggregator.
     Consented,
 }
 
@@ -166,8 +173,9 @@ impl FlagSender {
         })
     }
 
-    /// Sends one packet; returns the aggregator's id for it. Resending the
-    /// same packet returns the same id.
+    /// Sends one packet; returns the aggregator's id for its episode.
+    /// Resending the same packet, or a newer version of the same episode
+    /// (same key), returns the same id.
     pub async fn send(&mut self, packet: &crate::packets::FlagPacket) -> anyhow::Result<u64> {
         crate::packets::check(packet)?;
         let device_id = self.credential.device_id;
@@ -185,8 +193,8 @@ impl FlagSender {
             .await
             .with_context(|| {
                 format!(
-                    "SubmitFlagPacket for device {device_id} (flag of {})",
-                    packet.flag.date
+                    "SubmitFlagPacket for device {device_id} (episode {})",
+                    packet.flag.key
                 )
             })?;
         Ok(response.into_inner().packet_id)
@@ -202,11 +210,12 @@ pub struct DeviceReport {
     pub prior_version: u32,
     pub bands: Vec<(Signal, Vec<DayBand>)>,
     pub posterior_csv: PathBuf,
-    /// Flags raised on the device (all levels).
+    /// Episodes flagged on the device (along the study's pattern, all
+    /// levels; episodes in the opposite direction are recorded only).
     pub flags: usize,
     /// Of those, Alerts.
     pub alerts: usize,
-    /// Flag packets sent to reviewers (0 without consent).
+    /// Flag packets (one per episode) sent to reviewers (0 without consent).
     pub packets_sent: usize,
 }
 
@@ -343,6 +352,7 @@ pub async fn run_device_with(
     let permit = cpu.clone().acquire_owned().await?;
     let out_dir = opts.out_dir.clone();
     let packet_priors = priors.clone();
+    let calibration = opts.calibration.clone();
     let (bands, posterior_csv, detection) =
         tokio::task::spawn_blocking(move || -> anyhow::Result<_> {
             let _permit = permit;
@@ -357,22 +367,19 @@ pub async fn run_device_with(
             let path = out_dir.join("posterior.csv");
             write_posterior_csv(&path, &bands)
                 .with_context(|| format!("writing {}", path.display()))?;
-            let detection = detect_and_write(&out_dir, &series, &priors, &FlagConfig::default())?;
+            let detection = detect_and_write(&out_dir, &series, &priors, &calibration)?;
             Ok((bands, path, detection))
         })
         .await??;
-    // With consent, one packet per Alert (the alarm level) goes to the
-    // reviewers; without it `FlagSender::new` gives no sender and nothing
-    // leaves the device.
+    // With consent, one packet per episode at or above the study's review
+    // level goes to the reviewers (sent again under the same key when a
+    // later run finds it grown); without it `FlagSender::new` gives no
+    // sender and nothing leaves the device.
     let mut packets_sent = 0;
     if let Some(mut sender) = FlagSender::new(channel, &opts.study_id, credential, sharing) {
-        let rows: Vec<DayRow> = detection.days.iter().map(DayRow::from).collect();
-        for flag in detection
-            .flags
-            .iter()
-            .filter(|f| f.level == FlagLevel::Alert)
-        {
-            let packet = build_packet(&FlagFacts::from(flag), &rows, &packet_priors)?;
+        let review_level = study_review_level(&mut client, &opts.study_id).await?;
+        for flag in detection.for_review(review_level) {
+            let packet = build_packet(flag, &detection.rows, &packet_priors)?;
             sender.send(&packet).await?;
             packets_sent += 1;
         }
@@ -384,14 +391,30 @@ pub async fn run_device_with(
         prior_version,
         bands,
         posterior_csv,
-        flags: detection.flags.len(),
-        alerts: detection
-            .flags
-            .iter()
-            .filter(|f| f.level == FlagLevel::Alert)
-            .count(),
+        flags: detection.episodes.iter().filter(|e| e.alerted()).count(),
+        alerts: detection.for_review(FlagLevel::Alert).count(),
         packets_sent,
     })
+}
+
+/// The study's lowest level sent for review, from `GetStudy`.
+pub async fn study_review_level(
+    client: &mut AggregatorClient<Channel>,
+    study_id: &str,
+) -> anyhow::Result<FlagLevel> {
+    let request = pb::GetStudyRequest {
+        study_id: study_id.to_owned(),
+    };
+    let study = retry(&Backoff::default(), seed_of(study_id), || {
+        let mut c = client.clone();
+        let r = request.clone();
+        async move { c.get_study(r).await }
+    })
+    .await
+    .with_context(|| format!("GetStudy for study {study_id}"))?
+    .into_inner();
+    wire::review_level_from_pb(study.review_level)
+        .with_context(|| format!("GetStudy for study {study_id}"))
 }
 
 /// One round of local training for every signal in the task.

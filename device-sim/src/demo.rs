@@ -123,6 +123,7 @@ pub async fn run_federated_with(
             wait_ms: 5_000,
             seed: 0x5eed_0000 + i as u64,
             device_secret: None,
+            calibration: crate::detect::calibration::StudyCalibration::uncalibrated(),
         };
         tasks.spawn(run_device_with(
             channel.clone(),
@@ -207,6 +208,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         round_deadline_ms: 120_000,
         selection_seed: 7,
         aggregation: Default::default(),
+        review_level: plimsoll_server::packets::FlagLevel::Alert,
     };
     let db_path = opts.out_dir.join("aggregator.db");
     for suffix in ["", "-wal", "-shm"] {
@@ -311,7 +313,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     let sent: usize = run.reports.iter().map(|r| r.packets_sent).sum();
     writeln!(
         out,
-        "Flags: {flags} raised on devices ({alerts} Alerts); {sent} flag packets sent for review (participants consented)."
+        "Episodes: {flags} flagged on devices ({alerts} Alerts; uncalibrated thresholds, no calibration phase yet); {sent} flag packets sent for review (one per episode, participants consented)."
     )?;
     writeln!(
         out,

@@ -106,6 +106,10 @@ enum Command {
         /// How long a round stays open, in minutes.
         #[arg(long, default_value_t = 60)]
         round_minutes: u32,
+        /// Lowest episode level devices send for clinician review (`alert`:
+        /// Alert episodes only; `watch`: Watch and Alert).
+        #[arg(long, value_enum, default_value_t = AlarmLevel::Alert)]
+        review_level: AlarmLevel,
         /// Output file (never overwritten).
         #[arg(long, default_value = "study.json")]
         out: PathBuf,
@@ -249,6 +253,7 @@ async fn main() -> anyhow::Result<()> {
             rounds,
             min_quorum,
             round_minutes,
+            review_level,
             out,
         } => {
             let signals: Vec<Signal> = if signals.is_empty() {
@@ -274,6 +279,10 @@ async fn main() -> anyhow::Result<()> {
                 round_deadline_ms: u64::from(round_minutes) * 60_000,
                 selection_seed: rand::random(),
                 aggregation: Default::default(),
+                review_level: match review_level {
+                    AlarmLevel::Alert => plimsoll_server::packets::FlagLevel::Alert,
+                    AlarmLevel::Watch => plimsoll_server::packets::FlagLevel::Watch,
+                },
             };
             config
                 .validate()
@@ -333,7 +342,7 @@ async fn main() -> anyhow::Result<()> {
                 report.device_id, opts.study_id, report.rounds_trained, report.prior_version
             );
             println!(
-                "{} flags ({} Alerts), {} sent for review; outputs in {}",
+                "{} episodes flagged ({} Alerts), {} sent for review; outputs in {}",
                 report.flags,
                 report.alerts,
                 report.packets_sent,

@@ -110,6 +110,7 @@ pub async fn run_participate(opts: &ParticipateOptions) -> anyhow::Result<Device
         wait_ms: 10_000,
         seed: rand::random(),
         device_secret: Some(secret),
+        calibration: crate::detect::calibration::StudyCalibration::uncalibrated(),
     };
     let cpu = Arc::new(Semaphore::new(
         std::thread::available_parallelism().map_or(1, |n| n.get()),

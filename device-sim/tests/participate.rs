@@ -100,6 +100,7 @@ async fn two_devices_take_part_over_tls_and_resume() {
                 round_deadline_ms: 120_000,
                 selection_seed: 5,
                 aggregation: Default::default(),
+                review_level: plimsoll_server::packets::FlagLevel::Alert,
             },
             now_ms(),
         )

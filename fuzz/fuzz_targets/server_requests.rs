@@ -78,6 +78,7 @@ fn world() -> World {
                 round_deadline_ms: 600_000,
                 selection_seed: 1,
                 aggregation: Default::default(),
+                review_level: plimsoll_server::packets::FlagLevel::Alert,
             },
             0,
         )

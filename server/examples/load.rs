@@ -63,6 +63,7 @@ async fn main() -> anyhow::Result<()> {
             round_deadline_ms: 600_000,
             selection_seed: 1,
             aggregation: Default::default(),
+            review_level: plimsoll_server::packets::FlagLevel::Alert,
         },
         now_ms(),
     )?;

@@ -76,6 +76,15 @@ pub struct StudyConfig {
     /// How submissions are combined (FedAvg unless set).
     #[serde(default)]
     pub aggregation: crate::aggregate::Aggregation,
+    /// Lowest episode level devices send for clinician review (Alert unless
+    /// set); the aggregator refuses packets below it.
+    #[serde(default = "default_review_level")]
+    pub review_level: crate::packets::FlagLevel,
+}
+
+/// Studies from before the setting existed send Alerts only.
+fn default_review_level() -> crate::packets::FlagLevel {
+    crate::packets::FlagLevel::Alert
 }
 
 impl StudyConfig {

@@ -190,6 +190,7 @@ pub async fn learn_prior(
         round_deadline_ms: 120_000,
         selection_seed: 7,
         aggregation: Default::default(),
+        review_level: plimsoll_server::packets::FlagLevel::Alert,
     };
     std::fs::create_dir_all(work_dir)
         .with_context(|| format!("creating {}", work_dir.display()))?;
