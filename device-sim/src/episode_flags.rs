@@ -53,7 +53,7 @@ pub const ODDS_DISAGREE_FACTOR: f64 = 2.0;
 
 /// Beyond once in this many participant-months the model's nominal rate is not stated as a
 /// number: that far out in a Gaussian tail the model is not a reliable guide (real residuals
-/// have heavier tails), so the reason says "rarer than" instead.
+/// have heavier tails), so the reason says "less often than" instead.
 pub const NOMINAL_MONTHS_CAP: f64 = 10_000.0;
 
 /// Standard-normal quantiles of the central 50% and 95% bands.
@@ -375,17 +375,21 @@ pub fn target_reason(
         let _ = write!(
             out,
             " On this study's calibration data ({:.0} participant-months; thresholds Alert {:.1}, \
-             Watch {:.1}), an episode peaking this high occurs {}.",
+             Watch {:.1}), {}.",
             calibration.participant_months(),
             calibration.alert.threshold,
             calibration.watch.threshold,
-            once_in(rate)
+            if rate > 0.0 {
+                format!("an episode peaking this high starts {}", once_in(rate))
+            } else {
+                "no episode peaked this high".to_owned()
+            }
         );
         if disagree(rate, nominal) {
             let _ = write!(
                 out,
-                " The model's Gaussian tail alone would say a day this high occurs {}; the \
-                 study's data are the better guide.",
+                " By the model's Gaussian tail alone a day this high would be expected {}; \
+                 the study's data are the better guide.",
                 nominal_once_in(nominal)
             );
         }
@@ -393,8 +397,8 @@ pub fn target_reason(
         let _ = write!(
             out,
             " Thresholds (Alert {:.2}, Watch {:.2}) follow the nominal Gaussian rule, not this \
-             study's data. By the model alone a day this high occurs {}; in practice scores \
-             this high are usually more frequent than that.",
+             study's data. By the model alone a day this high would be expected {}; in \
+             practice scores this high are usually more frequent than that.",
             calibration.alert.threshold,
             calibration.watch.threshold,
             nominal_once_in(nominal)
@@ -403,13 +407,13 @@ pub fn target_reason(
     out
 }
 
-/// [`once_in`] for the model's nominal rate, "rarer than once in 10000 participant-months
+/// [`once_in`] for the model's nominal rate, "less often than once in 10000 participant-months
 /// (too far in the model's tail to put a figure on)" beyond [`NOMINAL_MONTHS_CAP`].
 fn nominal_once_in(rate_per_month: f64) -> String {
     if rate_per_month * NOMINAL_MONTHS_CAP < 1.0 {
         format!(
-            "rarer than once in {NOMINAL_MONTHS_CAP:.0} participant-months (too far in the \
-             model's tail to put a figure on)"
+            "less often than once in {NOMINAL_MONTHS_CAP:.0} participant-months (too far in \
+             the model's tail to put a figure on)"
         )
     } else {
         once_in(rate_per_month)
@@ -543,6 +547,7 @@ mod tests {
             "{text}"
         );
         assert!(text.contains("Gaussian tail alone"), "{text}");
+        assert!(text.contains("starts about once in 40"), "{text}");
         assert!(
             text.contains("about once in 2462 participant-months"),
             "{text}"
@@ -578,10 +583,10 @@ mod tests {
         assert!(text.contains("nominal Gaussian rule"), "{text}");
         assert!(!text.contains("calibration data"), "{text}");
         // Once in 2,462 months is within the cap and stated; a peak of 6.0 (1 − Φ(6) ≈ 1e-9,
-        // once in about 3e7 months) is past it and stated as "rarer than".
+        // once in about 3e7 months) is past it and stated as "less often than".
         assert!(text.contains("once in 2462"), "{text}");
         let far = target_reason(&flag(6.0), &cal, &TargetPattern::ACUTE_ILLNESS);
-        assert!(far.contains("rarer than once in 10000"), "{far}");
+        assert!(far.contains("less often than once in 10000"), "{far}");
     }
 
     #[test]
