@@ -1,8 +1,9 @@
-//! Flag packets over real gRPC on loopback: a consenting device's packet is
-//! stored; a device without consent cannot make a sender, and the aggregator
-//! refuses packets from it anyway (FAILED_PRECONDITION naming the field);
-//! malformed packets are INVALID_ARGUMENT naming the field; resending is
-//! idempotent.
+//! Flag packets over real gRPC on loopback: a consenting device's packet (one
+//! episode) is stored; a device without consent cannot make a sender, and the
+//! aggregator refuses packets from it anyway (FAILED_PRECONDITION naming the
+//! field); malformed packets are INVALID_ARGUMENT naming the RPC and field;
+//! resending is idempotent; an older version of an episode never replaces a
+//! newer one.
 
 use plimsoll_device::client::{FlagSender, FlagSharing, authorized};
 use plimsoll_device::packets::to_pb;
@@ -10,6 +11,7 @@ use plimsoll_device::signal::Signal;
 use plimsoll_proto::auth::DeviceCredential;
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
+use plimsoll_server::packets::SignalDirection;
 use plimsoll_server::review::db;
 use plimsoll_server::store::Store;
 use tonic::Code;
@@ -74,11 +76,22 @@ async fn consenting_device_packet_is_stored_and_resending_is_idempotent() {
     let rows = stored(dir.path());
     assert_eq!(rows.len(), 1);
     assert_eq!(rows[0].participant, "p-1");
-    assert_eq!(rows[0].signal.as_deref(), Some("resting_hr_bpm"));
+    assert_eq!(
+        rows[0].signal, None,
+        "an episode names its signals in `involved`"
+    );
+    assert_eq!(
+        rows[0].involved,
+        [
+            ("resting_hr_bpm".to_owned(), SignalDirection::Up),
+            ("hrv_rmssd_ms".to_owned(), SignalDirection::Down)
+        ]
+    );
+    assert_eq!(rows[0].revisions, 1);
     let store = Store::open(&dir.path().join("agg.db")).unwrap();
     let record = db::flag(&store, first).unwrap().unwrap();
-    // The flagged signal comes first, the other signal follows, and the
-    // window is the 28 days before the stretch through the last scored day.
+    // The involved signals come first, and the window is the 28 days before
+    // the episode's start through the last scored day.
     let names: Vec<&str> = record
         .packet
         .signals
@@ -112,11 +125,31 @@ async fn consenting_device_packet_is_stored_and_resending_is_idempotent() {
         }
     }
 
-    // A different packet under the same (device, signal, kind, day) is refused.
-    let mut changed = to_pb(&packet);
-    changed.score += 1.0;
-    let err = submit(&mut client, &id, changed).await.unwrap_err();
+    // An older version of the episode (ending earlier) does not replace it.
+    let mut older = to_pb(&packet);
+    older.last_day = "2024-04-10".into();
+    older.date = "2024-04-10".into();
+    let err = submit(&mut client, &id, older).await.unwrap_err();
+    assert_eq!(err.code(), Code::FailedPrecondition, "{err:?}");
+    assert!(
+        err.message()
+            .starts_with("SubmitFlagPacket: packet.last_day"),
+        "{}",
+        err.message()
+    );
+    // Another episode of the device peaking on the same day is refused: an
+    // alarm day belongs to one episode.
+    let mut other = to_pb(&packet);
+    other.episode_key = "ep-2024-04-09".into();
+    let err = submit(&mut client, &id, other).await.unwrap_err();
     assert_eq!(err.code(), Code::AlreadyExists, "{err:?}");
+    assert!(
+        err.message()
+            .starts_with("SubmitFlagPacket: packet.episode_key"),
+        "{}",
+        err.message()
+    );
+    assert_eq!(stored(dir.path()).len(), 1);
     server.stop().await;
 }
 
@@ -180,7 +213,7 @@ async fn malformed_packets_are_refused_naming_the_field() {
         .await;
     let good = to_pb(&scenario_packet());
     type Edit = fn(&mut pb::FlagPacket);
-    let cases: [(&str, Edit); 9] = [
+    let cases: [(&str, Edit); 19] = [
         ("packet.window_end", |p| p.window_end = "2024-08-30".into()),
         ("packet.window_start", |p| {
             p.window_start = "11/03/2024".into()
@@ -198,6 +231,24 @@ async fn malformed_packets_are_refused_naming_the_field() {
         }),
         ("packet.level", |p| p.level = 0),
         ("packet.score", |p| p.score = f64::INFINITY),
+        // Episodes (part 4 of the design): every new field is checked.
+        ("packet.kind", |p| p.kind = pb::FlagKind::Cusum as i32),
+        // The study sends Alerts only (the default review level).
+        ("packet.level", |p| p.level = pb::FlagLevel::Watch as i32),
+        ("packet.episode_key", |p| p.episode_key.clear()),
+        ("packet.episode_key", |p| p.episode_key = "legacy-7".into()),
+        ("packet.episode_key", |p| p.episode_key = "ep 1".into()),
+        ("packet.direction", |p| {
+            p.direction = pb::PatternDirection::Mirror as i32
+        }),
+        ("packet.involved", |p| p.involved.clear()),
+        ("packet.involved[1].direction", |p| {
+            p.involved[1].direction = pb::SignalDirection::Up as i32
+        }),
+        ("packet.involved[0].signal", |p| {
+            p.involved[0].signal = "steps".into()
+        }),
+        ("packet.alarm_days", |p| p.alarm_days = 0),
     ];
     for (field, edit) in cases {
         let mut p = good.clone();

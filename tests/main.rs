@@ -5,6 +5,7 @@ mod cusum_arl;
 mod detect;
 mod detection_stats;
 mod device_identity;
+mod episodes;
 mod evaluation;
 mod federated;
 mod flag_packets;

@@ -311,14 +311,24 @@ async fn actions_are_an_append_only_trail_and_drive_the_status() {
     .await;
     assert!(new.body.contains(&format!("/flag/{watch}\"")));
     assert!(!new.body.contains(&format!("/flag/{alert}\"")));
+    // By signal: the episodes that involve it (the Alert episode involves
+    // resting HR and HRV, the Watch episode HRV only).
+    let by_signal = get(
+        &f,
+        &format!("/study/{STUDY}/flags?signal=resting_hr_bpm"),
+        Some(&cookie),
+    )
+    .await;
+    assert!(by_signal.body.contains(&format!("/flag/{alert}\"")));
+    assert!(!by_signal.body.contains(&format!("/flag/{watch}\"")));
     let by_signal = get(
         &f,
         &format!("/study/{STUDY}/flags?signal=hrv_rmssd_ms"),
         Some(&cookie),
     )
     .await;
+    assert!(by_signal.body.contains(&format!("/flag/{alert}\"")));
     assert!(by_signal.body.contains(&format!("/flag/{watch}\"")));
-    assert!(!by_signal.body.contains(&format!("/flag/{alert}\"")));
 
     let overview = get(&f, &format!("/study/{STUDY}"), Some(&cookie)).await;
     assert_eq!(overview.status, 200);

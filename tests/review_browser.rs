@@ -1,6 +1,7 @@
 //! The review pages in a real headless Chromium, driven over WebDriver
-//! (Debian's `chromedriver`): log in, open the queue, open a flag, see the
-//! chart and the caution, acknowledge it, see it in the history. Screenshots
+//! (Debian's `chromedriver`): log in, open the episode queue, open an
+//! episode, see its signals' charts, departures, reason and the caution,
+//! acknowledge it, see it in the history. Screenshots
 //! go to `$CARGO_TARGET_DIR/screenshots/` (default `target/screenshots/`).
 //!
 //! Needs `chromium` and `chromedriver` on PATH; `scripts/install-chromium.sh`
@@ -335,10 +336,15 @@ async fn review_steps(b: &Browser, base: &str, alert: u64) -> PathBuf {
     b.screenshot("review-2-overview.png").await;
 
     b.goto(&format!("{base}/study/{STUDY}/flags")).await;
-    assert_eq!(b.count("#queue tbody tr").await, 2);
+    assert_eq!(b.count("#queue tbody tr").await, 2, "one row per episode");
     let first_row = b.text("#queue tbody tr").await;
     assert!(
         first_row.contains("Alert") && first_row.contains("p-017"),
+        "{first_row}"
+    );
+    assert!(
+        first_row.contains("2024-04-08 to 2024-04-11, ongoing")
+            && first_row.contains("Overnight HRV (RMSSD) ↓ down"),
         "{first_row}"
     );
     b.resize(1280, 900).await;
@@ -353,10 +359,16 @@ async fn review_steps(b: &Browser, base: &str, alert: u64) -> PathBuf {
             .await
             .contains("local clinical protocols")
     );
+    let reason = b.text(".reason").await;
+    assert!(reason.contains("resting heart rate up"), "{reason}");
     assert!(
-        b.text(".reason")
-            .await
-            .contains("Resting heart rate has been above")
+        reason.contains("about once in 40 participant-months"),
+        "{reason}"
+    );
+    let departures = b.text("#departures").await;
+    assert!(
+        departures.contains("Resting heart rate") && departures.contains("↑ up"),
+        "{departures}"
     );
     assert!(
         b.count("svg.chart").await >= 2,

@@ -8,9 +8,15 @@ use std::path::Path;
 
 use chrono::NaiveDate;
 use plimsoll_device::client::{FlagSender, FlagSharing, authorized};
-use plimsoll_device::packets::{
-    DayRow, FlagFacts, FlagPacket, PacketDayStatus, PacketKind, PacketLevel, build_packet,
+use plimsoll_device::detect::calibration::{
+    Calibrated, DAYS_PER_MONTH, EpisodeHistogram, N_EDGES, StudyCalibration,
 };
+use plimsoll_device::detect::joint::{Correlation, TargetPattern};
+use plimsoll_device::episode_flags::{
+    Departure, EpisodeDirection, EpisodeFlag, SignalDirection, target_reason,
+};
+use plimsoll_device::flags::FlagLevel;
+use plimsoll_device::packets::{DayRow, FlagPacket, PacketDayStatus, build_packet};
 use plimsoll_device::prior::PriorParams;
 use plimsoll_device::signal::Signal;
 use plimsoll_proto::v1 as pb;
@@ -63,10 +69,77 @@ fn normal_cdf(x: f64) -> f64 {
     if x >= 0.0 { 1.0 - upper } else { upper }
 }
 
+/// A made-up study calibration over 1,000 participant-months: episodes peaking at 4.0 or
+/// more started 25 times (once in 40 participant-months), Alert at 4.0, Watch at 3.0.
+pub fn study_calibration() -> StudyCalibration {
+    let episodes = (0..N_EDGES)
+        .map(|i| if i >= 40 { 25 } else { 2_000 })
+        .collect();
+    StudyCalibration {
+        correlation: Correlation::identity(),
+        budget_per_month: 0.025,
+        moment_devices: 0,
+        histogram_devices: 0,
+        alert: Calibrated {
+            threshold: 4.0,
+            rate: 0.025,
+            capped: false,
+        },
+        watch: Calibrated {
+            threshold: 3.0,
+            rate: 0.2,
+            capped: false,
+        },
+        histogram: EpisodeHistogram {
+            episodes,
+            scored_days: (1_000.0 * DAYS_PER_MONTH) as u64,
+        },
+    }
+}
+
+/// A target episode with its reason written under [`study_calibration`].
+#[allow(clippy::too_many_arguments)]
+pub fn episode(
+    level: FlagLevel,
+    start: &str,
+    peak: &str,
+    end: &str,
+    peak_score: f64,
+    alarm_days: usize,
+    ongoing: bool,
+    involved: &[(Signal, f64, f64)],
+) -> EpisodeFlag {
+    let mut flag = EpisodeFlag {
+        key: format!("ep-{start}"),
+        direction: EpisodeDirection::Target,
+        level,
+        start: day(start),
+        first_alarm: day(start),
+        peak: day(peak),
+        peak_score,
+        end: day(end),
+        ongoing,
+        alarm_days,
+        peak_window_start: day(start),
+        involved: involved
+            .iter()
+            .map(|&(signal, departure, contribution)| Departure {
+                signal,
+                direction: SignalDirection::of(departure),
+                departure,
+                contribution,
+            })
+            .collect(),
+        reason: String::new(),
+    };
+    flag.reason = target_reason(&flag, &study_calibration(), &TargetPattern::ACUTE_ILLNESS);
+    flag
+}
+
 /// 42 days of resting heart rate and HRV for one participant, with three
-/// missing days, a baseline phase, and a rise of resting HR over the last
-/// four days (flagged); plus the flag that rise raised.
-pub fn scenario() -> (FlagFacts, Vec<DayRow>) {
+/// missing days, a baseline phase, and over the last four days resting HR
+/// rising and HRV falling (alarm days); plus the Alert episode they form.
+pub fn scenario() -> (EpisodeFlag, Vec<DayRow>) {
     let start = day("2024-03-01");
     let missing = [9, 10, 23];
     let mut rows = Vec::new();
@@ -96,20 +169,23 @@ pub fn scenario() -> (FlagFacts, Vec<DayRow>) {
         } else {
             41.0 - wiggle * 2.0
         };
-        rows.push(row(Signal::HrvRmssd, date, hrv_obs, 41.0, 6.0));
+        let mut hrv = row(Signal::HrvRmssd, date, hrv_obs, 41.0, 6.0);
+        if rising {
+            hrv.status = PacketDayStatus::Flagged;
+            hrv.conditioned = false;
+        }
+        rows.push(hrv);
     }
-    let flag = FlagFacts {
-        signal: Some(Signal::RestingHr),
-        kind: PacketKind::Cusum,
-        level: PacketLevel::Alert,
-        first_day: start + chrono::Duration::days(38),
-        last_day: start + chrono::Duration::days(41),
-        date: start + chrono::Duration::days(41),
-        score: 6.4,
-        reason: "Resting heart rate has been above its expected level for 4 days \
-                 (average 7.5 bpm above expected); a sustained rise of this size is unusual for this person."
-            .into(),
-    };
+    let flag = episode(
+        FlagLevel::Alert,
+        "2024-04-08",
+        "2024-04-11",
+        "2024-04-11",
+        4.6,
+        4,
+        true,
+        &[(Signal::RestingHr, 3.4, 2.9), (Signal::HrvRmssd, -2.4, 1.7)],
+    );
     (flag, rows)
 }
 
@@ -128,9 +204,9 @@ pub fn scenario_packet() -> FlagPacket {
 }
 
 /// A running aggregator (gRPC) and review server over one database, with:
-/// study [`STUDY`] holding one Alert (CUSUM, resting HR) and one Watch
-/// (single day, HRV) flag from a consenting device; study [`OTHER_STUDY`]
-/// holding one flag; reviewer [`REVIEWER`] assigned to [`STUDY`] only and
+/// study [`STUDY`] (review level Watch) holding one Alert episode (resting
+/// HR up, HRV down) and one Watch episode (HRV down, one day) from a
+/// consenting device; study [`OTHER_STUDY`] holding one episode; reviewer [`REVIEWER`] assigned to [`STUDY`] only and
 /// [`OUTSIDER`] assigned to [`OTHER_STUDY`] only (both with [`PASSWORD`]).
 pub struct ReviewFixture {
     pub grpc: TestServer,
@@ -143,14 +219,10 @@ impl ReviewFixture {
     pub async fn start(dir: &Path) -> ReviewFixture {
         let db = dir.join("agg.db");
         let signals = [Signal::RestingHr, Signal::HrvRmssd];
-        let grpc = TestServer::start(
-            &db,
-            vec![
-                study_config(STUDY, &signals, 2, 3),
-                study_config(OTHER_STUDY, &signals, 1, 1),
-            ],
-        )
-        .await;
+        let mut study = study_config(STUDY, &signals, 2, 3);
+        study.review_level = plimsoll_server::packets::FlagLevel::Watch;
+        let grpc =
+            TestServer::start(&db, vec![study, study_config(OTHER_STUDY, &signals, 1, 1)]).await;
         let mut client = grpc.client();
         let columns: Vec<&str> = signals.iter().map(|s| s.column()).collect();
         let device = grpc
@@ -166,21 +238,23 @@ impl ReviewFixture {
         let alert = sender.send(&scenario_packet()).await.unwrap();
 
         let (_, rows) = scenario();
-        let watch_flag = FlagFacts {
-            signal: Some(Signal::HrvRmssd),
-            kind: PacketKind::SingleDay,
-            level: PacketLevel::Watch,
-            first_day: day("2024-04-10"),
-            last_day: day("2024-04-10"),
-            date: day("2024-04-10"),
-            score: -2.6,
-            reason: "Overnight HRV was 26.0 ms, below the expected 41.0 ms (z = −2.6).".into(),
-        };
+        let watch_flag = episode(
+            FlagLevel::Watch,
+            "2024-03-25",
+            "2024-03-25",
+            "2024-03-25",
+            3.2,
+            1,
+            false,
+            &[(Signal::HrvRmssd, -3.2, 3.2)],
+        );
         let watch_rows: Vec<DayRow> = rows
             .iter()
             .cloned()
             .map(|mut r| {
-                if r.signal == Signal::HrvRmssd && r.date == day("2024-04-10") {
+                if r.signal == Signal::HrvRmssd && r.date == day("2024-03-25") {
+                    r.observed = 26.0;
+                    r.z = -2.5;
                     r.status = PacketDayStatus::Flagged;
                 }
                 r

@@ -31,6 +31,7 @@ pub fn study_config(id: &str, signals: &[Signal], devices: u32, rounds: u32) -> 
         aggregation: Default::default(),
         alert_budget_per_participant_month:
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
+        review_level: plimsoll_server::packets::FlagLevel::Alert,
     }
 }
 

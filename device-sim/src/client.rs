@@ -9,9 +9,9 @@
 //! for the detector's calibration ([`calibrate_detection`]): sums of same-day
 //! residual cross-products and pair counts (6×6), then episode counts on a
 //! fixed 150-threshold grid with the number of scored days; never a daily
-//! value or a score. With consent,
-//! and only then, one flag packet per alarm (see [`crate::packets`] for
-//! exactly what it holds), sent through a [`FlagSender`].
+//! value or a score. With consent, and only then, one flag packet per episode
+//! at or above the study's review level (see [`crate::packets`] for exactly
+//! what it holds), sent through a [`FlagSender`].
 //!
 //! Identity: the device enrols with the study's enrollment code and a
 //! 256-bit secret it draws itself ([`new_device_secret`]); every later call
@@ -37,8 +37,8 @@ use crate::detect::calibration::{
     StudyCalibration, cohort_correlation, device_histogram, device_moments,
 };
 use crate::device_report::detect_and_write;
-use crate::flags::{FlagConfig, FlagLevel};
-use crate::packets::{DayRow, FlagFacts, build_packet};
+use crate::flags::FlagLevel;
+use crate::packets::build_packet;
 use crate::personal::{DayBand, posterior_bands, standardised, write_posterior_csv};
 use crate::prior::PriorParams;
 use crate::retry::{Backoff, retry};
@@ -73,7 +73,8 @@ pub enum FlagSharing {
     /// Nothing about flags leaves the device (the default).
     #[default]
     Withheld,
-    /// One packet per alarm may be sent to the aggregator.
+    /// One packet per episode (at or above the study's review level) may be
+    /// sent to the aggregator.
     Consented,
 }
 
@@ -175,8 +176,9 @@ impl FlagSender {
         })
     }
 
-    /// Sends one packet; returns the aggregator's id for it. Resending the
-    /// same packet returns the same id.
+    /// Sends one packet; returns the aggregator's id for its episode.
+    /// Resending the same packet, or a newer version of the same episode
+    /// (same key), returns the same id.
     pub async fn send(&mut self, packet: &crate::packets::FlagPacket) -> anyhow::Result<u64> {
         crate::packets::check(packet)?;
         let device_id = self.credential.device_id;
@@ -194,8 +196,8 @@ impl FlagSender {
             .await
             .with_context(|| {
                 format!(
-                    "SubmitFlagPacket for device {device_id} (flag of {})",
-                    packet.flag.date
+                    "SubmitFlagPacket for device {device_id} (episode {})",
+                    packet.flag.key
                 )
             })?;
         Ok(response.into_inner().packet_id)
@@ -211,11 +213,12 @@ pub struct DeviceReport {
     pub prior_version: u32,
     pub bands: Vec<(Signal, Vec<DayBand>)>,
     pub posterior_csv: PathBuf,
-    /// Flags raised on the device (all levels).
+    /// Episodes flagged on the device (along the study's pattern, all
+    /// levels; episodes in the opposite direction are recorded only).
     pub flags: usize,
     /// Of those, Alerts.
     pub alerts: usize,
-    /// Flag packets sent to reviewers (0 without consent).
+    /// Flag packets (one per episode) sent to reviewers (0 without consent).
     pub packets_sent: usize,
     /// The study's detector calibration as this device computed it from the published
     /// sums (also written as `calibration.json` in the device's folder).
@@ -563,6 +566,7 @@ pub async fn run_device_with(
     let permit = cpu.clone().acquire_owned().await?;
     let out_dir = opts.out_dir.clone();
     let packet_priors = priors.clone();
+    let study_calibration = calibration.clone();
     let (bands, posterior_csv, detection) =
         tokio::task::spawn_blocking(move || -> anyhow::Result<_> {
             let _permit = permit;
@@ -577,22 +581,19 @@ pub async fn run_device_with(
             let path = out_dir.join("posterior.csv");
             write_posterior_csv(&path, &bands)
                 .with_context(|| format!("writing {}", path.display()))?;
-            let detection = detect_and_write(&out_dir, &series, &priors, &FlagConfig::default())?;
+            let detection = detect_and_write(&out_dir, &series, &priors, &study_calibration)?;
             Ok((bands, path, detection))
         })
         .await??;
-    // With consent, one packet per Alert (the alarm level) goes to the
-    // reviewers; without it `FlagSender::new` gives no sender and nothing
-    // leaves the device.
+    // With consent, one packet per episode at or above the study's review
+    // level goes to the reviewers (sent again under the same key when a
+    // later run finds it grown); without it `FlagSender::new` gives no
+    // sender and nothing leaves the device.
     let mut packets_sent = 0;
     if let Some(mut sender) = FlagSender::new(channel, &opts.study_id, credential, sharing) {
-        let rows: Vec<DayRow> = detection.days.iter().map(DayRow::from).collect();
-        for flag in detection
-            .flags
-            .iter()
-            .filter(|f| f.level == FlagLevel::Alert)
-        {
-            let packet = build_packet(&FlagFacts::from(flag), &rows, &packet_priors)?;
+        let review_level = study_review_level(&mut client, &opts.study_id).await?;
+        for flag in detection.for_review(review_level) {
+            let packet = build_packet(flag, &detection.rows, &packet_priors)?;
             sender.send(&packet).await?;
             packets_sent += 1;
         }
@@ -604,15 +605,31 @@ pub async fn run_device_with(
         prior_version,
         bands,
         posterior_csv,
-        flags: detection.flags.len(),
-        alerts: detection
-            .flags
-            .iter()
-            .filter(|f| f.level == FlagLevel::Alert)
-            .count(),
+        flags: detection.episodes.iter().filter(|e| e.alerted()).count(),
+        alerts: detection.for_review(FlagLevel::Alert).count(),
         packets_sent,
         calibration,
     })
+}
+
+/// The study's lowest level sent for review, from `GetStudy`.
+pub async fn study_review_level(
+    client: &mut AggregatorClient<Channel>,
+    study_id: &str,
+) -> anyhow::Result<FlagLevel> {
+    let request = pb::GetStudyRequest {
+        study_id: study_id.to_owned(),
+    };
+    let study = retry(&Backoff::default(), seed_of(study_id), || {
+        let mut c = client.clone();
+        let r = request.clone();
+        async move { c.get_study(r).await }
+    })
+    .await
+    .with_context(|| format!("GetStudy for study {study_id}"))?
+    .into_inner();
+    wire::review_level_from_pb(study.review_level)
+        .with_context(|| format!("GetStudy for study {study_id}"))
 }
 
 /// One round of local training for every signal in the task.

@@ -210,6 +210,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         aggregation: Default::default(),
         alert_budget_per_participant_month:
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
+        review_level: plimsoll_server::packets::FlagLevel::Alert,
     };
     let db_path = opts.out_dir.join("aggregator.db");
     for suffix in ["", "-wal", "-shm"] {
@@ -327,7 +328,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     let sent: usize = run.reports.iter().map(|r| r.packets_sent).sum();
     writeln!(
         out,
-        "Flags: {flags} raised on devices ({alerts} Alerts); {sent} flag packets sent for review (participants consented)."
+        "Episodes: {flags} flagged on devices ({alerts} Alerts; uncalibrated thresholds, no calibration phase yet); {sent} flag packets sent for review (one per episode, participants consented)."
     )?;
     writeln!(
         out,

@@ -1,5 +1,6 @@
-//! What a device writes about its own participant after detection: the
-//! prospective days (CSV), the flags (CSV and JSON) and a self-contained HTML
+//! What a device writes about its own participant after detection
+//! ([`crate::episode_flags`]): the prospective days (CSV), the episodes (CSV
+//! and JSON, one row per episode, both directions) and a self-contained HTML
 //! report that opens without network access.
 //!
 //! Everything here stays on the device. The report carries the
@@ -11,12 +12,16 @@ use std::path::Path;
 
 use chrono::NaiveDate;
 
-use crate::flags::{DayStatus, Detection, Flag, FlagLevel, ProspectiveDay};
+use crate::detect::DetectConfig;
+use crate::detect::calibration::StudyCalibration;
+use crate::episode_flags::{EpisodeDetection, EpisodeDirection, EpisodeFlag, detect_episodes};
+use crate::flags::FlagLevel;
+use crate::packets::{DayRow, PacketDayStatus};
 use crate::signal::Signal;
 
 /// The caution shown wherever a flag is shown to a person.
-pub const CAUTION: &str = "Decision support only — this is not a diagnosis. Flags mark days that \
-depart from this person's own expected range; they support, and never replace, the judgement of a \
+pub const CAUTION: &str = "Decision support only — this is not a diagnosis. Flags mark episodes in \
+which this person's signals departed from their own expected range; they support, and never replace, the judgement of a \
 qualified clinician who knows the clinical context. Local protocols and regulations govern any action.";
 
 /// One sentence on what the bands mean.
@@ -32,53 +37,103 @@ fn csv_field(v: &str) -> String {
     }
 }
 
-/// `flags.csv`: one row per flag.
-pub fn write_flags_csv(path: &Path, flags: &[Flag]) -> std::io::Result<()> {
+/// "resting_hr_bpm up +3.10; hrv_rmssd_ms down -2.40".
+fn signals_field(e: &EpisodeFlag) -> String {
+    e.involved
+        .iter()
+        .map(|d| {
+            format!(
+                "{} {} {:+.2}",
+                d.signal.column(),
+                d.direction.as_str(),
+                d.departure
+            )
+        })
+        .collect::<Vec<_>>()
+        .join("; ")
+}
+
+fn direction_name(d: EpisodeDirection) -> &'static str {
+    match d {
+        EpisodeDirection::Target => "target",
+        EpisodeDirection::Mirror => "mirror",
+    }
+}
+
+/// `flags.csv`: one row per episode, both directions (`alerted` is false for the opposite
+/// direction, which is recorded only).
+pub fn write_flags_csv(
+    path: &Path,
+    participant: &str,
+    episodes: &[EpisodeFlag],
+) -> std::io::Result<()> {
     let mut out = std::io::BufWriter::new(std::fs::File::create(path)?);
     writeln!(
         out,
-        "participant,date,signal,kind,level,first_day,last_day,score,reason"
+        "participant,episode_key,direction,alerted,level,start,first_alarm,peak,peak_score,end,\
+         ongoing,alarm_days,signals,reason"
     )?;
-    for f in flags {
+    for e in episodes {
         writeln!(
             out,
-            "{},{},{},{},{},{},{},{:.4},{}",
-            csv_field(&f.participant),
-            f.date,
-            f.signal.map_or("multi_signal", |s| s.column()),
-            serde_json::to_value(f.kind)
-                .ok()
-                .and_then(|v| v.as_str().map(str::to_owned))
-                .unwrap_or_default(),
-            level_name(f.level),
-            f.first_day,
-            f.last_day,
-            f.score,
-            csv_field(&f.reason)
+            "{},{},{},{},{},{},{},{},{:.4},{},{},{},{},{}",
+            csv_field(participant),
+            e.key,
+            direction_name(e.direction),
+            e.alerted(),
+            level_name(e.level),
+            e.start,
+            e.first_alarm,
+            e.peak,
+            e.peak_score,
+            e.end,
+            e.ongoing,
+            e.alarm_days,
+            csv_field(&signals_field(e)),
+            csv_field(&e.reason)
         )?;
     }
     out.flush()
 }
 
-/// `flags.json`: the flags with the caution, as an object
-/// `{ "caution": …, "flags": [ … ] }`.
-pub fn write_flags_json(path: &Path, flags: &[Flag]) -> std::io::Result<()> {
-    let doc = serde_json::json!({ "caution": CAUTION, "flags": flags });
+/// `flags.json`: `{ "caution": …, "calibration": {…}, "episodes": [ … ] }`.
+pub fn write_flags_json(
+    path: &Path,
+    detection: &EpisodeDetection,
+    calibration: &StudyCalibration,
+) -> std::io::Result<()> {
+    let doc = serde_json::json!({
+        "caution": CAUTION,
+        "calibration": {
+            "calibrated": calibration.is_calibrated(),
+            "alert_threshold": calibration.alert.threshold,
+            "watch_threshold": calibration.watch.threshold,
+            "participant_months": calibration.participant_months(),
+        },
+        "episodes": detection.episodes,
+    });
     let text = serde_json::to_string_pretty(&doc).map_err(std::io::Error::other)?;
     std::fs::write(path, text + "\n")
 }
 
-/// `prospective.csv`: every scored day.
-pub fn write_days_csv(path: &Path, days: &[ProspectiveDay]) -> std::io::Result<()> {
+/// `prospective.csv`: every observed signal-day against the guarded baseline, with the
+/// day's joint score and its mirror.
+pub fn write_days_csv(path: &Path, detection: &EpisodeDetection) -> std::io::Result<()> {
     let mut out = std::io::BufWriter::new(std::fs::File::create(path)?);
     writeln!(
         out,
-        "date,signal,observed,mean,sd,lo50,hi50,lo95,hi95,z,tail_p,conditioned,status"
+        "date,signal,observed,mean,sd,lo50,hi50,lo95,hi95,z,tail_p,conditioned,status,score,mirror"
     )?;
-    for d in days {
+    let days = &detection.scores.days;
+    let opt = |v: Option<f64>| v.map_or_else(String::new, |v| format!("{v:.4}"));
+    for d in &detection.rows {
+        let day = days
+            .binary_search_by_key(&d.date, |s| s.date)
+            .ok()
+            .map(|i| &days[i]);
         writeln!(
             out,
-            "{},{},{},{:.4},{:.4},{:.4},{:.4},{:.4},{:.4},{:.4},{:.6},{},{}",
+            "{},{},{},{:.4},{:.4},{:.4},{:.4},{:.4},{:.4},{:.4},{:.6},{},{},{},{}",
             d.date,
             d.signal,
             d.observed,
@@ -91,7 +146,9 @@ pub fn write_days_csv(path: &Path, days: &[ProspectiveDay]) -> std::io::Result<(
             d.z,
             d.tail_p,
             d.conditioned,
-            status_name(d.status)
+            status_name(d.status),
+            opt(day.and_then(|x| x.score)),
+            opt(day.and_then(|x| x.mirror))
         )?;
     }
     out.flush()
@@ -104,11 +161,11 @@ fn level_name(l: FlagLevel) -> &'static str {
     }
 }
 
-fn status_name(s: DayStatus) -> &'static str {
+fn status_name(s: PacketDayStatus) -> &'static str {
     match s {
-        DayStatus::BuildingBaseline => "building_baseline",
-        DayStatus::Normal => "normal",
-        DayStatus::Flagged => "flagged",
+        PacketDayStatus::BuildingBaseline => "building_baseline",
+        PacketDayStatus::Normal => "normal",
+        PacketDayStatus::Flagged => "alarm_day",
     }
 }
 
@@ -124,9 +181,9 @@ const BLUE: &str = "#0072B2";
 const VERMILION: &str = "#D55E00";
 const GREY: &str = "#555555";
 
-/// Inline SVG of one signal: bands, mean, observations; flagged days marked;
-/// missing days leave gaps.
-fn signal_svg(signal: Signal, days: &[&ProspectiveDay], flag_dates: &[NaiveDate]) -> String {
+/// Inline SVG of one signal: bands, mean, observations; alarm days marked,
+/// alerted episodes shaded; missing days leave gaps.
+fn signal_svg(signal: Signal, days: &[&DayRow], spans: &[(NaiveDate, NaiveDate)]) -> String {
     let (w, h, left, right, top, bottom) = (860.0, 220.0, 56.0, 12.0, 12.0, 28.0);
     let (Some(first), Some(last)) = (days.first(), days.last()) else {
         return String::new();
@@ -151,10 +208,10 @@ fn signal_svg(signal: Signal, days: &[&ProspectiveDay], flag_dates: &[NaiveDate]
         escape(signal.label())
     );
     // Runs of consecutive days: bands and the mean line break at missing days.
-    let mut runs: Vec<Vec<&ProspectiveDay>> = Vec::new();
+    let mut runs: Vec<Vec<&DayRow>> = Vec::new();
     for d in days
         .iter()
-        .filter(|d| d.status != DayStatus::BuildingBaseline)
+        .filter(|d| d.status != PacketDayStatus::BuildingBaseline)
     {
         match runs.last_mut() {
             Some(run) if (d.date - run.last().expect("non-empty").date).num_days() <= 1 => {
@@ -165,7 +222,7 @@ fn signal_svg(signal: Signal, days: &[&ProspectiveDay], flag_dates: &[NaiveDate]
     }
     for run in &runs {
         for (wide, opacity) in [(true, 0.18), (false, 0.35)] {
-            let bounds = |d: &ProspectiveDay| {
+            let bounds = |d: &DayRow| {
                 if wide {
                     (d.lo95, d.hi95)
                 } else {
@@ -197,17 +254,18 @@ fn signal_svg(signal: Signal, days: &[&ProspectiveDay], flag_dates: &[NaiveDate]
             line.join(" ")
         );
     }
-    for date in flag_dates {
-        let x = sx(*date);
+    for (from, to) in spans {
+        let (x0, x1) = (sx(*from), sx(*to));
         let _ = write!(
             s,
-            r#"<line x1="{x:.1}" x2="{x:.1}" y1="{top}" y2="{:.1}" stroke="{VERMILION}" stroke-dasharray="3 2"/>"#,
-            h - bottom
+            r#"<rect x="{x0:.1}" y="{top}" width="{:.1}" height="{:.1}" fill="{VERMILION}" fill-opacity="0.12" stroke="{VERMILION}" stroke-dasharray="3 2"/>"#,
+            (x1 - x0).max(1.5),
+            h - bottom - top
         );
     }
     for d in days {
         let (x, y) = (sx(d.date), sy(d.observed));
-        if d.status == DayStatus::Flagged {
+        if d.status == PacketDayStatus::Flagged {
             let _ = write!(
                 s,
                 r#"<rect x="{:.1}" y="{:.1}" width="7" height="7" fill="{VERMILION}"><title>{} {:.2}</title></rect>"#,
@@ -247,8 +305,8 @@ fn signal_svg(signal: Signal, days: &[&ProspectiveDay], flag_dates: &[NaiveDate]
 }
 
 /// The self-contained HTML report of one participant.
-pub fn render_report_html(participant: &str, detection: &Detection) -> String {
-    let mut signals: Vec<Signal> = detection.days.iter().map(|d| d.signal).collect();
+pub fn render_report_html(participant: &str, detection: &EpisodeDetection) -> String {
+    let mut signals: Vec<Signal> = detection.rows.iter().map(|d| d.signal).collect();
     signals.sort_unstable();
     signals.dedup();
     let mut body = String::new();
@@ -258,34 +316,43 @@ pub fn render_report_html(participant: &str, detection: &Detection) -> String {
         escape(CAUTION),
         escape(BANDS_EXPLAINED)
     );
-    let _ = write!(body, "<h2>Flags ({})</h2>", detection.flags.len());
-    if detection.flags.is_empty() {
-        body.push_str("<p>No flags were raised.</p>");
+    if !detection.calibrated {
+        body.push_str(r#"<p class="caution"><strong>Uncalibrated:</strong> this study has no calibration yet; thresholds follow a nominal rule and the odds in each reason are the model's alone.</p>"#);
+    }
+    let alerted: Vec<&EpisodeFlag> = detection.episodes.iter().filter(|e| e.alerted()).collect();
+    let _ = write!(body, "<h2>Episodes ({})</h2>", alerted.len());
+    if alerted.is_empty() {
+        body.push_str("<p>No episode was flagged.</p>");
     } else {
-        body.push_str("<table><thead><tr><th>Date</th><th>Signal</th><th>Level</th><th>Reason</th></tr></thead><tbody>");
-        for f in &detection.flags {
+        body.push_str("<table><thead><tr><th>Episode</th><th>Level</th><th>Signals</th><th>Reason</th></tr></thead><tbody>");
+        for e in &alerted {
             let _ = write!(
                 body,
-                "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
-                f.date,
-                f.signal.map_or("several signals", |s| s.label()),
-                level_name(f.level),
-                escape(&f.reason)
+                "<tr><td>{} to {}{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+                e.start,
+                e.end,
+                if e.ongoing { " (ongoing)" } else { "" },
+                level_name(e.level),
+                escape(&signals_field(e)),
+                escape(&e.reason)
             );
         }
         body.push_str("</tbody></table>");
     }
+    let mirrors = detection.episodes.len() - alerted.len();
+    if mirrors > 0 {
+        let _ = write!(
+            body,
+            "<p>{mirrors} episode{} in the opposite direction recorded in flags.csv (never alerted).</p>",
+            if mirrors == 1 { "" } else { "s" }
+        );
+    }
+    let spans: Vec<(NaiveDate, NaiveDate)> = alerted.iter().map(|e| (e.start, e.end)).collect();
     for signal in signals {
-        let days: Vec<&ProspectiveDay> = detection
-            .days
+        let days: Vec<&DayRow> = detection
+            .rows
             .iter()
             .filter(|d| d.signal == signal)
-            .collect();
-        let flag_dates: Vec<NaiveDate> = detection
-            .flags
-            .iter()
-            .filter(|f| f.signal == Some(signal) || f.signal.is_none())
-            .map(|f| f.date)
             .collect();
         let _ = write!(
             body,
@@ -294,13 +361,13 @@ pub fn render_report_html(participant: &str, detection: &Detection) -> String {
             escape(signal.unit())
         );
         body.push_str("<figure>");
-        body.push_str(&signal_svg(signal, &days, &flag_dates));
+        body.push_str(&signal_svg(signal, &days, &spans));
         let _ = write!(
             body,
-            "<figcaption>Dots: observed days (hollow: kept out of the baseline while unusual). Squares: flagged days. \
-Line: expected value. Gaps: no data. The first {} days build the baseline and carry no band.</figcaption>",
+            "<figcaption>Dots: observed days (hollow: kept out of the baseline while unusual). Squares: alarm days this signal pushed towards the pattern. \
+Shaded: flagged episodes. Line: expected value. Gaps: no data. {} days built the baseline and carry no band.</figcaption>",
             days.iter()
-                .filter(|d| d.status == DayStatus::BuildingBaseline)
+                .filter(|d| d.status == PacketDayStatus::BuildingBaseline)
                 .count()
         );
         body.push_str("</figure><details><summary>Values as a table</summary><table><thead><tr><th>Date</th><th>Observed</th><th>Expected</th><th>95% band</th><th>Status</th></tr></thead><tbody>");
@@ -340,33 +407,37 @@ summary:focus,a:focus{{outline:3px solid #0072B2;outline-offset:2px}}
     )
 }
 
-/// Runs detection for one participant under the shared priors and writes
-/// `prospective.csv`, `flags.csv`, `flags.json` and `report.html` into
-/// `out_dir` (created if missing). Returns the detection.
+/// Runs episode detection for one participant under the shared priors and the study's
+/// calibration ([`StudyCalibration::uncalibrated`] when the study has none) and writes
+/// `prospective.csv`, `flags.csv`, `flags.json` and `report.html` into `out_dir` (created if
+/// missing). Returns the detection.
 pub fn detect_and_write(
     out_dir: &Path,
     series: &crate::cohort::ParticipantSeries,
     priors: &[crate::prior::PriorParams],
-    cfg: &crate::flags::FlagConfig,
-) -> anyhow::Result<Detection> {
+    calibration: &StudyCalibration,
+) -> anyhow::Result<EpisodeDetection> {
     use anyhow::Context;
-    let detection = crate::flags::detect(series, priors, cfg)
-        .with_context(|| format!("detection for participant {}", series.participant))?;
+    let detection = detect_episodes(series, priors, calibration, &DetectConfig::default())?;
     std::fs::create_dir_all(out_dir).with_context(|| format!("creating {}", out_dir.display()))?;
     let write = |name: &str, result: std::io::Result<()>| {
         result.with_context(|| format!("writing {}", out_dir.join(name).display()))
     };
     write(
         "prospective.csv",
-        write_days_csv(&out_dir.join("prospective.csv"), &detection.days),
+        write_days_csv(&out_dir.join("prospective.csv"), &detection),
     )?;
     write(
         "flags.csv",
-        write_flags_csv(&out_dir.join("flags.csv"), &detection.flags),
+        write_flags_csv(
+            &out_dir.join("flags.csv"),
+            &series.participant,
+            &detection.episodes,
+        ),
     )?;
     write(
         "flags.json",
-        write_flags_json(&out_dir.join("flags.json"), &detection.flags),
+        write_flags_json(&out_dir.join("flags.json"), &detection, calibration),
     )?;
     write(
         "report.html",
@@ -382,16 +453,16 @@ pub fn detect_and_write(
 mod tests {
     use super::*;
     use crate::cohort::ParticipantSeries;
-    use crate::flags::FlagConfig;
     use crate::prior::PriorParams;
     use std::collections::BTreeMap;
 
-    /// A 60-day resting-HR series with a step of +15 bpm from day 40.
+    /// A 60-day resting-HR series with a step of +15 bpm from day 48 (12 days: within the
+    /// 14-day episode cap, so one episode).
     fn stepped_series() -> ParticipantSeries {
         let start = NaiveDate::from_ymd_opt(2026, 2, 2).unwrap();
         let dates: Vec<NaiveDate> = (0..60).map(|d| start + chrono::Duration::days(d)).collect();
         let values = (0..60)
-            .map(|d| Some(if d >= 40 { 80.0 } else { 65.0 } + if d % 2 == 0 { 1.0 } else { -1.0 }))
+            .map(|d| Some(if d >= 48 { 80.0 } else { 65.0 } + if d % 2 == 0 { 1.0 } else { -1.0 }))
             .collect();
         ParticipantSeries {
             participant: "demo-p1".into(),
@@ -404,9 +475,18 @@ mod tests {
     fn outputs_carry_the_caution_and_need_no_network() {
         let dir = std::env::temp_dir().join(format!("plimsoll-report-{}", std::process::id()));
         let priors = [PriorParams::initial(Signal::RestingHr)];
-        let detection =
-            detect_and_write(&dir, &stepped_series(), &priors, &FlagConfig::default()).unwrap();
-        assert!(!detection.flags.is_empty(), "a 15 bpm step must be flagged");
+        let calibration = StudyCalibration::uncalibrated();
+        let detection = detect_and_write(&dir, &stepped_series(), &priors, &calibration).unwrap();
+        let alerted: Vec<&EpisodeFlag> = detection.for_review(FlagLevel::Alert).collect();
+        // One 15 bpm step is one episode (the grouping rule), not one flag per day.
+        assert_eq!(alerted.len(), 1, "{:#?}", detection.episodes);
+        let e = alerted[0];
+        assert_eq!(e.involved[0].signal, Signal::RestingHr);
+        assert_eq!(
+            e.involved[0].direction,
+            crate::episode_flags::SignalDirection::Up
+        );
+        assert!(e.reason.starts_with("UNCALIBRATED"), "{}", e.reason);
         let html = std::fs::read_to_string(dir.join("report.html")).unwrap();
         assert!(html.contains("not a diagnosis"));
         assert!(html.contains("qualified clinician"));
@@ -430,9 +510,10 @@ mod tests {
             serde_json::from_str(&std::fs::read_to_string(dir.join("flags.json")).unwrap())
                 .unwrap();
         assert_eq!(
-            json["flags"].as_array().unwrap().len(),
-            detection.flags.len()
+            json["episodes"].as_array().unwrap().len(),
+            detection.episodes.len()
         );
+        assert_eq!(json["calibration"]["calibrated"], false);
         assert!(
             json["caution"]
                 .as_str()
@@ -440,7 +521,8 @@ mod tests {
                 .contains("not a diagnosis")
         );
         let csv = std::fs::read_to_string(dir.join("flags.csv")).unwrap();
-        assert_eq!(csv.lines().count(), detection.flags.len() + 1);
+        assert_eq!(csv.lines().count(), detection.episodes.len() + 1);
+        assert!(csv.contains(",target,true,alert,"), "{csv}");
         let days = std::fs::read_to_string(dir.join("prospective.csv")).unwrap();
         assert_eq!(days.lines().count(), 61);
         std::fs::remove_dir_all(&dir).unwrap();

@@ -7,7 +7,12 @@
 //! - [`training`]: local FedAvg steps and the centralised yardstick.
 //! - [`personal`]: the personalised (retrospective) posterior and its bands.
 //! - [`prospective`]: the exact state-space filter giving one-step-ahead predictive days.
-//! - [`flags`]: single-day, CUSUM and multi-signal flags, calibration, baseline protection.
+//! - [`detect`]: the detector (guarded baseline, window-limited joint score, episodes,
+//!   calibration).
+//! - [`episode_flags`]: the device's flags: episodes with level, direction, signals and a
+//!   reason with the study's odds.
+//! - [`flags`]: the earlier day-by-day detectors (single-day, CUSUM, multi-signal), kept for
+//!   their tests and benchmark; the device's flags no longer come from them.
 //! - [`device_report`]: what a device writes about its participant (CSV, JSON, HTML).
 //! - [`evaluate`]: detection methods compared against ground-truth events.
 //! - [`cohort`]: the shared CSV format (reader, writer) and the simulator.
@@ -20,6 +25,7 @@ pub mod cohort;
 pub mod demo;
 pub mod detect;
 pub mod device_report;
+pub mod episode_flags;
 pub mod evaluate;
 pub mod flags;
 pub mod gp;

@@ -110,6 +110,10 @@ enum Command {
         /// participant-month on the study's own data (Watch gets 3×).
         #[arg(long, value_parser = parse_budget, default_value_t = DEFAULT_BUDGET_PER_MONTH)]
         false_alarm_budget: f64,
+        /// Lowest episode level devices send for clinician review (`alert`:
+        /// Alert episodes only; `watch`: Watch and Alert).
+        #[arg(long, value_enum, default_value_t = AlarmLevel::Alert)]
+        review_level: AlarmLevel,
         /// Output file (never overwritten).
         #[arg(long, default_value = "study.json")]
         out: PathBuf,
@@ -266,6 +270,7 @@ async fn main() -> anyhow::Result<()> {
             min_quorum,
             round_minutes,
             false_alarm_budget,
+            review_level,
             out,
         } => {
             let signals: Vec<Signal> = if signals.is_empty() {
@@ -292,6 +297,10 @@ async fn main() -> anyhow::Result<()> {
                 selection_seed: rand::random(),
                 aggregation: Default::default(),
                 alert_budget_per_participant_month: false_alarm_budget,
+                review_level: match review_level {
+                    AlarmLevel::Alert => plimsoll_server::packets::FlagLevel::Alert,
+                    AlarmLevel::Watch => plimsoll_server::packets::FlagLevel::Watch,
+                },
             };
             config
                 .validate()
@@ -356,7 +365,7 @@ async fn main() -> anyhow::Result<()> {
                 c.histogram_devices, c.alert.threshold, c.watch.threshold, c.budget_per_month
             );
             println!(
-                "{} flags ({} Alerts), {} sent for review; outputs in {}",
+                "{} episodes flagged ({} Alerts), {} sent for review; outputs in {}",
                 report.flags,
                 report.alerts,
                 report.packets_sent,

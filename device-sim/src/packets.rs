@@ -1,32 +1,40 @@
-//! Flag packets: what a device shares about one alarm, built from plain data
-//! the device already has (the flag, its per-day prospective rows and the
-//! shared prior), and their `plimsoll.v1` form.
+//! Flag packets: what a device shares about one episode, built from plain
+//! data the device already has (the episode, its per-day rows and the shared
+//! prior), and their `plimsoll.v1` form.
 //!
 //! # What leaves a device
 //!
 //! Only when the participant consented at enrolment (`consent_share_flags`),
-//! and only one packet per flag raised, each holding exactly:
+//! and only one packet per episode along the study's pattern at or above the
+//! study's review level (Alert unless the study says Watch), sent again under
+//! the same episode key as the episode grows (the aggregator keeps the
+//! latest version). Each holds exactly:
 //!
-//! - the flag: its signal (none for a multi-signal flag), detector kind,
-//!   level (Watch or Alert), first and last day of the triggering stretch,
-//!   the flag day, the detector's score and the plain-language reason;
-//! - the window: the [`WINDOW_DAYS_BEFORE`] days before the stretch through
-//!   the last day the device has scored (at most [`MAX_WINDOW_DAYS`] days);
-//! - for the flagged signal first, then each of the participant's other
+//! - the episode: its key (`ep-<first alarm day>`), start, end so far,
+//!   whether it is ongoing, peak day and peak score, the first day of the
+//!   peak's window, its number of alarm days, its highest level, its
+//!   direction (the study's pattern), each involved signal's direction,
+//!   window departure and share of the score, and the plain-language reason
+//!   (with the study's odds);
+//! - the window: the [`WINDOW_DAYS_BEFORE`] days before the episode's start
+//!   through the last day the device has scored (at most
+//!   [`MAX_WINDOW_DAYS`] days);
+//! - for the involved signals first, then each of the participant's other
 //!   signals that has a shared prior, over that window: per observed day the
-//!   date, the measured value, the personalised predictive mean and SD, the
-//!   50% and 95% band edges, the standardised residual `z`, its two-sided
+//!   date, the measured value, the personal baseline's predictive mean and
+//!   SD, the 50% and 95% band edges, the scaled residual `z`, its two-sided
 //!   tail probability, whether the day entered the personal baseline, and
-//!   whether it was scored or flagged (days without a measurement have no
-//!   row); and one population-only band per signal, computed from the shared
-//!   prior alone;
+//!   whether it was scored or an alarm day (days without a measurement have
+//!   no row); and one population-only band per signal, computed from the
+//!   shared prior alone;
 //! - with the request: the study id and the device id the aggregator
 //!   assigned at enrolment (which it links to the pseudonymous label).
 //!
 //! Nothing else: no day outside the window, no personal model parameters,
-//! no timestamps finer than a date, no name or other identifier. Without
-//! consent nothing is sent ([`crate::client::FlagSender`] cannot be made)
-//! and the aggregator refuses packets from the device anyway.
+//! no timestamps finer than a date, no name or other identifier, no episode
+//! in the opposite direction. Without consent nothing is sent
+//! ([`crate::client::FlagSender`] cannot be made) and the aggregator refuses
+//! packets from the device anyway.
 //!
 //! Besides packets and training updates, every device sends for the
 //! detector's calibration ([`crate::client::calibrate_detection`]) the sums
@@ -40,6 +48,8 @@ use anyhow::{Context, bail};
 use chrono::NaiveDate;
 use plimsoll_proto::v1 as pb;
 
+use crate::episode_flags::{EpisodeDirection, EpisodeFlag, SignalDirection};
+use crate::flags::FlagLevel;
 use crate::prior::PriorParams;
 use crate::signal::Signal;
 
@@ -53,42 +63,12 @@ pub const MAX_WINDOW_DAYS: i64 = 120;
 const Z50: f64 = 0.674_489_750_196_081_7;
 const Z95: f64 = 1.959_963_984_540_054;
 
-/// How strong a flag is.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum PacketLevel {
-    Watch,
-    Alert,
-}
-
-/// Which detector raised a flag.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum PacketKind {
-    SingleDay,
-    Cusum,
-    MultiSignal,
-}
-
 /// How a day entered the prospective scoring.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum PacketDayStatus {
     BuildingBaseline,
     Normal,
     Flagged,
-}
-
-/// The flag a packet is about (plain data; the caller maps its detector's
-/// output onto it).
-#[derive(Debug, Clone, PartialEq)]
-pub struct FlagFacts {
-    /// The flagged signal; `None` for a multi-signal flag.
-    pub signal: Option<Signal>,
-    pub kind: PacketKind,
-    pub level: PacketLevel,
-    pub first_day: NaiveDate,
-    pub last_day: NaiveDate,
-    pub date: NaiveDate,
-    pub score: f64,
-    pub reason: String,
 }
 
 /// One scored, observed day of one signal (signal units).
@@ -122,10 +102,11 @@ pub struct PopulationBand {
 /// A packet ready to send.
 #[derive(Debug, Clone, PartialEq)]
 pub struct FlagPacket {
-    pub flag: FlagFacts,
+    pub flag: EpisodeFlag,
     pub window_start: NaiveDate,
     pub window_end: NaiveDate,
-    /// The flagged signal first, then the others in [`Signal::ALL`] order.
+    /// The involved signals first (in the episode's order), then the others
+    /// in [`Signal::ALL`] order.
     pub signals: Vec<(Signal, PopulationBand, Vec<DayRow>)>,
 }
 
@@ -155,35 +136,42 @@ pub fn population_band(prior: &PriorParams) -> PopulationBand {
     }
 }
 
-/// Builds the packet for `flag` from the participant's scored rows (any
-/// order, any signals) and the shared priors.
+/// Builds the packet for the target episode `flag` from the participant's
+/// scored rows (any order, any signals) and the shared priors.
 ///
-/// The window runs from [`WINDOW_DAYS_BEFORE`] days before the flagged
-/// stretch to the last scored day, cut to [`MAX_WINDOW_DAYS`]. Signals
+/// The window runs from [`WINDOW_DAYS_BEFORE`] days before the episode's
+/// start to the last scored day, cut to [`MAX_WINDOW_DAYS`]. Signals
 /// without a prior, and rows outside the window, are left out.
 pub fn build_packet(
-    flag: &FlagFacts,
+    flag: &EpisodeFlag,
     rows: &[DayRow],
     priors: &[PriorParams],
 ) -> anyhow::Result<FlagPacket> {
-    if flag.first_day > flag.last_day || flag.date < flag.first_day {
+    if flag.direction != EpisodeDirection::Target {
         bail!(
-            "flag days out of order: first {} last {} flag day {}",
-            flag.first_day,
-            flag.last_day,
-            flag.date
+            "episode {} is in the opposite direction: recorded only, never sent",
+            flag.key
         );
     }
-    let window_start = flag.first_day - chrono::Duration::days(WINDOW_DAYS_BEFORE);
-    let latest = rows.iter().map(|r| r.date).max().unwrap_or(flag.date);
-    let window_end = latest
-        .max(flag.date)
-        .min(window_start + chrono::Duration::days(MAX_WINDOW_DAYS - 1));
-    if flag.date > window_end {
+    if flag.start > flag.end || flag.peak < flag.start || flag.peak > flag.end {
         bail!(
-            "the flagged stretch ({} to {}) is longer than a {MAX_WINDOW_DAYS}-day window allows",
-            flag.first_day,
-            flag.date
+            "episode days out of order: start {} peak {} end {}",
+            flag.start,
+            flag.peak,
+            flag.end
+        );
+    }
+    let window_start =
+        flag.start.min(flag.peak_window_start) - chrono::Duration::days(WINDOW_DAYS_BEFORE);
+    let latest = rows.iter().map(|r| r.date).max().unwrap_or(flag.end);
+    let window_end = latest
+        .max(flag.end)
+        .min(window_start + chrono::Duration::days(MAX_WINDOW_DAYS - 1));
+    if flag.end > window_end {
+        bail!(
+            "the episode ({} to {}) is longer than a {MAX_WINDOW_DAYS}-day window allows",
+            flag.start,
+            flag.end
         );
     }
     let mut by_signal: BTreeMap<Signal, Vec<DayRow>> = BTreeMap::new();
@@ -192,23 +180,24 @@ pub fn build_packet(
             by_signal.entry(r.signal).or_default().push(r.clone());
         }
     }
-    let mut order: Vec<Signal> = flag.signal.into_iter().collect();
+    let involved: Vec<Signal> = flag.involved.iter().map(|d| d.signal).collect();
+    let mut order = involved.clone();
     order.extend(
         Signal::ALL
             .iter()
             .copied()
-            .filter(|s| Some(*s) != flag.signal),
+            .filter(|s| !involved.contains(s)),
     );
     let mut signals = Vec::new();
     for signal in order {
         let Some(prior) = priors.iter().find(|p| p.signal == signal) else {
-            if Some(signal) == flag.signal {
-                bail!("no shared prior for the flagged signal {signal}");
+            if involved.contains(&signal) {
+                bail!("no shared prior for the involved signal {signal}");
             }
             continue;
         };
         let mut days = by_signal.remove(&signal).unwrap_or_default();
-        if days.is_empty() && Some(signal) != flag.signal {
+        if days.is_empty() && !involved.contains(&signal) {
             continue;
         }
         days.sort_by_key(|d| d.date);
@@ -230,20 +219,16 @@ pub fn build_packet(
 pub fn to_pb(packet: &FlagPacket) -> pb::FlagPacket {
     let f = &packet.flag;
     pb::FlagPacket {
-        signal: f.signal.map(|s| s.column().to_owned()).unwrap_or_default(),
-        kind: match f.kind {
-            PacketKind::SingleDay => pb::FlagKind::SingleDay,
-            PacketKind::Cusum => pb::FlagKind::Cusum,
-            PacketKind::MultiSignal => pb::FlagKind::MultiSignal,
-        } as i32,
+        signal: String::new(),
+        kind: pb::FlagKind::Episode as i32,
         level: match f.level {
-            PacketLevel::Watch => pb::FlagLevel::Watch,
-            PacketLevel::Alert => pb::FlagLevel::Alert,
+            FlagLevel::Watch => pb::FlagLevel::Watch,
+            FlagLevel::Alert => pb::FlagLevel::Alert,
         } as i32,
-        first_day: f.first_day.to_string(),
-        last_day: f.last_day.to_string(),
-        date: f.date.to_string(),
-        score: f.score,
+        first_day: f.start.to_string(),
+        last_day: f.end.to_string(),
+        date: f.peak.to_string(),
+        score: f.peak_score,
         reason: f.reason.clone(),
         window_start: packet.window_start.to_string(),
         window_end: packet.window_end.to_string(),
@@ -262,6 +247,27 @@ pub fn to_pb(packet: &FlagPacket) -> pb::FlagPacket {
                 days: days.iter().map(day_to_pb).collect(),
             })
             .collect(),
+        episode_key: f.key.clone(),
+        ongoing: f.ongoing,
+        direction: match f.direction {
+            EpisodeDirection::Target => pb::PatternDirection::Target,
+            EpisodeDirection::Mirror => pb::PatternDirection::Mirror,
+        } as i32,
+        involved: f
+            .involved
+            .iter()
+            .map(|d| pb::SignalDeparture {
+                signal: d.signal.column().to_owned(),
+                direction: match d.direction {
+                    SignalDirection::Up => pb::SignalDirection::Up,
+                    SignalDirection::Down => pb::SignalDirection::Down,
+                } as i32,
+                departure: d.departure,
+                contribution: d.contribution,
+            })
+            .collect(),
+        peak_window_start: f.peak_window_start.to_string(),
+        alarm_days: u32::try_from(f.alarm_days).unwrap_or(u32::MAX),
     }
 }
 
@@ -304,54 +310,6 @@ pub fn check(packet: &FlagPacket) -> anyhow::Result<()> {
         }
     }
     Ok(())
-}
-
-impl From<&crate::flags::Flag> for FlagFacts {
-    fn from(f: &crate::flags::Flag) -> FlagFacts {
-        use crate::flags::{FlagKind, FlagLevel};
-        FlagFacts {
-            signal: f.signal,
-            kind: match f.kind {
-                FlagKind::SingleDay => PacketKind::SingleDay,
-                FlagKind::Cusum => PacketKind::Cusum,
-                FlagKind::MultiSignal => PacketKind::MultiSignal,
-            },
-            level: match f.level {
-                FlagLevel::Watch => PacketLevel::Watch,
-                FlagLevel::Alert => PacketLevel::Alert,
-            },
-            first_day: f.first_day,
-            last_day: f.last_day,
-            date: f.date,
-            score: f.score,
-            reason: f.reason.clone(),
-        }
-    }
-}
-
-impl From<&crate::flags::ProspectiveDay> for DayRow {
-    fn from(d: &crate::flags::ProspectiveDay) -> DayRow {
-        use crate::flags::DayStatus;
-        DayRow {
-            signal: d.signal,
-            date: d.date,
-            observed: d.observed,
-            mean: d.mean,
-            sd: d.sd,
-            lo50: d.lo50,
-            hi50: d.hi50,
-            lo95: d.lo95,
-            hi95: d.hi95,
-            z: d.z,
-            tail_p: d.tail_p,
-            conditioned: d.conditioned,
-            status: match d.status {
-                DayStatus::BuildingBaseline => PacketDayStatus::BuildingBaseline,
-                DayStatus::Normal => PacketDayStatus::Normal,
-                DayStatus::Flagged => PacketDayStatus::Flagged,
-            },
-        }
-    }
 }
 
 #[cfg(test)]

@@ -33,6 +33,18 @@ fn invalid(field: impl Into<String>, reason: impl Into<String>) -> WireError {
     }
 }
 
+/// A study's `review_level`: WATCH or ALERT.
+pub fn review_level_from_pb(level: i32) -> Result<crate::flags::FlagLevel, WireError> {
+    match pb::FlagLevel::try_from(level) {
+        Ok(pb::FlagLevel::Watch) => Ok(crate::flags::FlagLevel::Watch),
+        Ok(pb::FlagLevel::Alert) => Ok(crate::flags::FlagLevel::Alert),
+        _ => Err(invalid(
+            "review_level",
+            format!("unknown or unspecified flag level {level}"),
+        )),
+    }
+}
+
 pub fn params_from_pb(field: &str, p: &pb::SignalParameters) -> Result<PriorParams, WireError> {
     let signal: Signal = p
         .signal

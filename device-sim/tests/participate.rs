@@ -102,6 +102,7 @@ async fn two_devices_take_part_over_tls_and_resume() {
                 aggregation: Default::default(),
                 alert_budget_per_participant_month:
                     plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
+                review_level: plimsoll_server::packets::FlagLevel::Alert,
             },
             now_ms(),
         )

@@ -79,6 +79,7 @@ fn world() -> World {
                 selection_seed: 1,
                 aggregation: Default::default(),
                 alert_budget_per_participant_month: plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
+                review_level: plimsoll_server::packets::FlagLevel::Alert,
             },
             0,
         )

@@ -65,6 +65,7 @@ async fn main() -> anyhow::Result<()> {
             aggregation: Default::default(),
             alert_budget_per_participant_month:
                 plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
+            review_level: plimsoll_server::packets::FlagLevel::Alert,
         },
         now_ms(),
     )?;

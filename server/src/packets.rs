@@ -1,9 +1,16 @@
-//! Flag packets: what a consenting device shares about one alarm, and the
+//! Flag packets: what a consenting device shares about one episode, and the
 //! checks a packet passes before the aggregator stores it.
 //!
 //! A packet is plain numbers the device already computed (observed values,
-//! personalised bands, the population band); the aggregator validates their
-//! shape and stores them for clinician review. It computes nothing from them.
+//! personalised bands, the population band, the episode's peak and its
+//! signals' departures); the aggregator validates their shape and stores
+//! them for clinician review. It computes nothing from them.
+//!
+//! One packet per episode: a device sends an episode again under the same
+//! [`EpisodeFacts::key`] as it grows, and the new version replaces the old
+//! one (see [`crate::store::Store::upsert_flag_packet`]). Packets stored
+//! before episodes existed were migrated into one-alarm-day episodes
+//! (`MIGRATE_EPISODES` in [`crate::store`]).
 
 use std::collections::BTreeSet;
 
@@ -43,13 +50,15 @@ impl FlagLevel {
     }
 }
 
-/// Which detector raised a flag.
+/// Which detector raised a flag. Devices send [`FlagKind::Episode`]; the
+/// other kinds name packets stored before episodes.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum FlagKind {
     SingleDay,
     Cusum,
     MultiSignal,
+    Episode,
 }
 
 impl FlagKind {
@@ -59,18 +68,97 @@ impl FlagKind {
             FlagKind::SingleDay => "single_day",
             FlagKind::Cusum => "cusum",
             FlagKind::MultiSignal => "multi_signal",
+            FlagKind::Episode => "episode",
         }
     }
 
     /// Plain-language name for display.
     pub fn label(self) -> &'static str {
         match self {
-            FlagKind::SingleDay => "single unusual day",
-            FlagKind::Cusum => "sustained shift",
-            FlagKind::MultiSignal => "several signals together",
+            FlagKind::SingleDay => "single unusual day (before episodes)",
+            FlagKind::Cusum => "sustained shift (before episodes)",
+            FlagKind::MultiSignal => "several signals together (before episodes)",
+            FlagKind::Episode => "signals departing together",
         }
     }
 }
+
+/// Whether a signal was above or below its expected level.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum SignalDirection {
+    Up,
+    Down,
+}
+
+impl SignalDirection {
+    /// "up" or "down".
+    pub fn as_str(self) -> &'static str {
+        match self {
+            SignalDirection::Up => "up",
+            SignalDirection::Down => "down",
+        }
+    }
+
+    /// An arrow for compact display (always next to the word or a label).
+    pub fn arrow(self) -> &'static str {
+        match self {
+            SignalDirection::Up => "↑",
+            SignalDirection::Down => "↓",
+        }
+    }
+}
+
+/// An episode's direction relative to the study's target pattern.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum PatternDirection {
+    /// Along the pattern (the only direction that is alerted and sent).
+    Target,
+    /// Opposite to the pattern (recorded on devices, never sent).
+    Mirror,
+}
+
+/// One signal's part in an episode's peak score.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SignalDeparture {
+    pub signal: String,
+    pub direction: SignalDirection,
+    /// Window departure in SDs of the personal baseline (for a migrated
+    /// single-signal packet: the old detector's signed statistic).
+    pub departure: f64,
+    /// Share of the peak score (score units).
+    pub contribution: f64,
+}
+
+/// What makes a packet an episode (the packet's `first_day`, `last_day`,
+/// `date`, `score` and `level` are its start, end so far, peak day, peak
+/// score and highest level).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct EpisodeFacts {
+    /// Device-chosen key, stable as the episode grows; unique per device.
+    /// Migrated packets have `legacy-<packet id>`.
+    pub key: String,
+    /// The episode may still grow.
+    pub ongoing: bool,
+    /// Relative to the study's pattern; `None` for a migrated single-signal
+    /// packet (the old detectors had no pattern direction).
+    pub direction: Option<PatternDirection>,
+    /// Signals in the peak score, largest contribution first (empty for a
+    /// migrated multi-signal packet, which did not record them).
+    pub involved: Vec<SignalDeparture>,
+    /// First day of the window that gave the peak score.
+    pub peak_window_start: NaiveDate,
+    /// Alarm days in the episode so far.
+    pub alarm_days: u32,
+}
+
+/// Prefix of the keys `MIGRATE_EPISODES` gives stored packets; refused in
+/// new packets so a device cannot overwrite a migrated one.
+pub const LEGACY_KEY_PREFIX: &str = "legacy-";
+
+/// Longest episode key, in bytes.
+pub const MAX_KEY_LEN: usize = 64;
 
 /// How a day entered the device's prospective scoring.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
@@ -116,10 +204,11 @@ pub struct SignalWindow {
     pub days: Vec<WindowDay>,
 }
 
-/// Everything a device shares about one alarm.
+/// Everything a device shares about one episode.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct FlagPacket {
-    /// The flagged signal; `None` for a multi-signal flag.
+    /// `None` for an episode; the one flagged signal of a migrated
+    /// single-signal packet.
     pub signal: Option<String>,
     pub kind: FlagKind,
     pub level: FlagLevel,
@@ -130,8 +219,9 @@ pub struct FlagPacket {
     pub reason: String,
     pub window_start: NaiveDate,
     pub window_end: NaiveDate,
-    /// The flagged signal first, then the participant's other signals.
+    /// The involved signals first, then the participant's other signals.
     pub signals: Vec<SignalWindow>,
+    pub episode: EpisodeFacts,
 }
 
 impl FlagPacket {
@@ -144,34 +234,30 @@ impl FlagPacket {
     /// the offending field as `packet.<path>`.
     pub fn validate(&self, config: &StudyConfig) -> Result<()> {
         let bad = |field: String, reason: String| AggregatorError::invalid(field, reason);
-        match (&self.signal, self.kind) {
-            (None, FlagKind::MultiSignal) => {}
-            (Some(_), FlagKind::MultiSignal) => {
-                return Err(bad(
-                    "packet.signal".into(),
-                    "must be empty for a multi-signal flag".into(),
-                ));
-            }
-            (None, _) => {
-                return Err(bad(
-                    "packet.signal".into(),
-                    format!("a {} flag names its signal", self.kind.as_str()),
-                ));
-            }
-            (Some(s), _) => {
-                if config.layout(s).is_none() {
-                    return Err(bad(
-                        "packet.signal".into(),
-                        format!("`{s}` is not a signal of study `{}`", config.study_id),
-                    ));
-                }
-                if self.signals.first().map(|w| &w.signal) != Some(s) {
-                    return Err(bad(
-                        "packet.signals[0].signal".into(),
-                        format!("the flagged signal `{s}` must come first"),
-                    ));
-                }
-            }
+        if self.kind != FlagKind::Episode {
+            return Err(bad(
+                "packet.kind".into(),
+                format!(
+                    "devices send episodes (FLAG_KIND_EPISODE); `{}` names packets stored before episodes",
+                    self.kind.as_str()
+                ),
+            ));
+        }
+        if let Some(s) = &self.signal {
+            return Err(bad(
+                "packet.signal".into(),
+                format!("must be empty for an episode (its signals are in `involved`), got `{s}`"),
+            ));
+        }
+        if self.level < config.review_level {
+            return Err(bad(
+                "packet.level".into(),
+                format!(
+                    "{} is below the study's lowest level sent for review ({})",
+                    self.level.as_str(),
+                    config.review_level.as_str()
+                ),
+            ));
         }
         if !self.score.is_finite() {
             return Err(bad(
@@ -213,10 +299,20 @@ impl FlagPacket {
                 format!("{} is after last_day {}", self.first_day, self.last_day),
             ));
         }
+        if self.date < self.first_day || self.date > self.last_day {
+            return Err(bad(
+                "packet.date".into(),
+                format!(
+                    "the peak day {} is outside the episode {}..={}",
+                    self.date, self.first_day, self.last_day
+                ),
+            ));
+        }
         for (field, day) in [
             ("first_day", self.first_day),
             ("last_day", self.last_day),
             ("date", self.date),
+            ("peak_window_start", self.episode.peak_window_start),
         ] {
             if day < self.window_start || day > self.window_end {
                 return Err(bad(
@@ -293,7 +389,119 @@ impl FlagPacket {
                 check_band(&at, [d.mean, d.lo50, d.hi50, d.lo95, d.hi95])?;
             }
         }
+        self.validate_episode(config)
+    }
+
+    /// The episode fields' checks (part of [`FlagPacket::validate`]).
+    fn validate_episode(&self, config: &StudyConfig) -> Result<()> {
+        let bad = |field: String, reason: String| AggregatorError::invalid(field, reason);
+        let e = &self.episode;
+        let key_ok = !e.key.is_empty()
+            && e.key.len() <= MAX_KEY_LEN
+            && e.key
+                .bytes()
+                .all(|b| b.is_ascii_alphanumeric() || b"_.:-".contains(&b));
+        if !key_ok {
+            return Err(bad(
+                "packet.episode_key".into(),
+                format!("`{}` must match [A-Za-z0-9_.:-]{{1,{MAX_KEY_LEN}}}", e.key),
+            ));
+        }
+        if e.key.starts_with(LEGACY_KEY_PREFIX) {
+            return Err(bad(
+                "packet.episode_key".into(),
+                format!("`{LEGACY_KEY_PREFIX}` keys are reserved for migrated packets"),
+            ));
+        }
+        if e.direction != Some(PatternDirection::Target) {
+            return Err(bad(
+                "packet.direction".into(),
+                "only episodes along the study's pattern (TARGET) are sent for review".into(),
+            ));
+        }
+        if e.alarm_days == 0 {
+            return Err(bad(
+                "packet.alarm_days".into(),
+                "an episode has at least one alarm day".into(),
+            ));
+        }
+        if e.peak_window_start > self.date {
+            return Err(bad(
+                "packet.peak_window_start".into(),
+                format!(
+                    "{} is after the peak day {}",
+                    e.peak_window_start, self.date
+                ),
+            ));
+        }
+        if e.involved.is_empty() {
+            return Err(bad(
+                "packet.involved".into(),
+                "at least one signal takes part in an episode".into(),
+            ));
+        }
+        let mut seen = BTreeSet::new();
+        for (i, d) in e.involved.iter().enumerate() {
+            let at = format!("packet.involved[{i}]");
+            if config.layout(&d.signal).is_none() {
+                return Err(bad(
+                    format!("{at}.signal"),
+                    format!(
+                        "`{}` is not a signal of study `{}`",
+                        d.signal, config.study_id
+                    ),
+                ));
+            }
+            if !seen.insert(&d.signal) {
+                return Err(bad(
+                    format!("{at}.signal"),
+                    format!("`{}` appears twice", d.signal),
+                ));
+            }
+            if !self.signals.iter().any(|w| w.signal == d.signal) {
+                return Err(bad(
+                    format!("{at}.signal"),
+                    format!("`{}` has no window in `signals`", d.signal),
+                ));
+            }
+            for (name, v) in [("departure", d.departure), ("contribution", d.contribution)] {
+                if !v.is_finite() {
+                    return Err(bad(format!("{at}.{name}"), format!("{v} is not finite")));
+                }
+            }
+            let sign_ok = match d.direction {
+                SignalDirection::Up => d.departure >= 0.0,
+                SignalDirection::Down => d.departure <= 0.0,
+            };
+            if !sign_ok {
+                return Err(bad(
+                    format!("{at}.direction"),
+                    format!(
+                        "{} does not match the departure {}",
+                        d.direction.as_str(),
+                        d.departure
+                    ),
+                ));
+            }
+        }
         Ok(())
+    }
+
+    /// Column names of the involved signals (or the one flagged signal of a
+    /// migrated single-signal packet).
+    pub fn involved_signals(&self) -> Vec<&str> {
+        let mut out: Vec<&str> = self
+            .episode
+            .involved
+            .iter()
+            .map(|d| d.signal.as_str())
+            .collect();
+        if let Some(s) = &self.signal
+            && !out.contains(&s.as_str())
+        {
+            out.push(s);
+        }
+        out
     }
 }
 

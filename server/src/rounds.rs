@@ -21,6 +21,7 @@ use crate::detection::{DetectionStage, DetectionStats, StageView, StatsOutcome};
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
+use crate::store::StoredEpisode;
 use crate::store::{CompletedStage, Store, StoredOpenRound};
 use crate::study::{
     Contribution, PriorVersion, SignalParams, SignalUpdate, StudyConfig, StudyStatus,
@@ -688,22 +689,24 @@ impl Coordinator {
         state.store.priors(study_id)
     }
 
-    /// Stores a flag packet from a device whose participant consented to
-    /// share flags; returns the packet's id. Refused (FAILED_PRECONDITION
-    /// naming `consent_share_flags`) without consent, before any validation.
+    /// Stores a flag packet (one episode) from a device whose participant
+    /// consented to share flags, replacing the stored version of the same
+    /// episode; returns the episode's id and how many versions it has had.
+    /// Refused (FAILED_PRECONDITION naming `consent_share_flags`) without
+    /// consent, before any validation.
     pub fn submit_flag_packet(
         &self,
         study_id: &str,
         device_id: u64,
         packet: &FlagPacket,
         now_ms: i64,
-    ) -> Result<u64> {
+    ) -> Result<StoredEpisode> {
         let mut state = self.lock();
         let State { store, studies } = &mut *state;
         let rt = study(studies, study_id)?;
         check_flag_consent(rt, study_id, device_id)?;
         packet.validate(&rt.config)?;
-        store.insert_flag_packet(study_id, device_id, packet, now_ms)
+        store.upsert_flag_packet(study_id, device_id, packet, now_ms)
     }
 
     /// `Ok` when `device_id` is enrolled in `study_id` with consent to share

@@ -189,7 +189,7 @@ impl Aggregator for AggregatorService {
         let c = self.coordinator.clone();
         let r = req.into_inner();
         let packet = wire::flag_packet_from_pb(r.packet);
-        let packet_id = blocking("SubmitFlagPacket", move || {
+        let stored = blocking("SubmitFlagPacket", move || {
             c.authenticate(&r.study_id, Some(r.device_id), &cred)?;
             // Consent is checked before the packet is even decoded, so a
             // device without consent is always told about consent first.
@@ -197,7 +197,10 @@ impl Aggregator for AggregatorService {
             c.submit_flag_packet(&r.study_id, r.device_id, &packet?, now_ms())
         })
         .await?;
-        Ok(Response::new(pb::SubmitFlagPacketResponse { packet_id }))
+        Ok(Response::new(pb::SubmitFlagPacketResponse {
+            packet_id: stored.packet_id,
+            revisions: stored.revisions,
+        }))
     }
 
     async fn submit_detection_stats(

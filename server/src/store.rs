@@ -15,11 +15,12 @@
 //!
 //! Schema versions: 1 is the federated-training schema; 2 adds the recorded
 //! consent on `devices`, flag packets, and the review tables (reviewers,
-//! their study assignments, sessions, and the append-only action log).
+//! their study assignments, sessions, and the append-only action log);
 //! 3 adds enrollment codes, device credentials and revocation; 4 adds the
 //! detector's calibration statistics (per-device submissions and each
-//! stage's published sum, see [`crate::detection`]). Opening an older
-//! database migrates it in one transaction.
+//! stage's published sum, see [`crate::detection`]); 5 makes every flag
+//! packet an episode (`MIGRATE_EPISODES`). Opening an older database
+//! migrates it in one transaction.
 
 use std::path::Path;
 
@@ -30,7 +31,7 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::study::{PriorVersion, SignalUpdate, StudyConfig};
 
-const SCHEMA_VERSION: i64 = 4;
+const SCHEMA_VERSION: i64 = 5;
 
 /// Version 1: federated training.
 const SCHEMA_V1: &str = "
@@ -178,6 +179,53 @@ pub struct CompletedStage {
     pub sum: DetectionStats,
 }
 
+/// Version 4 → 5: flag packets become episodes, one row per episode.
+///
+/// Each stored packet becomes **one episode of one alarm day** (its flag
+/// day), keyed `legacy-<packet id>`; packets are not grouped. Grouping by the
+/// episode rule would merge packets from different day-by-day detectors that
+/// reviewers acted on one by one, and their audit trails with them; kept
+/// apart, every packet keeps its id, its review actions and its status.
+/// The old packet's stretch is the episode's span (`first_day`..`last_day`),
+/// its flag day the peak, its score the peak score. A single-signal packet
+/// names its signal as the one involved, its direction the sign of the old
+/// statistic and no pattern direction (the old detectors had none); a
+/// multi-signal packet keeps the target direction and no per-signal
+/// departures (it did not record them).
+///
+/// New columns: `episode_key` (unique per device), `updated_ms` (last
+/// version received) and `revisions` (versions received).
+const MIGRATE_EPISODES: &str = "
+ALTER TABLE flag_packets ADD COLUMN episode_key TEXT;
+ALTER TABLE flag_packets ADD COLUMN updated_ms INTEGER;
+ALTER TABLE flag_packets ADD COLUMN revisions INTEGER NOT NULL DEFAULT 1;
+UPDATE flag_packets SET
+    episode_key = 'legacy-' || packet_id,
+    updated_ms = received_ms,
+    payload_json = json_set(payload_json, '$.episode', json_object(
+        'key', 'legacy-' || packet_id,
+        'ongoing', json('false'),
+        'direction', CASE kind WHEN 'multi_signal' THEN 'target' ELSE NULL END,
+        'involved', CASE WHEN signal = '' THEN json_array() ELSE json_array(json_object(
+            'signal', signal,
+            'direction', CASE WHEN json_extract(payload_json, '$.score') < 0
+                              THEN 'down' ELSE 'up' END,
+            'departure', json_extract(payload_json, '$.score'),
+            'contribution', json_extract(payload_json, '$.score'))) END,
+        'peak_window_start', json_extract(payload_json, '$.first_day'),
+        'alarm_days', 1));
+CREATE UNIQUE INDEX flag_packets_by_episode ON flag_packets (device_id, episode_key);
+UPDATE schema_version SET version = 5;
+";
+
+/// A stored episode: its id (the same for every version) and how many
+/// versions were received.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct StoredEpisode {
+    pub packet_id: u64,
+    pub revisions: u32,
+}
+
 /// Who a device is, as the credential check needs it.
 #[derive(Debug, Clone, PartialEq)]
 pub struct DeviceIdentity {
@@ -256,21 +304,29 @@ impl Store {
                 tx.execute_batch(MIGRATE_V1_TO_V2)?;
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
+                tx.execute_batch(MIGRATE_EPISODES)?;
             }
             Some(1) => {
-                tracing::info!("migrating the aggregator database from schema 1 to 4");
+                tracing::info!("migrating the aggregator database from schema 1 to 5");
                 tx.execute_batch(MIGRATE_V1_TO_V2)?;
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
+                tx.execute_batch(MIGRATE_EPISODES)?;
             }
             Some(2) => {
-                tracing::info!("migrating the aggregator database from schema 2 to 4");
+                tracing::info!("migrating the aggregator database from schema 2 to 5");
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
+                tx.execute_batch(MIGRATE_EPISODES)?;
             }
             Some(3) => {
-                tracing::info!("migrating the aggregator database from schema 3 to 4");
+                tracing::info!("migrating the aggregator database from schema 3 to 5");
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
+                tx.execute_batch(MIGRATE_EPISODES)?;
+            }
+            Some(4) => {
+                tracing::info!("migrating the aggregator database from schema 4 to 5 (episodes)");
+                tx.execute_batch(MIGRATE_EPISODES)?;
             }
             Some(SCHEMA_VERSION) => {}
             Some(other) => {
@@ -511,60 +567,115 @@ impl Store {
         Ok(())
     }
 
-    /// Stores a validated flag packet and returns its id. An identical packet
-    /// already stored for the same (device, signal, kind, date) returns the
-    /// stored id; a different one is `AlreadyExists`.
-    pub fn insert_flag_packet(
+    /// Stores a validated flag packet (one episode) and returns its id and
+    /// version count. The episode is identified by (device, episode key):
+    ///
+    /// - new key: a new row (revision 1);
+    /// - known key, identical payload: nothing changes (a retry);
+    /// - known key, another payload: the new version replaces the stored
+    ///   one in place (same id, so the review actions stay attached), unless
+    ///   it ends before the stored version (`last_day`), which would be an
+    ///   older version arriving late: FAILED_PRECONDITION naming
+    ///   `packet.last_day`.
+    ///
+    /// Two episodes of one device cannot share a peak day (alarm days belong
+    /// to one episode): ALREADY_EXISTS naming `packet.episode_key`.
+    pub fn upsert_flag_packet(
         &mut self,
         study_id: &str,
         device_id: u64,
         packet: &FlagPacket,
         now_ms: i64,
-    ) -> Result<u64> {
+    ) -> Result<StoredEpisode> {
+        let key = &packet.episode.key;
         let signal = packet.signal.clone().unwrap_or_default();
         let date = packet.date.to_string();
         let payload = to_json(packet);
         let tx = self.conn.transaction()?;
-        let existing: Option<(i64, String)> = tx
+        let existing: Option<(i64, String, i64)> = tx
             .query_row(
-                "SELECT packet_id, payload_json FROM flag_packets
-                 WHERE device_id = ?1 AND signal = ?2 AND kind = ?3 AND flag_date = ?4",
-                params![device_id as i64, signal, packet.kind.as_str(), date],
-                |r| Ok((r.get(0)?, r.get(1)?)),
+                "SELECT packet_id, payload_json, revisions FROM flag_packets
+                 WHERE device_id = ?1 AND episode_key = ?2",
+                params![device_id as i64, key],
+                |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
             )
             .optional()?;
-        if let Some((id, stored)) = existing {
-            if stored == payload {
-                return Ok(id as u64);
-            }
+        let clash: Option<String> = tx
+            .query_row(
+                "SELECT episode_key FROM flag_packets
+                 WHERE device_id = ?1 AND signal = ?2 AND kind = ?3 AND flag_date = ?4
+                   AND episode_key <> ?5",
+                params![device_id as i64, signal, packet.kind.as_str(), date, key],
+                |r| r.get(0),
+            )
+            .optional()?;
+        if let Some(other) = clash {
             return Err(AggregatorError::AlreadyExists(format!(
-                "packet: device {device_id} already sent a different {} packet for {} on {date}",
-                packet.kind.as_str(),
-                if signal.is_empty() {
-                    "several signals"
-                } else {
-                    &signal
-                }
+                "packet.episode_key: device {device_id} already sent episode `{other}` peaking on \
+                 {date}; an alarm day belongs to one episode"
             )));
         }
-        tx.execute(
-            "INSERT INTO flag_packets
-               (study_id, device_id, signal, kind, level, flag_date, payload_json, received_ms)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
-            params![
-                study_id,
-                device_id as i64,
-                signal,
-                packet.kind.as_str(),
-                packet.level.as_str(),
-                date,
-                payload,
-                now_ms
-            ],
-        )?;
-        let id = tx.last_insert_rowid() as u64;
+        let stored = match existing {
+            Some((id, stored, revisions)) if stored == payload => StoredEpisode {
+                packet_id: id as u64,
+                revisions: revisions as u32,
+            },
+            Some((id, stored, revisions)) => {
+                let old: FlagPacket = serde_json::from_str(&stored)
+                    .map_err(|e| corrupt(&format!("flag packet {id}"), e))?;
+                if packet.last_day < old.last_day {
+                    return Err(AggregatorError::FailedPrecondition(format!(
+                        "packet.last_day: episode `{key}` already ends on {} here; a version \
+                         ending on {} is older and does not replace it",
+                        old.last_day, packet.last_day
+                    )));
+                }
+                tx.execute(
+                    "UPDATE flag_packets
+                     SET signal = ?2, kind = ?3, level = ?4, flag_date = ?5, payload_json = ?6,
+                         updated_ms = ?7, revisions = revisions + 1
+                     WHERE packet_id = ?1",
+                    params![
+                        id,
+                        signal,
+                        packet.kind.as_str(),
+                        packet.level.as_str(),
+                        date,
+                        payload,
+                        now_ms
+                    ],
+                )?;
+                StoredEpisode {
+                    packet_id: id as u64,
+                    revisions: revisions as u32 + 1,
+                }
+            }
+            None => {
+                tx.execute(
+                    "INSERT INTO flag_packets
+                       (study_id, device_id, signal, kind, level, flag_date, payload_json,
+                        received_ms, episode_key, updated_ms, revisions)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?8, 1)",
+                    params![
+                        study_id,
+                        device_id as i64,
+                        signal,
+                        packet.kind.as_str(),
+                        packet.level.as_str(),
+                        date,
+                        payload,
+                        now_ms,
+                        key
+                    ],
+                )?;
+                StoredEpisode {
+                    packet_id: tx.last_insert_rowid() as u64,
+                    revisions: 1,
+                }
+            }
+        };
         tx.commit()?;
-        Ok(id)
+        Ok(stored)
     }
 
     /// All published priors of a study, oldest first.
@@ -1001,6 +1112,153 @@ mod tests {
         );
         drop(store);
         // Opening again is a no-op.
+        assert_eq!(
+            Store::open(&path).unwrap().schema_version().unwrap(),
+            SCHEMA_VERSION
+        );
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+
+    /// A flag packet as schema 3 stored it (before episodes), as JSON.
+    fn legacy_payload(signal: Option<&str>, kind: &str, day: &str, score: f64) -> String {
+        let window_day = serde_json::json!({
+            "date": day, "observed": 70.0, "mean": 62.0, "sd": 2.5,
+            "lo50": 60.3, "hi50": 63.7, "lo95": 57.1, "hi95": 66.9,
+            "z": 3.2, "tail_p": 0.0014, "conditioned": false, "status": "flagged"
+        });
+        let column = signal.unwrap_or("resting_hr_bpm");
+        serde_json::json!({
+            "signal": signal, "kind": kind, "level": "alert",
+            "first_day": "2024-04-01", "last_day": day, "date": day, "score": score,
+            "reason": format!("old {kind} flag"),
+            "window_start": "2024-03-04", "window_end": "2024-04-05",
+            "signals": [{
+                "signal": column,
+                "population": {"mean": 62.0, "lo50": 58.0, "hi50": 66.0, "lo95": 50.0, "hi95": 74.0},
+                "days": [window_day]
+            }]
+        })
+        .to_string()
+    }
+
+    /// Source: the brief's migration rule (each stored packet becomes one episode of one
+    /// alarm day; its review actions stay attached) and common practice (a migration keeps
+    /// every row and every audit record).
+    #[test]
+    fn a_version_3_database_migrates_every_packet_and_action_into_episodes() {
+        use crate::packets::{PatternDirection, SignalDirection};
+        use crate::review::db;
+        let dir = std::env::temp_dir().join(format!("plimsoll-migrate-v3-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = dir.join("v3.db");
+        let _ = std::fs::remove_file(&path);
+        {
+            let conn = Connection::open(&path).unwrap();
+            conn.execute_batch(SCHEMA_V1).unwrap();
+            conn.execute("INSERT INTO schema_version (version) VALUES (1)", [])
+                .unwrap();
+            conn.execute_batch(MIGRATE_V1_TO_V2).unwrap();
+            conn.execute_batch(MIGRATE_V2_TO_V3).unwrap();
+            conn.execute_batch(
+                "INSERT INTO studies (study_id, config_json, created_ms) VALUES ('s', '{}', 0);
+                 INSERT INTO devices (study_id, label, signals_json, enrolled_ms, consent_share_flags)
+                   VALUES ('s', 'p-1', '[]', 0, 1);
+                 INSERT INTO reviewers VALUES ('r', 'x', 0);",
+            )
+            .unwrap();
+            let packets = [
+                (Some("hrv_rmssd_ms"), "single_day", "2024-04-02", -3.4),
+                (Some("resting_hr_bpm"), "cusum", "2024-04-03", 6.1),
+                (None, "multi_signal", "2024-04-04", 4.2),
+            ];
+            for (signal, kind, day, score) in packets {
+                conn.execute(
+                    "INSERT INTO flag_packets
+                       (study_id, device_id, signal, kind, level, flag_date, payload_json, received_ms)
+                     VALUES ('s', 1, ?1, ?2, 'alert', ?3, ?4, 1000)",
+                    params![
+                        signal.unwrap_or(""),
+                        kind,
+                        day,
+                        legacy_payload(signal, kind, day, score)
+                    ],
+                )
+                .unwrap();
+            }
+            conn.execute_batch(
+                "INSERT INTO review_actions (packet_id, reviewer, action, note, at_ms)
+                   VALUES (1, 'r', 'acknowledge', 'seen', 2000),
+                          (1, 'r', 'escalate', 'to the nurse', 3000),
+                          (3, 'r', 'dismiss', 'known cause', 4000);",
+            )
+            .unwrap();
+            let version: i64 = conn
+                .query_row("SELECT version FROM schema_version", [], |r| r.get(0))
+                .unwrap();
+            assert_eq!(version, 3);
+        }
+        let mut store = Store::open(&path).unwrap();
+        assert_eq!(store.schema_version().unwrap(), SCHEMA_VERSION);
+        assert_eq!(store.integrity_check().unwrap(), ["ok"]);
+
+        let queue = db::queue(&store, "s", &db::QueueFilter::default()).unwrap();
+        assert_eq!(queue.len(), 3, "every packet survives as an episode");
+        let status = |id: u64| queue.iter().find(|e| e.packet_id == id).unwrap().status;
+        assert_eq!(status(1), db::ReviewStatus::Escalated);
+        assert_eq!(status(2), db::ReviewStatus::New);
+        assert_eq!(status(3), db::ReviewStatus::Dismissed);
+
+        let hrv = db::flag(&store, 1).unwrap().unwrap();
+        assert_eq!(hrv.history.len(), 2, "every action survives");
+        assert_eq!(hrv.history[1].note, "to the nurse");
+        assert_eq!(hrv.revisions, 1);
+        assert_eq!(hrv.updated_ms, 1000);
+        let e = &hrv.packet.episode;
+        assert_eq!(e.key, "legacy-1");
+        assert_eq!(e.alarm_days, 1);
+        assert!(!e.ongoing);
+        assert_eq!(
+            e.direction, None,
+            "the old single-signal flags had no pattern"
+        );
+        assert_eq!(e.involved.len(), 1);
+        assert_eq!(e.involved[0].signal, "hrv_rmssd_ms");
+        assert_eq!(e.involved[0].direction, SignalDirection::Down);
+        assert_eq!(e.involved[0].departure, -3.4);
+        assert_eq!(e.peak_window_start.to_string(), "2024-04-01");
+        assert_eq!(
+            hrv.packet.reason, "old single_day flag",
+            "the reason is kept"
+        );
+
+        let cusum = db::flag(&store, 2).unwrap().unwrap();
+        assert_eq!(
+            cusum.packet.episode.involved[0].direction,
+            SignalDirection::Up
+        );
+        let multi = db::flag(&store, 3).unwrap().unwrap();
+        assert_eq!(
+            multi.packet.episode.direction,
+            Some(PatternDirection::Target)
+        );
+        assert!(multi.packet.episode.involved.is_empty());
+        assert_eq!(multi.history.len(), 1);
+
+        // A device's new episode goes next to the migrated ones; a key starting
+        // with `legacy-` cannot be sent (see `FlagPacket::validate`).
+        let mut fresh = hrv.packet.clone();
+        fresh.episode.key = "ep-2024-04-09".into();
+        fresh.date = "2024-04-05".parse().unwrap();
+        fresh.last_day = fresh.date;
+        let stored = store.upsert_flag_packet("s", 1, &fresh, 5000).unwrap();
+        assert_eq!(
+            stored,
+            StoredEpisode {
+                packet_id: 4,
+                revisions: 1
+            }
+        );
+        drop(store);
         assert_eq!(
             Store::open(&path).unwrap().schema_version().unwrap(),
             SCHEMA_VERSION

@@ -81,6 +81,10 @@ pub struct StudyConfig {
     /// calibrate their thresholds to it; > 0.
     #[serde(default = "default_alert_budget")]
     pub alert_budget_per_participant_month: f64,
+    /// Lowest episode level devices send for clinician review (Alert unless
+    /// set); the aggregator refuses packets below it.
+    #[serde(default = "default_review_level")]
+    pub review_level: crate::packets::FlagLevel,
 }
 
 /// Default false-alarm budget: 0.3 Alert episodes per participant-month
@@ -89,6 +93,11 @@ pub const DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH: f64 = 0.3;
 
 fn default_alert_budget() -> f64 {
     DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH
+}
+
+/// Studies from before the setting existed send Alerts only.
+fn default_review_level() -> crate::packets::FlagLevel {
+    crate::packets::FlagLevel::Alert
 }
 
 impl StudyConfig {

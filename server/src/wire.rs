@@ -7,7 +7,8 @@ use tonic::Status;
 use crate::detection::{DetectionStage, DetectionStats, StageView};
 use crate::error::{AggregatorError, Result};
 use crate::packets::{
-    DayStatus, FlagKind, FlagLevel, FlagPacket, PopulationBand, SignalWindow, WindowDay,
+    DayStatus, EpisodeFacts, FlagKind, FlagLevel, FlagPacket, PatternDirection, PopulationBand,
+    SignalDeparture, SignalDirection, SignalWindow, WindowDay,
 };
 use crate::study::{
     Contribution, LocalTraining, Optimizer, PriorVersion, SignalParams, SignalUpdate, StudyStatus,
@@ -114,6 +115,14 @@ pub fn status_to_pb(s: &StudyStatus) -> pb::Study {
         prior_version: s.prior_version,
         min_quorum: s.config.min_quorum,
         alert_budget_per_participant_month: s.config.alert_budget_per_participant_month,
+        review_level: level_to_pb(s.config.review_level) as i32,
+    }
+}
+
+fn level_to_pb(level: FlagLevel) -> pb::FlagLevel {
+    match level {
+        FlagLevel::Watch => pb::FlagLevel::Watch,
+        FlagLevel::Alert => pb::FlagLevel::Alert,
     }
 }
 
@@ -238,6 +247,7 @@ pub fn flag_packet_from_pb(p: Option<pb::FlagPacket>) -> Result<FlagPacket> {
         Ok(pb::FlagKind::SingleDay) => FlagKind::SingleDay,
         Ok(pb::FlagKind::Cusum) => FlagKind::Cusum,
         Ok(pb::FlagKind::MultiSignal) => FlagKind::MultiSignal,
+        Ok(pb::FlagKind::Episode) => FlagKind::Episode,
         _ => {
             return Err(AggregatorError::invalid(
                 "packet.kind",
@@ -293,6 +303,43 @@ pub fn flag_packet_from_pb(p: Option<pb::FlagPacket>) -> Result<FlagPacket> {
             days,
         });
     }
+    let direction = match pb::PatternDirection::try_from(p.direction) {
+        Ok(pb::PatternDirection::Target) => PatternDirection::Target,
+        Ok(pb::PatternDirection::Mirror) => PatternDirection::Mirror,
+        _ => {
+            return Err(AggregatorError::invalid(
+                "packet.direction",
+                format!("unknown or unspecified pattern direction {}", p.direction),
+            ));
+        }
+    };
+    let mut involved = Vec::with_capacity(p.involved.len());
+    for (i, d) in p.involved.into_iter().enumerate() {
+        let direction = match pb::SignalDirection::try_from(d.direction) {
+            Ok(pb::SignalDirection::Up) => SignalDirection::Up,
+            Ok(pb::SignalDirection::Down) => SignalDirection::Down,
+            _ => {
+                return Err(AggregatorError::invalid(
+                    format!("packet.involved[{i}].direction"),
+                    format!("unknown or unspecified signal direction {}", d.direction),
+                ));
+            }
+        };
+        involved.push(SignalDeparture {
+            signal: d.signal,
+            direction,
+            departure: d.departure,
+            contribution: d.contribution,
+        });
+    }
+    let episode = EpisodeFacts {
+        key: p.episode_key,
+        ongoing: p.ongoing,
+        direction: Some(direction),
+        involved,
+        peak_window_start: date_from_pb("packet.peak_window_start", &p.peak_window_start)?,
+        alarm_days: p.alarm_days,
+    };
     Ok(FlagPacket {
         signal: (!p.signal.is_empty()).then_some(p.signal),
         kind,
@@ -305,5 +352,6 @@ pub fn flag_packet_from_pb(p: Option<pb::FlagPacket>) -> Result<FlagPacket> {
         window_start: date_from_pb("packet.window_start", &p.window_start)?,
         window_end: date_from_pb("packet.window_end", &p.window_end)?,
         signals,
+        episode,
     })
 }

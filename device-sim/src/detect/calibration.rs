@@ -236,4 +236,89 @@ impl StudyCalibration {
     pub fn rate_at(&self, score: f64) -> f64 {
         self.histogram.rate_at(score)
     }
+
+    /// The fallback when the study has no calibration yet: independent signals (identity
+    /// correlation), an empty histogram, and thresholds from the **nominal Gaussian rule**:
+    ///
+    /// ```text
+    /// h(B) = Φ⁻¹(1 − B / DAYS_PER_MONTH)
+    /// ```
+    ///
+    /// the score a standard normal day exceeds on `B` days per participant-month, with
+    /// `B` = [`NOMINAL_ALERT_PER_MONTH`] (Alert, h ≈ 2.33) and [`NOMINAL_WATCH_PER_MONTH`]
+    /// (Watch, h ≈ 1.89). The day's score is N(0, 1) under the model only for one window
+    /// with correctly modelled, independent residuals; it is the maximum over several windows
+    /// and real residuals are correlated, so the real rate is higher. Every reason made under
+    /// this calibration says it is uncalibrated ([`StudyCalibration::is_calibrated`]).
+    pub fn uncalibrated() -> StudyCalibration {
+        let nominal = |per_month: f64| Calibrated {
+            threshold: nominal_threshold(per_month),
+            rate: per_month,
+            capped: false,
+        };
+        StudyCalibration {
+            correlation: Correlation::identity(),
+            budget_per_month: NOMINAL_ALERT_PER_MONTH,
+            alert: nominal(NOMINAL_ALERT_PER_MONTH),
+            watch: nominal(NOMINAL_WATCH_PER_MONTH),
+            histogram: EpisodeHistogram::default(),
+            moment_devices: 0,
+            histogram_devices: 0,
+        }
+    }
+
+    /// The calibration of a study from its summed histogram and learned correlation, at the
+    /// given Alert and Watch budgets (episodes per participant-month; Watch ≥ Alert), when
+    /// the number of contributing devices is not known (tests, the evaluation).
+    pub fn from_histogram(
+        correlation: Correlation,
+        histogram: EpisodeHistogram,
+        alert_per_month: f64,
+        watch_per_month: f64,
+    ) -> StudyCalibration {
+        StudyCalibration {
+            correlation,
+            budget_per_month: alert_per_month,
+            alert: histogram.threshold_for(alert_per_month),
+            watch: histogram.threshold_for(watch_per_month.max(alert_per_month)),
+            histogram,
+            moment_devices: 0,
+            histogram_devices: 0,
+        }
+    }
+
+    /// True when the thresholds come from the study's data (its histogram has scored days),
+    /// false for [`StudyCalibration::uncalibrated`].
+    pub fn is_calibrated(&self) -> bool {
+        self.histogram.scored_days > 0
+    }
+
+    /// Participant-months of data behind the histogram.
+    pub fn participant_months(&self) -> f64 {
+        self.histogram.scored_days as f64 / DAYS_PER_MONTH
+    }
+}
+
+/// Alert budget of [`StudyCalibration::uncalibrated`]: episodes per participant-month (the
+/// evaluation's default budget).
+pub const NOMINAL_ALERT_PER_MONTH: f64 = 0.3;
+
+/// Watch budget of [`StudyCalibration::uncalibrated`]: [`WATCH_BUDGET_FACTOR`] times the
+/// Alert budget (as the evaluation calibrates Watch).
+pub const NOMINAL_WATCH_PER_MONTH: f64 = WATCH_BUDGET_FACTOR * NOMINAL_ALERT_PER_MONTH;
+
+/// `Φ⁻¹(1 − per_month / DAYS_PER_MONTH)`: the nominal threshold for a rate of `per_month`
+/// days per participant-month (see [`StudyCalibration::uncalibrated`]).
+pub fn nominal_threshold(per_month: f64) -> f64 {
+    use statrs::distribution::{ContinuousCDF, Normal};
+    let p = (per_month / DAYS_PER_MONTH).clamp(1e-12, 0.5);
+    Normal::standard().inverse_cdf(1.0 - p)
+}
+
+/// The model's nominal rate of a score at least `score`: `(1 − Φ(score)) · DAYS_PER_MONTH`
+/// days per participant-month, were the day's score standard normal (see
+/// [`StudyCalibration::uncalibrated`] for why it is not).
+pub fn nominal_rate(score: f64) -> f64 {
+    use statrs::distribution::{ContinuousCDF, Normal};
+    Normal::standard().sf(score) * DAYS_PER_MONTH
 }

@@ -4,8 +4,8 @@
 //!
 //! Entry point: [`score_participant`] (one participant's daily scores), then
 //! [`episodes::group`] at the calibrated thresholds. Everything here runs on the device.
-//! The old day-by-day detectors stay in [`crate::flags`] for the device report until it moves
-//! here.
+//! The device's flags and report use it through [`crate::episode_flags`]; the old day-by-day
+//! detectors in [`crate::flags`] remain only for their own tests and benchmark.
 //!
 //! # Baseline ([`baseline`])
 //! For each signal, the one-step predictor (the exact filter of the shared prior, or a

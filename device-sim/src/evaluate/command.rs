@@ -206,6 +206,7 @@ pub async fn learn_prior(
         aggregation: Default::default(),
         alert_budget_per_participant_month:
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
+        review_level: plimsoll_server::packets::FlagLevel::Alert,
     };
     let (first, version) = federated_pass(
         &training_cohort,

@@ -1,11 +1,13 @@
 //! What the review pages read from and append to the aggregator database:
-//! study overviews, the flag queue, one flag with its audit trail, and
-//! reviewer actions.
+//! study overviews, the episode queue, one episode with its audit trail, and
+//! reviewer actions. A flag packet is one episode (its versions replace each
+//! other in place), so an action recorded on a packet id applies to the
+//! episode, whatever version the device sends next.
 
 use rusqlite::{OptionalExtension, params};
 
 use crate::error::{AggregatorError, Result};
-use crate::packets::{FlagKind, FlagLevel, FlagPacket};
+use crate::packets::{FlagKind, FlagLevel, FlagPacket, PatternDirection, SignalDirection};
 use crate::store::Store;
 use crate::study::{PriorVersion, StudyConfig};
 
@@ -100,17 +102,32 @@ pub struct StudyOverview {
     pub flags_new: usize,
 }
 
-/// One row of the flag queue.
+/// One row of the queue: one episode.
 #[derive(Debug, Clone, PartialEq)]
 pub struct QueueEntry {
     pub packet_id: u64,
     pub participant: String,
+    /// The one flagged signal of a migrated single-signal packet.
     pub signal: Option<String>,
     pub kind: FlagKind,
+    /// Highest level the episode reached.
     pub level: FlagLevel,
+    /// Peak day.
     pub date: String,
+    /// Episode start and end so far.
+    pub start: chrono::NaiveDate,
+    pub end: chrono::NaiveDate,
+    pub ongoing: bool,
+    /// Involved signals with their direction, largest contribution first.
+    pub involved: Vec<(String, SignalDirection)>,
+    pub direction: Option<PatternDirection>,
+    /// Peak score.
     pub score: f64,
     pub status: ReviewStatus,
+    /// Versions of the episode received.
+    pub revisions: u32,
+    /// A newer version arrived after the latest review action.
+    pub updated_since_review: bool,
 }
 
 /// Which flags the queue shows; `None` shows all.
@@ -130,7 +147,7 @@ pub struct ActionRecord {
     pub at_ms: i64,
 }
 
-/// A stored flag packet with what the review knows about it.
+/// A stored episode (its latest version) with what the review knows about it.
 #[derive(Debug, Clone)]
 pub struct FlagRecord {
     pub packet_id: u64,
@@ -138,7 +155,12 @@ pub struct FlagRecord {
     pub device_id: u64,
     pub participant: String,
     pub packet: FlagPacket,
+    /// When the first version arrived.
     pub received_ms: i64,
+    /// When the latest version arrived.
+    pub updated_ms: i64,
+    /// Versions received.
+    pub revisions: u32,
     /// Oldest first; the last one is the flag's status.
     pub history: Vec<ActionRecord>,
 }
@@ -198,76 +220,128 @@ pub fn study_titles(store: &Store, ids: &[String]) -> Result<Vec<(String, String
 
 const LATEST_ACTION: &str = "(SELECT a.action FROM review_actions a
                               WHERE a.packet_id = p.packet_id ORDER BY a.action_id DESC LIMIT 1)";
+const LATEST_ACTION_MS: &str = "(SELECT a.at_ms FROM review_actions a
+                                 WHERE a.packet_id = p.packet_id ORDER BY a.action_id DESC LIMIT 1)";
 
-fn queue_entry(r: &rusqlite::Row<'_>) -> rusqlite::Result<QueueEntry> {
-    let signal: String = r.get(2)?;
-    let kind: String = r.get(3)?;
-    let level: String = r.get(4)?;
-    Ok(QueueEntry {
-        packet_id: r.get::<_, i64>(0)? as u64,
-        participant: r.get(1)?,
-        signal: (!signal.is_empty()).then_some(signal),
-        kind: match kind.as_str() {
-            "cusum" => FlagKind::Cusum,
-            "multi_signal" => FlagKind::MultiSignal,
-            _ => FlagKind::SingleDay,
-        },
-        level: FlagLevel::parse(&level).unwrap_or(FlagLevel::Watch),
-        date: r.get(5)?,
-        score: r.get::<_, Option<f64>>(6)?.unwrap_or(f64::NAN),
-        status: ReviewStatus::from_latest(r.get(7)?),
-    })
+/// Columns [`queue_entry`] reads, in order.
+fn queue_columns() -> String {
+    format!(
+        "p.packet_id, d.label, p.payload_json, {LATEST_ACTION}, {LATEST_ACTION_MS},
+         p.revisions, COALESCE(p.updated_ms, p.received_ms)"
+    )
 }
 
-/// The study's flags, Alert before Watch, then newest first, filtered.
-pub fn queue(store: &Store, study_id: &str, filter: &QueueFilter) -> Result<Vec<QueueEntry>> {
-    let sql = format!(
-        "SELECT p.packet_id, d.label, p.signal, p.kind, p.level, p.flag_date,
-                json_extract(p.payload_json, '$.score'), {LATEST_ACTION}
-         FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
-         WHERE p.study_id = ?1
-         ORDER BY (p.level = 'alert') DESC, p.flag_date DESC, p.packet_id DESC"
-    );
-    let mut stmt = store.conn().prepare(&sql)?;
-    let rows = stmt.query_map([study_id], queue_entry)?;
+fn queue_entry(r: &rusqlite::Row<'_>) -> rusqlite::Result<Result<QueueEntry>> {
+    let packet_id = r.get::<_, i64>(0)? as u64;
+    let payload: String = r.get(2)?;
+    let latest_ms: Option<i64> = r.get(4)?;
+    let updated_ms: i64 = r.get(6)?;
+    let revisions = r.get::<_, i64>(5)? as u32;
+    let status = ReviewStatus::from_latest(r.get(3)?);
+    let participant: String = r.get(1)?;
+    Ok(serde_json::from_str::<FlagPacket>(&payload)
+        .map_err(|e| corrupt(format!("flag packet {packet_id}"), e))
+        .map(|p| QueueEntry {
+            packet_id,
+            participant,
+            kind: p.kind,
+            level: p.level,
+            date: p.date.to_string(),
+            start: p.first_day,
+            end: p.last_day,
+            ongoing: p.episode.ongoing,
+            involved: match &p.signal {
+                Some(s) if p.episode.involved.is_empty() => {
+                    vec![(s.clone(), SignalDirection::Up)]
+                }
+                _ => p
+                    .episode
+                    .involved
+                    .iter()
+                    .map(|d| (d.signal.clone(), d.direction))
+                    .collect(),
+            },
+            direction: p.episode.direction,
+            score: p.score,
+            status,
+            revisions,
+            updated_since_review: latest_ms.is_some_and(|at| at < updated_ms) && revisions > 1,
+            signal: p.signal,
+        }))
+}
+
+fn collect_entries(
+    rows: impl Iterator<Item = rusqlite::Result<Result<QueueEntry>>>,
+) -> Result<Vec<QueueEntry>> {
     let mut out = Vec::new();
     for row in rows {
-        let entry = row?;
-        let keep = filter
-            .signal
-            .as_ref()
-            .is_none_or(|s| entry.signal.as_ref() == Some(s))
-            && filter.level.is_none_or(|l| entry.level == l)
-            && filter.status.is_none_or(|s| entry.status == s);
-        if keep {
-            out.push(entry);
-        }
+        out.push(row??);
     }
     Ok(out)
 }
 
-/// Signals that appear in the study's flags, sorted (for the queue filter).
+/// The study's episodes, Alert before Watch, then newest peak first,
+/// filtered (by signal: the episodes that involve it).
+pub fn queue(store: &Store, study_id: &str, filter: &QueueFilter) -> Result<Vec<QueueEntry>> {
+    let sql = format!(
+        "SELECT {}
+         FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
+         WHERE p.study_id = ?1
+         ORDER BY (p.level = 'alert') DESC, p.flag_date DESC, p.packet_id DESC",
+        queue_columns()
+    );
+    let mut stmt = store.conn().prepare(&sql)?;
+    let entries = collect_entries(stmt.query_map([study_id], queue_entry)?)?;
+    Ok(entries
+        .into_iter()
+        .filter(|entry| {
+            filter
+                .signal
+                .as_ref()
+                .is_none_or(|s| entry.involved.iter().any(|(i, _)| i == s))
+                && filter.level.is_none_or(|l| entry.level == l)
+                && filter.status.is_none_or(|s| entry.status == s)
+        })
+        .collect())
+}
+
+/// Signals involved in the study's episodes, sorted (for the queue filter).
 pub fn flagged_signals(store: &Store, study_id: &str) -> Result<Vec<String>> {
-    let mut stmt = store.conn().prepare(
-        "SELECT DISTINCT signal FROM flag_packets WHERE study_id = ?1 AND signal <> '' ORDER BY signal",
-    )?;
-    let rows = stmt.query_map([study_id], |r| r.get::<_, String>(0))?;
-    Ok(rows.collect::<rusqlite::Result<Vec<_>>>()?)
+    let mut signals: Vec<String> = queue(store, study_id, &QueueFilter::default())?
+        .into_iter()
+        .flat_map(|e| e.involved.into_iter().map(|(s, _)| s))
+        .collect();
+    signals.sort_unstable();
+    signals.dedup();
+    Ok(signals)
 }
 
 /// One flag with its audit trail, or `None` when it does not exist.
 pub fn flag(store: &Store, packet_id: u64) -> Result<Option<FlagRecord>> {
     let conn = store.conn();
-    let row: Option<(String, i64, String, String, i64)> = conn
+    type Row = (String, i64, String, String, i64, Option<i64>, i64);
+    let row: Option<Row> = conn
         .query_row(
-            "SELECT p.study_id, p.device_id, d.label, p.payload_json, p.received_ms
+            "SELECT p.study_id, p.device_id, d.label, p.payload_json, p.received_ms,
+                    p.updated_ms, p.revisions
              FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
              WHERE p.packet_id = ?1",
             [packet_id as i64],
-            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?)),
+            |r| {
+                Ok((
+                    r.get(0)?,
+                    r.get(1)?,
+                    r.get(2)?,
+                    r.get(3)?,
+                    r.get(4)?,
+                    r.get(5)?,
+                    r.get(6)?,
+                ))
+            },
         )
         .optional()?;
-    let Some((study_id, device_id, participant, payload, received_ms)) = row else {
+    let Some((study_id, device_id, participant, payload, received_ms, updated_ms, revisions)) = row
+    else {
         return Ok(None);
     };
     let packet: FlagPacket = serde_json::from_str(&payload)
@@ -303,18 +377,20 @@ pub fn flag(store: &Store, packet_id: u64) -> Result<Option<FlagRecord>> {
         participant,
         packet,
         received_ms,
+        updated_ms: updated_ms.unwrap_or(received_ms),
+        revisions: revisions as u32,
         history,
     }))
 }
 
-/// The same participant's other flags raised within `record`'s window.
+/// The same participant's other episodes peaking within `record`'s window.
 pub fn related_flags(store: &Store, record: &FlagRecord) -> Result<Vec<QueueEntry>> {
     let sql = format!(
-        "SELECT p.packet_id, d.label, p.signal, p.kind, p.level, p.flag_date,
-                json_extract(p.payload_json, '$.score'), {LATEST_ACTION}
+        "SELECT {}
          FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
          WHERE p.device_id = ?1 AND p.packet_id <> ?2 AND p.flag_date BETWEEN ?3 AND ?4
-         ORDER BY p.flag_date, p.packet_id"
+         ORDER BY p.flag_date, p.packet_id",
+        queue_columns()
     );
     let mut stmt = store.conn().prepare(&sql)?;
     let rows = stmt.query_map(
@@ -326,10 +402,11 @@ pub fn related_flags(store: &Store, record: &FlagRecord) -> Result<Vec<QueueEntr
         ],
         queue_entry,
     )?;
-    Ok(rows.collect::<rusqlite::Result<Vec<_>>>()?)
+    collect_entries(rows)
 }
 
-/// Appends a reviewer's action to a flag's audit trail.
+/// Appends a reviewer's action to an episode's audit trail (it applies to
+/// the episode: later versions keep the id and the trail).
 pub fn record_action(
     store: &Store,
     packet_id: u64,

@@ -1,6 +1,7 @@
 //! Clinician review of flag packets, served over HTTP by the aggregator
-//! process: study overview, flag queue, one flag with its charts, and
-//! reviewer actions kept as an append-only audit trail.
+//! process: study overview, the episode queue (one row per episode), one
+//! episode with every involved signal's chart and departure, and reviewer
+//! actions on the episode kept as an append-only audit trail.
 //!
 //! Access: reviewer accounts are made on the command line
 //! (`plimsoll-aggregator reviewer add|assign`); a reviewer logs in with a

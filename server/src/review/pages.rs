@@ -1,4 +1,5 @@
-//! The review pages: login, studies, study overview, flag queue and one flag.
+//! The review pages: login, studies, study overview, the episode queue and
+//! one episode.
 
 use std::fmt::Write;
 
@@ -8,7 +9,7 @@ use super::accounts::Session;
 use super::charts::{ConvergenceChart, SeriesChart, fmt_num, marker, palette};
 use super::db::{FlagRecord, QueueEntry, QueueFilter, ReviewAction, ReviewStatus, StudyOverview};
 use super::html::{esc, page};
-use crate::packets::{DayStatus, FlagLevel, SignalWindow};
+use crate::packets::{DayStatus, FlagLevel, FlagPacket, PatternDirection, SignalWindow};
 use crate::presentation::{label_of, plain_prior, unit_of};
 
 /// A UTC timestamp for display.
@@ -44,6 +45,39 @@ fn signal_name(signal: Option<&str>) -> String {
     signal.map_or_else(|| "Several signals".into(), label_of)
 }
 
+/// "Resting heart rate ↑ up, Overnight HRV ↓ down" (the word always with the arrow).
+fn involved_text(involved: &[(String, crate::packets::SignalDirection)]) -> String {
+    if involved.is_empty() {
+        return "several signals (not recorded)".into();
+    }
+    involved
+        .iter()
+        .map(|(s, d)| format!("{} {} {}", label_of(s), d.arrow(), d.as_str()))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+fn direction_text(direction: Option<PatternDirection>) -> &'static str {
+    match direction {
+        Some(PatternDirection::Target) => "along the study's pattern",
+        Some(PatternDirection::Mirror) => "opposite to the study's pattern",
+        None => "single signal (before episodes)",
+    }
+}
+
+/// "2024-04-08 to 2024-04-11, ongoing".
+fn span_text(start: NaiveDate, end: NaiveDate, ongoing: bool) -> String {
+    let mut out = if start == end {
+        start.to_string()
+    } else {
+        format!("{start} to {end}")
+    };
+    if ongoing {
+        out.push_str(", ongoing");
+    }
+    out
+}
+
 pub fn login(error: Option<&str>) -> String {
     let mut body = String::new();
     if let Some(e) = error {
@@ -68,7 +102,7 @@ pub fn studies(session: &Session, titles: &[(String, String)]) -> String {
         for (id, title) in titles {
             let _ = write!(
                 body,
-                r#"<li><a href="/study/{id}">{}</a> <span class="muted">({})</span> — <a href="/study/{id}/flags">flag queue</a></li>"#,
+                r#"<li><a href="/study/{id}">{}</a> <span class="muted">({})</span> — <a href="/study/{id}/flags">episode queue</a></li>"#,
                 esc(title),
                 esc(id),
                 id = esc(id)
@@ -85,7 +119,7 @@ pub fn overview(session: &Session, o: &StudyOverview) -> String {
     let mut body = String::new();
     let _ = write!(
         body,
-        r#"<p class="muted">Study <code>{}</code>. <a href="/study/{}/flags">Open the flag queue</a> ({} flags, {} not yet reviewed).</p>
+        r#"<p class="muted">Study <code>{}</code>. <a href="/study/{}/flags">Open the episode queue</a> ({} episodes, {} not yet reviewed).</p>
 <dl class="facts">
 <div><dt>Participants enrolled</dt><dd>{}</dd></div>
 <div><dt>Sharing flags (consented)</dt><dd>{}</dd></div>
@@ -260,38 +294,44 @@ pub fn queue(
         r#"</select></div>
 <div><button type="submit" class="secondary">Apply filters</button></div>
 </form>
-<p class="muted" role="status">{} flag{} shown, alerts first, newest first.</p>"#,
+<p class="muted" role="status">{} episode{} shown, alerts first, latest peak first. One row per episode: a device updates its episode as it grows.</p>"#,
         entries.len(),
         if entries.len() == 1 { "" } else { "s" }
     );
     if entries.is_empty() {
-        body.push_str("<p>No flags match these filters.</p>");
+        body.push_str("<p>No episodes match these filters.</p>");
     } else {
-        body.push_str(r#"<table id="queue"><caption>Flags</caption><thead><tr><th scope="col">Level</th><th scope="col">Date</th><th scope="col">Participant</th><th scope="col">Signal</th><th scope="col">What was seen</th><th scope="col" class="num">Score</th><th scope="col">Status</th></tr></thead><tbody>"#);
+        body.push_str(r#"<table id="queue"><caption>Episodes</caption><thead><tr><th scope="col">Level</th><th scope="col">Episode</th><th scope="col">Participant</th><th scope="col">Signals and direction</th><th scope="col">Pattern</th><th scope="col" class="num">Peak score (day)</th><th scope="col">Status</th></tr></thead><tbody>"#);
         for e in entries {
+            let updated = if e.updated_since_review {
+                r#" <span class="badge status-new">Updated since review</span>"#
+            } else {
+                ""
+            };
             let _ = write!(
                 body,
-                r#"<tr><td>{}</td><td><a href="/flag/{}">{}</a></td><td>{}</td><td>{}</td><td>{}</td><td class="num">{}</td><td>{}</td></tr>"#,
+                r#"<tr><td>{}</td><td><a href="/flag/{}">{}</a></td><td>{}</td><td>{}</td><td>{}</td><td class="num">{} ({})</td><td>{}{updated}</td></tr>"#,
                 level_badge(e.level),
                 e.packet_id,
-                esc(&e.date),
+                esc(&span_text(e.start, e.end, e.ongoing)),
                 esc(&e.participant),
-                esc(&signal_name(e.signal.as_deref())),
-                esc(e.kind.label()),
+                esc(&involved_text(&e.involved)),
+                esc(direction_text(e.direction)),
                 fmt_num(e.score, 2),
+                esc(&e.date),
                 status_badge(e.status)
             );
         }
         body.push_str("</tbody></table>");
     }
-    let heading = format!("Flag queue — {title}");
+    let heading = format!("Episode queue — {title}");
     page(
         &heading,
         Some(session),
         &[
             ("Studies", "/"),
             (title, &format!("/study/{study_id}")),
-            ("Flag queue", ""),
+            ("Episode queue", ""),
         ],
         &body,
     )
@@ -323,14 +363,14 @@ fn series_legend(with_flag: bool) -> String {
                 palette::VERMILLION,
                 palette::BLACK
             ),
-            "flagged day",
+            "alarm day",
         ));
         out.push_str(&item(
             &format!(
                 r#"<rect x="1" y="1" width="24" height="12" fill="{}" fill-opacity="0.25"/>"#,
                 palette::ORANGE
             ),
-            "flagged stretch",
+            "episode",
         ));
     }
     out.push_str(&item(
@@ -451,40 +491,57 @@ fn chart_block(
     out
 }
 
-/// The numbers behind the reason, read from the flag day's row.
+/// The numbers behind the reason: the episode's span, peak and versions.
 fn reason_numbers(record: &FlagRecord) -> String {
     let p = &record.packet;
     let mut out = format!(
-        "Detector score {:.2}; flagged stretch {} to {}",
-        p.score, p.first_day, p.last_day
+        "Peak score {:.2} on {} (window from {}); episode {}; {} alarm day{}",
+        p.score,
+        p.date,
+        p.episode.peak_window_start,
+        span_text(p.first_day, p.last_day, p.episode.ongoing),
+        p.episode.alarm_days,
+        if p.episode.alarm_days == 1 { "" } else { "s" }
     );
-    let flagged_window = p
-        .signal
-        .as_ref()
-        .and_then(|s| p.signals.iter().find(|w| &w.signal == s));
-    if let Some(w) = flagged_window
-        && let Some(d) = w.days.iter().find(|d| d.date == p.date)
-    {
-        let unit = unit_of(&w.signal);
-        let dec = super::charts::decimals_for(w.population.hi95 - w.population.lo95);
+    if record.revisions > 1 {
         let _ = write!(
             out,
-            "; on {}: measured {} {unit}, expected {} {unit} (50% band {}–{}, 95% band {}–{}), z = {:.2}, two-sided p {}",
-            d.date,
-            fmt_num(d.observed, dec),
-            fmt_num(d.mean, dec),
-            fmt_num(d.lo50, dec),
-            fmt_num(d.hi50, dec),
-            fmt_num(d.lo95, dec),
-            fmt_num(d.hi95, dec),
-            d.z,
-            match super::charts::fmt_p(d.tail_p) {
-                p if p.starts_with('<') => p,
-                p => format!("= {p}"),
-            }
+            "; version {} of this episode, received {}",
+            record.revisions,
+            utc(record.updated_ms)
         );
     }
     out.push('.');
+    out
+}
+
+/// The involved signals with their direction and window departure.
+fn departures_table(p: &FlagPacket) -> String {
+    if p.episode.involved.is_empty() {
+        return match &p.signal {
+            Some(s) => format!(
+                "<p>Signal: {} (a packet from before episodes: one signal, score {:.2}).</p>",
+                esc(&label_of(s)),
+                p.score
+            ),
+            None => "<p>Several signals (a packet from before episodes did not record each signal's departure).</p>".into(),
+        };
+    }
+    let mut out = String::from(
+        r#"<table id="departures"><caption>Signals in the peak score: how far each departed from its expected level over the peak's window</caption><thead><tr><th scope="col">Signal</th><th scope="col">Direction</th><th scope="col" class="num">Window departure (SD)</th><th scope="col" class="num">Share of the score</th></tr></thead><tbody>"#,
+    );
+    for d in &p.episode.involved {
+        let _ = write!(
+            out,
+            r#"<tr><th scope="row">{}</th><td>{} {}</td><td class="num">{:+.2}</td><td class="num">{:.2}</td></tr>"#,
+            esc(&label_of(&d.signal)),
+            d.direction.arrow(),
+            d.direction.as_str(),
+            d.departure,
+            d.contribution
+        );
+    }
+    out.push_str("</tbody></table>");
     out
 }
 
@@ -508,23 +565,40 @@ pub fn flag(
     }
     let _ = write!(
         body,
-        r#"<p>{} {} <span class="muted">·</span> {} <span class="muted">· participant</span> <strong>{}</strong> <span class="muted">· flag day</span> <strong>{}</strong> <span class="muted">· received {}</span></p>
+        r#"<p>{} {} <span class="muted">·</span> {} <span class="muted">· participant</span> <strong>{}</strong> <span class="muted">· episode</span> <strong>{}</strong> <span class="muted">· direction</span> <strong>{}</strong> <span class="muted">· first received {}</span></p>
 <h2>Why this was flagged</h2>
 <p class="reason">{}</p>
-<p class="muted">{}</p>"#,
+<p class="muted">{}</p>
+{}"#,
         level_badge(p.level),
         status_badge(record.status()),
         esc(p.kind.label()),
         esc(&record.participant),
-        p.date,
+        esc(&span_text(p.first_day, p.last_day, p.episode.ongoing)),
+        esc(&format!(
+            "{} ({})",
+            direction_text(p.episode.direction),
+            involved_text(
+                &p.episode
+                    .involved
+                    .iter()
+                    .map(|d| (d.signal.clone(), d.direction))
+                    .collect::<Vec<_>>()
+            )
+        )),
         utc(record.received_ms),
         esc(&p.reason),
         esc(&reason_numbers(record)),
+        departures_table(p),
     );
     let flagged_span = Some((p.first_day, p.last_day));
-    let (main, others): (Vec<&SignalWindow>, Vec<&SignalWindow>) = match &p.signal {
-        Some(s) => p.signals.iter().partition(|w| &w.signal == s),
-        None => (p.signals.iter().collect(), Vec::new()),
+    let involved = p.involved_signals();
+    let (main, others): (Vec<&SignalWindow>, Vec<&SignalWindow>) = if involved.is_empty() {
+        (p.signals.iter().collect(), Vec::new())
+    } else {
+        p.signals
+            .iter()
+            .partition(|w| involved.contains(&w.signal.as_str()))
     };
     let _ = write!(
         body,
@@ -534,8 +608,21 @@ pub fn flag(
         p.window_days()
     );
     for (i, w) in main.iter().enumerate() {
-        if main.len() > 1 {
-            let _ = write!(body, "<h3>{}</h3>", esc(&label_of(&w.signal)));
+        match p.episode.involved.iter().find(|d| d.signal == w.signal) {
+            Some(d) => {
+                let _ = write!(
+                    body,
+                    "<h3>{} — {} {}, window departure {:+.2} SD</h3>",
+                    esc(&label_of(&w.signal)),
+                    d.direction.arrow(),
+                    d.direction.as_str(),
+                    d.departure
+                );
+            }
+            None if main.len() > 1 => {
+                let _ = write!(body, "<h3>{}</h3>", esc(&label_of(&w.signal)));
+            }
+            None => {}
         }
         body.push_str(&chart_block(
             &format!("chart-main-{i}"),
@@ -547,7 +634,7 @@ pub fn flag(
         ));
     }
     if !others.is_empty() {
-        body.push_str("<h2>The participant's other signals, same window</h2>");
+        body.push_str("<h2>The participant's other signals, same window (not in the score)</h2>");
         for (i, w) in others.iter().enumerate() {
             let _ = write!(body, "<h3>{}</h3>", esc(&label_of(&w.signal)));
             body.push_str(&chart_block(
@@ -561,14 +648,14 @@ pub fn flag(
         }
     }
     if !related.is_empty() {
-        body.push_str("<h2>Other flags for this participant in this window</h2><ul>");
+        body.push_str("<h2>Other episodes of this participant in this window</h2><ul>");
         for e in related {
             let _ = write!(
                 body,
                 r#"<li><a href="/flag/{}">{} — {}</a> {} {}</li>"#,
                 e.packet_id,
-                esc(&e.date),
-                esc(&signal_name(e.signal.as_deref())),
+                esc(&span_text(e.start, e.end, e.ongoing)),
+                esc(&involved_text(&e.involved)),
                 level_badge(e.level),
                 status_badge(e.status)
             );
@@ -581,6 +668,7 @@ pub fn flag(
         r#"<h2 id="review">Review</h2>
 <form method="post" action="/flag/{}/action" class="panel" aria-labelledby="review">
 <input type="hidden" name="csrf" value="{}">
+<p class="muted">Your action applies to the whole episode, including later updates of it from the device.</p>
 <label for="note">Note (needed to dismiss or escalate; kept in the audit trail)</label>
 <textarea id="note" name="note" maxlength="2000"></textarea>
 <div class="actions">
@@ -614,10 +702,10 @@ pub fn flag(
         body.push_str("</tbody></table>");
     }
     let title = format!(
-        "{} — {} on {}",
+        "{} — {}, episode {}",
         signal_name(p.signal.as_deref()),
         record.participant,
-        p.date
+        span_text(p.first_day, p.last_day, p.episode.ongoing)
     );
     page(
         &title,
@@ -625,8 +713,11 @@ pub fn flag(
         &[
             ("Studies", "/"),
             (study_title, &format!("/study/{}", record.study_id)),
-            ("Flag queue", &format!("/study/{}/flags", record.study_id)),
-            (&format!("Flag {}", record.packet_id), ""),
+            (
+                "Episode queue",
+                &format!("/study/{}/flags", record.study_id),
+            ),
+            (&format!("Episode {}", record.packet_id), ""),
         ],
         &body,
     )
