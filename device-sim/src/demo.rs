@@ -328,7 +328,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     let sent: usize = run.reports.iter().map(|r| r.packets_sent).sum();
     writeln!(
         out,
-        "Episodes: {flags} flagged on devices ({alerts} Alerts; uncalibrated thresholds, no calibration phase yet); {sent} flag packets sent for review (one per episode, participants consented)."
+        "Episodes: {flags} flagged on devices ({alerts} reached Alert; thresholds from the study's calibration above); {sent} flag packets sent for review (one per episode, participants consented)."
     )?;
     writeln!(
         out,
