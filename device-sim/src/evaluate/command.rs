@@ -20,8 +20,8 @@ use super::run::{EvaluationSettings, evaluate_cohort};
 use crate::client::MIN_DAYS_TO_ENROLL;
 use crate::cohort::{BadRowPolicy, Cohort, read_cohort};
 use crate::demo::{cohort_signals, initial_layouts, run_federated};
+use crate::detect::calibration::shared_prior_filters;
 use crate::prior::PriorParams;
-use crate::prospective::{DailyFilter, StateSpacePrior};
 use crate::signal::Signal;
 
 /// Devices per federated round when the cohort has more than this many.
@@ -227,10 +227,7 @@ pub async fn learn_prior(
     let mut total = 0usize;
     let mut screened_participants = Vec::with_capacity(n);
     for series in &training_cohort.participants {
-        let predictors = first
-            .iter()
-            .map(|p| Ok((p.signal, DailyFilter::new(&StateSpacePrior::new(p)?))))
-            .collect::<crate::prospective::Result<Vec<_>>>()?;
+        let predictors = shared_prior_filters(series, &first)?;
         let scores = crate::detect::score_participant(
             series,
             predictors,
