@@ -317,11 +317,29 @@ async fn main() -> anyhow::Result<()> {
                 let active = store.devices(id)?.iter().filter(|d| !d.revoked).count();
                 let version = store.priors(id)?.last().map_or(0, |p| p.version);
                 let open_round = store.open_round(id)?.map_or(0, |r| r.round_id);
+                let completed = store.rounds_completed(id)?;
                 println!(
-                    "{id}: {active} devices, {}/{} rounds, prior version {version}, open round {open_round}",
-                    store.rounds_completed(id)?,
+                    "{id}: {active} devices, {completed}/{} rounds, prior version {version}, open round {open_round}",
                     config.rounds,
                 );
+                // The detector's calibration stages follow training (moments, then the
+                // episode histogram); each line says how far its stage has come.
+                for stage in plimsoll_server::detection::DetectionStage::ALL {
+                    let state = match store.completed_stage(id, stage)? {
+                        Some(done) => format!("complete, {} devices", done.n_devices),
+                        None => {
+                            let submitted = store.detection_submitters(id, stage)?.len();
+                            if submitted > 0 {
+                                format!("open, {submitted}/{active} devices submitted")
+                            } else if completed >= config.rounds {
+                                "waiting for submissions".to_owned()
+                            } else {
+                                "after training".to_owned()
+                            }
+                        }
+                    };
+                    println!("  calibration {}: {state}", stage.as_str());
+                }
             }
         }
     }

@@ -228,6 +228,16 @@ async fn operator_commands_take_effect_on_a_running_aggregator() {
         )),
         "{status}"
     );
+    // Training is not over, so neither calibration stage has begun (they open when the last
+    // round closes).
+    assert!(
+        status.contains("  calibration residual_moments: after training"),
+        "{status}"
+    );
+    assert!(
+        status.contains("  calibration episode_histogram: after training"),
+        "{status}"
+    );
     let (ok, _, stderr) = run(&db, &["device", "revoke", STUDY, "p-404"]);
     assert!(!ok && stderr.contains("p-404"), "{stderr}");
 }

@@ -340,6 +340,8 @@ pub fn score_participant<P: Predictor>(
     let Some(&origin) = series.dates.first() else {
         return Ok(out);
     };
+    out.days.reserve(series.dates.len());
+    out.signal_days.reserve(series.dates.len() * tracks.len());
     for (i, &date) in series.dates.iter().enumerate() {
         let day = (date - origin).num_days();
         let first_of_day = out.signal_days.len();

@@ -265,7 +265,9 @@ fn queue_entry(r: &rusqlite::Row<'_>) -> rusqlite::Result<Result<QueueEntry>> {
             score: p.score,
             status,
             revisions,
-            updated_since_review: latest_ms.is_some_and(|at| at < updated_ms) && revisions > 1,
+            // Same millisecond: the order is unknown, so the newer version is assumed unseen
+            // (the safe side: the reviewer looks again).
+            updated_since_review: latest_ms.is_some_and(|at| at <= updated_ms) && revisions > 1,
             signal: p.signal,
         }))
 }
