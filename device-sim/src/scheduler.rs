@@ -222,6 +222,8 @@ pub struct Training {
     /// Updates accepted by the aggregator, over all devices and rounds.
     pub updates: u64,
     pub dropped: Vec<DroppedDevice>,
+    /// Most devices that were working (holding a pool slot) at the same time.
+    pub peak_active: usize,
 }
 
 /// What one dispatched device did in one round.
@@ -256,6 +258,8 @@ pub async fn train_enrolled(
         .collect();
     let permits = Arc::new(Semaphore::new(pool.workers.max(1)));
     let cpu = Arc::new(Semaphore::new(pool.cpu.max(1)));
+    // (working now, most at once)
+    let active = Arc::new((AtomicUsize::new(0), AtomicUsize::new(0)));
     let mut watch = coordinator.subscribe();
     let mut tasks = tokio::task::JoinSet::new();
     let mut out = Training::default();
@@ -294,12 +298,17 @@ pub async fn train_enrolled(
                     cpu: cpu.clone(),
                     seed: round_seed(device.index, round_id),
                 };
-                let permits = permits.clone();
+                let (permits, active) = (permits.clone(), active.clone());
                 tasks.spawn(async move {
                     // The task holds no connection until its permit comes up.
-                    let permit = permits.acquire_owned().await;
-                    let result = match permit {
-                        Ok(_permit) => job.run().await,
+                    let result = match permits.acquire_owned().await {
+                        Ok(_permit) => {
+                            let now = active.0.fetch_add(1, Ordering::SeqCst) + 1;
+                            active.1.fetch_max(now, Ordering::SeqCst);
+                            let result = job.run().await;
+                            active.0.fetch_sub(1, Ordering::SeqCst);
+                            result
+                        }
                         Err(e) => Err(anyhow!(e)),
                     };
                     (id, result)
@@ -344,6 +353,7 @@ pub async fn train_enrolled(
             }
         }
     }
+    out.peak_active = active.1.load(Ordering::SeqCst);
     Ok(out)
 }
 
@@ -443,6 +453,8 @@ pub struct PooledRun {
     pub dropped: Vec<DroppedDevice>,
     /// Updates accepted over all rounds.
     pub updates: u64,
+    /// Most devices working in a round at the same time.
+    pub peak_active: usize,
     pub enrolment: Duration,
     pub rounds: Duration,
 }
@@ -513,6 +525,7 @@ pub async fn run_federated_pooled(
         enrolled: enrolment.devices.len(),
         dropped,
         updates: training.updates,
+        peak_active: training.peak_active,
         enrolment: enrolment_time,
         rounds: rounds_time,
     })
