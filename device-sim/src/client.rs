@@ -633,7 +633,7 @@ pub async fn study_review_level(
 }
 
 /// One round of local training for every signal in the task.
-fn train_all(
+pub(crate) fn train_all(
     task: &wire::TrainingTask,
     local: &[(Signal, LocalSeries)],
     seed: u64,
@@ -721,7 +721,7 @@ pub fn connect_to(address: &AggregatorAddress) -> anyhow::Result<Channel> {
 }
 
 /// A per-participant seed for retry jitter, so devices do not retry in step.
-fn seed_of(label: &str) -> u64 {
+pub(crate) fn seed_of(label: &str) -> u64 {
     label.bytes().fold(0xcbf2_9ce4_8422_2325, |h, b| {
         (h ^ u64::from(b)).wrapping_mul(0x100_0000_01b3)
     })

@@ -18,6 +18,8 @@
 //! - [`cohort`]: the shared CSV format (reader, writer) and the simulator.
 //! - [`client`], [`wire`]: the gRPC side of a device.
 //! - [`demo`]: the end-to-end demo.
+//! - [`scheduler`]: federated training of a large in-process cohort with a bounded pool of
+//!   devices (used by `plimsoll evaluate`).
 //! - [`participate`]: one device taking part in a study run elsewhere.
 
 pub mod client;
@@ -36,6 +38,7 @@ pub mod personal;
 pub mod prior;
 pub mod prospective;
 pub mod retry;
+pub mod scheduler;
 pub mod signal;
 pub mod training;
 pub mod wire;

@@ -515,9 +515,18 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
     println!("  report (JSON): {}", outcome.json.display());
     println!("  curves (SVG):  {}", outcome.svg.display());
     println!("  shared prior:  {}", outcome.prior.display());
+    if outcome.dropped > 0 {
+        println!(
+            "Devices dropped from federated training (calls kept failing): {}",
+            outcome.dropped
+        );
+    }
     println!(
-        "Prior {:.1} s; detection {:.1} s; total {:.1} s.",
+        "Reading {:.1} s; prior {:.1} s (enrolment {:.1} s, rounds {:.1} s); detection {:.1} s; total {:.1} s.",
+        outcome.reading.as_secs_f64(),
         outcome.training.as_secs_f64(),
+        outcome.enrolment.as_secs_f64(),
+        outcome.rounds.as_secs_f64(),
         outcome.detection.as_secs_f64(),
         t0.elapsed().as_secs_f64()
     );

@@ -163,7 +163,7 @@ pub fn train_local<R: Rng>(
     if series.n_days() == 0 {
         return Err(gp::GpError::Shape("no observed days to train on".into()));
     }
-    let (loss_at_received, _) = per_day_objective(received, series, 0.0)?;
+    let (loss_at_received, grad_at_received) = per_day_objective(received, series, 0.0)?;
     let first = series.t[0];
     let last = *series.t.last().expect("non-empty");
     let window = f64::from(settings.window_days);
@@ -182,13 +182,25 @@ pub fn train_local<R: Rng>(
         })
         .map(|w| w.filter(|w| w.n_days() >= MIN_WINDOW_OBS))
         .collect();
-    let objective = |x: &[f64], step: usize| {
+    // The first step on the full series without a hyperprior evaluates the objective at
+    // the received parameters again: the value and gradient just computed are reused (the
+    // same numbers, one likelihood evaluation fewer per round).
+    let mut at_received = (settings.hyperprior_weight_per_day == 0.0
+        && windows.first().is_none_or(Option::is_none))
+    .then_some((loss_at_received, grad_at_received));
+    let mut objective = |x: &[f64], step: usize| {
+        if step == 0
+            && x == received.as_slice()
+            && let Some(known) = at_received.take()
+        {
+            return Ok(known);
+        }
         let data = windows.get(step).and_then(Option::as_ref).unwrap_or(series);
         per_day_objective(x, data, settings.hyperprior_weight_per_day)
     };
     let result = match settings.optimizer {
         LocalOptimizer::Adam => gp::adam(
-            objective,
+            &mut objective,
             received,
             settings.steps,
             &AdamConfig {
@@ -196,9 +208,12 @@ pub fn train_local<R: Rng>(
                 ..AdamConfig::default()
             },
         )?,
-        LocalOptimizer::Sgd => {
-            gp::sgd(objective, received, settings.steps, settings.learning_rate)?
-        }
+        LocalOptimizer::Sgd => gp::sgd(
+            &mut objective,
+            received,
+            settings.steps,
+            settings.learning_rate,
+        )?,
     };
     let values: [f64; N_PARAMS] = result
         .x

@@ -357,6 +357,18 @@ impl Coordinator {
         })
     }
 
+    /// The open round's id and the devices selected for it (including those that already
+    /// submitted), or `None` when no round is open. Lets an in-process scheduler wake only
+    /// the devices a round selected, as a push service would.
+    pub fn open_round_members(&self, study_id: &str) -> Result<Option<(u64, Vec<u64>)>> {
+        let state = self.lock();
+        let rt = study(&state.studies, study_id)?;
+        Ok(rt
+            .open
+            .as_ref()
+            .map(|r| (r.round_id, r.members.iter().copied().collect())))
+    }
+
     /// Enrols a participant's device, checking the study's enrollment code.
     /// The same label with the same device secret gets the same id back (and
     /// its recorded consent to share flags updated); with another secret it

@@ -8,6 +8,7 @@
 //! `prior.json` with `--prior`.
 
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use anyhow::{Context, bail};
@@ -19,9 +20,10 @@ use super::report::{EvaluationReport, render_svg, write_csv, write_json, write_m
 use super::run::{EvaluationSettings, evaluate_cohort};
 use crate::client::MIN_DAYS_TO_ENROLL;
 use crate::cohort::{BadRowPolicy, Cohort, read_cohort};
-use crate::demo::{cohort_signals, initial_layouts, run_federated};
+use crate::demo::initial_layouts;
 use crate::detect::calibration::shared_prior_filters;
 use crate::prior::PriorParams;
+use crate::scheduler::{PhaseBars, PoolOptions, run_federated_pooled};
 use crate::signal::Signal;
 
 /// Devices per federated round when the cohort has more than this many.
@@ -55,7 +57,17 @@ pub struct EvaluationOutcome {
     pub prior: PathBuf,
     /// Input problems the reader quarantined, as printable lines.
     pub issues: Vec<String>,
+    /// Reading and checking the cohort.
+    pub reading: Duration,
+    /// Learning (or loading) the prior: enrolment and rounds of every pass, and what lies
+    /// between them.
     pub training: Duration,
+    /// Enrolment of every pass (zero with `--prior`).
+    pub enrolment: Duration,
+    /// Federated rounds of every pass (zero with `--prior`).
+    pub rounds: Duration,
+    /// Devices dropped from federated training (calls that kept failing), over every pass.
+    pub dropped: usize,
     pub detection: Duration,
 }
 
@@ -65,8 +77,22 @@ pub struct EvaluationOutcome {
 /// An unreadable cohort, no participant able to enrol (when learning), a bad `--prior` file,
 /// an evaluation error, or a failed write; each with context.
 pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<EvaluationOutcome> {
+    let t_read = Instant::now();
+    let spinner = opts.progress.then(|| {
+        let s = ProgressBar::new_spinner().with_style(
+            ProgressStyle::with_template("reading the cohort {spinner} [{elapsed}]")
+                .expect("static template"),
+        );
+        s.enable_steady_tick(Duration::from_millis(200));
+        s
+    });
     let cohort = read_cohort(&opts.cohort_dir, BadRowPolicy::Quarantine)
         .with_context(|| format!("reading the cohort in {}", opts.cohort_dir.display()))?;
+    if let Some(s) = &spinner {
+        s.finish();
+    }
+    let reading = t_read.elapsed();
+    let cohort = Arc::new(cohort);
     if cohort.participants.is_empty() {
         bail!("{}: no participant in daily.csv", opts.cohort_dir.display());
     }
@@ -76,16 +102,27 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
     let prior_path = opts.out_dir.join("prior.json");
 
     let t_train = Instant::now();
-    let (priors, source) = match &opts.prior {
+    let learned = match &opts.prior {
         Some(path) => {
             let (priors, source) = read_prior_file(path)?;
-            (priors, format!("file {} ({source})", path.display()))
+            LearnedPrior {
+                priors,
+                source: format!("file {} ({source})", path.display()),
+                ..LearnedPrior::default()
+            }
         }
         None => {
             let work = opts.out_dir.join("federated");
             learn_prior(&cohort, opts.rounds, opts.screened, &work, opts.progress).await?
         }
     };
+    let LearnedPrior {
+        priors,
+        source,
+        enrolment,
+        rounds,
+        dropped,
+    } = learned;
     let training = t_train.elapsed();
     if opts.prior.as_deref() != Some(prior_path.as_path()) {
         write_prior_file(&prior_path, &priors, &source)?;
@@ -132,18 +169,37 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
         svg,
         prior: prior_path,
         issues,
+        reading,
         training,
+        enrolment,
+        rounds,
+        dropped,
         detection,
     })
 }
 
-/// Learns the shared prior with the real federated path ([`run_federated`]: an aggregator
-/// and one device per participant over loopback gRPC, each training on its own data only),
-/// with the demo's local training (2 plain-SGD steps of size 1 per round on the full series),
-/// all devices per round up to [`MAX_DEVICES_PER_ROUND`] and that many above. Participants
-/// without a signal of `MIN_DAYS_TO_ENROLL` observed days cannot enrol and are left out of
-/// training (not of the evaluation). The aggregator databases and the devices' outputs go to
-/// `work_dir`.
+/// A learned (or loaded) prior, how it was learned and what it took.
+#[derive(Debug, Default)]
+pub struct LearnedPrior {
+    pub priors: Vec<PriorParams>,
+    /// How it was learned, in words (the report's prior source line).
+    pub source: String,
+    pub enrolment: Duration,
+    pub rounds: Duration,
+    /// Devices dropped over every pass.
+    pub dropped: usize,
+}
+
+/// Learns the shared prior with the real federated path ([`run_federated_pooled`]: an
+/// aggregator over loopback gRPC and one device per participant, each training on its own
+/// data only, at most [`PoolOptions::workers`] devices working at once and only the devices
+/// selected for a round woken), with the demo's local training (2 plain-SGD steps of size 1
+/// per round on the full series), all devices per round up to [`MAX_DEVICES_PER_ROUND`] and
+/// that many above. Participants without a signal of `MIN_DAYS_TO_ENROLL` observed days
+/// cannot enrol and are left out of training (not of the evaluation). A device whose calls
+/// keep failing is dropped and counted in the source line. The aggregator databases go to
+/// `work_dir`; devices write nothing (detection and its calibration are computed in process
+/// by the evaluation).
 ///
 /// With `screened`, a second pass follows (the robust prior of `docs/evaluation.md`): each
 /// device scores its own days under the first pass's prior with the detector's guarded
@@ -158,34 +214,39 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
 /// # Errors
 /// No participant can enrol, or a federated run fails.
 pub async fn learn_prior(
-    cohort: &Cohort,
+    cohort: &Arc<Cohort>,
     rounds: u32,
     screened: bool,
     work_dir: &Path,
     progress: bool,
-) -> anyhow::Result<(Vec<PriorParams>, String)> {
-    let participants: Vec<_> = cohort
+) -> anyhow::Result<LearnedPrior> {
+    let members: Vec<usize> = cohort
         .participants
         .iter()
-        .filter(|p| {
+        .enumerate()
+        .filter(|(_, p)| {
             p.values
                 .values()
                 .any(|c| c.iter().flatten().count() >= MIN_DAYS_TO_ENROLL)
         })
-        .cloned()
+        .map(|(i, _)| i)
         .collect();
-    if participants.is_empty() {
+    if members.is_empty() {
         bail!(
             "no participant has a signal with {MIN_DAYS_TO_ENROLL} observed days, so none can enrol in federated training; pass a prior with --prior"
         );
     }
-    let n = participants.len();
-    let training_cohort = Cohort {
-        participants,
-        ..Cohort::default()
-    };
+    let n = members.len();
     let per_round = n.min(MAX_DEVICES_PER_ROUND);
-    let signals = cohort_signals(&training_cohort);
+    let signals = {
+        let mut found: Vec<Signal> = members
+            .iter()
+            .flat_map(|&i| cohort.participants[i].signals())
+            .collect();
+        found.sort_unstable();
+        found.dedup();
+        found
+    };
     let config = StudyConfig {
         study_id: "evaluation".into(),
         title: "Shared prior for plimsoll evaluate".into(),
@@ -208,25 +269,42 @@ pub async fn learn_prior(
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
         review_level: plimsoll_server::packets::FlagLevel::Alert,
     };
-    let (first, version) = federated_pass(
-        &training_cohort,
+    let pool = PoolOptions::default();
+    let first_pass = federated_pass(
+        cohort,
+        &members,
         config.clone(),
+        &pool,
         &work_dir.join("pass-1"),
-        "federated rounds",
+        "",
         progress,
     )
     .await?;
-    let mut source = format!(
-        "federated: {rounds} rounds over loopback gRPC on this cohort, {n} devices enrolled, {per_round} per round, prior version {version}"
-    );
+    let first = first_pass.priors;
+    let mut learned = LearnedPrior {
+        priors: Vec::new(),
+        source: format!(
+            "federated: {rounds} rounds over loopback gRPC on this cohort, {} devices enrolled, {per_round} per round, prior version {}; {} devices at a time over {} connections; {} devices dropped",
+            first_pass.enrolled,
+            first_pass.version,
+            pool.workers,
+            pool.connections,
+            first_pass.dropped
+        ),
+        enrolment: first_pass.enrolment,
+        rounds: first_pass.rounds,
+        dropped: first_pass.dropped,
+    };
     if !screened {
-        return Ok((first, source));
+        learned.priors = first;
+        return Ok(learned);
     }
     let detect = crate::detect::DetectConfig::default();
     let mut removed = 0usize;
     let mut total = 0usize;
     let mut screened_participants = Vec::with_capacity(n);
-    for series in &training_cohort.participants {
+    for &i in &members {
+        let series = &cohort.participants[i];
         let predictors = shared_prior_filters(series, &first)?;
         let scores = crate::detect::score_participant(
             series,
@@ -239,10 +317,10 @@ pub async fn learn_prior(
         total += scores.signal_days.len();
         screened_participants.push(kept);
     }
-    let screened_cohort = Cohort {
+    let screened_cohort = Arc::new(Cohort {
         participants: screened_participants,
         ..Cohort::default()
-    };
+    });
     let more = screened_rounds(rounds);
     let mut second_config = config;
     second_config.study_id = "evaluation-screened".into();
@@ -252,14 +330,18 @@ pub async fn learn_prior(
             layout.initial = p.values.to_vec();
         }
     }
-    let (second, version) = federated_pass(
+    let all: Vec<usize> = (0..screened_cohort.participants.len()).collect();
+    let second_pass = federated_pass(
         &screened_cohort,
+        &all,
         second_config,
+        &pool,
         &work_dir.join("pass-2-screened"),
-        "screened rounds",
+        "screened ",
         progress,
     )
     .await?;
+    let second = second_pass.priors;
     let lengths: Vec<String> = second
         .iter()
         .filter_map(|p| {
@@ -272,12 +354,18 @@ pub async fn learn_prior(
             ))
         })
         .collect();
-    source.push_str(&format!(
-        "; then {more} screened rounds (version {version}) without the {removed} of {total} signal-days ({:.1}%) the guarded baseline protected; trend length (days) first pass -> screened: {}",
+    learned.source.push_str(&format!(
+        "; then {more} screened rounds (version {}, {} devices dropped) without the {removed} of {total} signal-days ({:.1}%) the guarded baseline protected; trend length (days) first pass -> screened: {}",
+        second_pass.version,
+        second_pass.dropped,
         100.0 * removed as f64 / total.max(1) as f64,
         lengths.join(", ")
     ));
-    Ok((second, source))
+    learned.enrolment += second_pass.enrolment;
+    learned.rounds += second_pass.rounds;
+    learned.dropped += second_pass.dropped;
+    learned.priors = second;
+    Ok(learned)
 }
 
 /// Rounds of the screened second pass after `rounds` first-pass rounds: a quarter, at least
@@ -287,15 +375,28 @@ pub fn screened_rounds(rounds: u32) -> u32 {
     (rounds / 4).max(10)
 }
 
-/// One federated training run of `config` on `cohort` in `work_dir` (a fresh aggregator
-/// database); returns the last published prior and its version.
+/// What one federated pass gave.
+struct Pass {
+    priors: Vec<PriorParams>,
+    version: u32,
+    enrolled: usize,
+    dropped: usize,
+    enrolment: Duration,
+    rounds: Duration,
+}
+
+/// One federated training run of `config` on the participants `members` of `cohort` in
+/// `work_dir` (a fresh aggregator database), with an enrolment and a rounds progress bar
+/// (labels prefixed by `label`); returns the last published prior and its version.
 async fn federated_pass(
-    cohort: &Cohort,
+    cohort: &Arc<Cohort>,
+    members: &[usize],
     config: StudyConfig,
+    pool: &PoolOptions,
     work_dir: &Path,
     label: &str,
     progress: bool,
-) -> anyhow::Result<(Vec<PriorParams>, u32)> {
+) -> anyhow::Result<Pass> {
     std::fs::create_dir_all(work_dir)
         .with_context(|| format!("creating {}", work_dir.display()))?;
     let db_path = work_dir.join("aggregator.db");
@@ -306,24 +407,27 @@ async fn federated_pass(
                 .with_context(|| format!("removing the previous database {}", p.display()))?;
         }
     }
-    let bar = progress.then(|| {
-        ProgressBar::new(u64::from(config.rounds)).with_style(
-            ProgressStyle::with_template(&format!(
-                "{label} {{bar:40}} {{pos}}/{{len}} [{{elapsed}}]"
-            ))
-            .expect("static template"),
-        )
-    });
-    let run = run_federated(
-        cohort,
-        config,
-        &db_path,
-        &work_dir.join("devices"),
-        bar.as_ref(),
-    )
-    .await?;
-    if let Some(b) = &bar {
-        b.finish();
+    let bar = |len: u64, what: &str| {
+        progress.then(|| {
+            ProgressBar::new(len).with_style(
+                ProgressStyle::with_template(&format!(
+                    "{label}{what} {{bar:40}} {{pos}}/{{len}} [{{elapsed}}]"
+                ))
+                .expect("static template"),
+            )
+        })
+    };
+    let bars = PhaseBars {
+        enrolment: bar(members.len() as u64, "enrolment (devices)"),
+        rounds: bar(u64::from(config.rounds), "federated rounds"),
+    };
+    let run = run_federated_pooled(cohort, members, config, &db_path, pool, &bars).await?;
+    for d in run.dropped.iter().take(5) {
+        tracing::warn!(
+            "device of participant {} dropped from federated training: {}",
+            d.participant,
+            d.reason
+        );
     }
     let latest = run.history.last().context("no prior was published")?;
     let mut priors = Vec::with_capacity(latest.params.len());
@@ -334,5 +438,12 @@ async fn federated_pass(
                 .with_context(|| format!("published prior of {signal}"))?,
         );
     }
-    Ok((priors, latest.version))
+    Ok(Pass {
+        priors,
+        version: latest.version,
+        enrolled: run.enrolled,
+        dropped: run.dropped.len(),
+        enrolment: run.enrolment,
+        rounds: run.rounds,
+    })
 }

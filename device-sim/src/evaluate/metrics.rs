@@ -47,14 +47,53 @@ pub struct ScoredDay {
     pub sd: f64,
 }
 
+/// One scored date's baseline readings summed over signals: all the metrics need of the
+/// [`ScoredDay`]s of a date (kept instead of them, so a large cohort's results fit in memory).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ScoredDate {
+    pub date: NaiveDate,
+    /// Signal-days of the date with a usable predictive SD (positive and finite).
+    pub readings: u16,
+    /// Of those, observations inside the central 95% predictive band.
+    pub covered: u16,
+    /// Their summed negative log predictive density in reference-scale units.
+    pub nlpd_sum: f64,
+}
+
+/// The [`ScoredDate`]s of `days`, in date order.
+pub fn scored_dates(days: &[ScoredDay]) -> Vec<ScoredDate> {
+    let mut by_date: BTreeMap<NaiveDate, ScoredDate> = BTreeMap::new();
+    for d in days {
+        let entry = by_date.entry(d.date).or_insert(ScoredDate {
+            date: d.date,
+            readings: 0,
+            covered: 0,
+            nlpd_sum: 0.0,
+        });
+        if !(d.sd > 0.0 && d.sd.is_finite()) {
+            continue;
+        }
+        entry.readings += 1;
+        if (d.observed - d.mean).abs() <= Z975 * d.sd {
+            entry.covered += 1;
+        }
+        let (_, scale) = d.signal.reference();
+        let sd = d.sd / scale;
+        let r = (d.observed - d.mean) / scale;
+        entry.nlpd_sum +=
+            0.5 * (2.0 * std::f64::consts::PI * sd * sd).ln() + 0.5 * (r / sd).powi(2);
+    }
+    by_date.into_values().collect()
+}
+
 /// Everything one method produced for one participant.
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct ParticipantResult {
     /// The participant's first date in the data (origin of the periods); `None`
     /// leaves the participant out of the per-period cells.
     pub first_date: Option<NaiveDate>,
-    /// Days past the method's cold start (only these are scored).
-    pub days: Vec<ScoredDay>,
+    /// Days past the method's cold start (only these are scored), from [`scored_dates`].
+    pub days: Vec<ScoredDate>,
     /// Dates with at least one alarm (a flag at the evaluated level or above).
     pub alarm_dates: BTreeSet<NaiveDate>,
     /// Alarm episodes as (first, last) alarm date.
@@ -197,31 +236,18 @@ impl Cell {
                         .any(|d| in_target(*d))
             })
             .count();
-        let scored_dates: BTreeSet<NaiveDate> = result
-            .days
-            .iter()
-            .map(|d| d.date)
-            .filter(|d| within(*d))
-            .collect();
-        cell.participants = usize::from(!scored_dates.is_empty());
-        cell.days_outside_targets = scored_dates.iter().filter(|d| !in_target(**d)).count();
-        for d in result
-            .days
-            .iter()
-            .filter(|d| within(d.date) && !in_target(d.date) && !in_other(d.date))
-        {
-            if !(d.sd > 0.0 && d.sd.is_finite()) {
+        for d in result.days.iter().filter(|d| within(d.date)) {
+            cell.participants = 1;
+            if in_target(d.date) {
                 continue;
             }
-            cell.coverage_n += 1;
-            if (d.observed - d.mean).abs() <= Z975 * d.sd {
-                cell.covered += 1;
+            cell.days_outside_targets += 1;
+            if in_other(d.date) {
+                continue;
             }
-            let (_, scale) = d.signal.reference();
-            let sd = d.sd / scale;
-            let r = (d.observed - d.mean) / scale;
-            cell.nlpd_sum +=
-                0.5 * (2.0 * std::f64::consts::PI * sd * sd).ln() + 0.5 * (r / sd).powi(2);
+            cell.coverage_n += d.readings as usize;
+            cell.covered += d.covered as usize;
+            cell.nlpd_sum += d.nlpd_sum;
         }
         cell
     }
@@ -370,7 +396,7 @@ mod tests {
             .collect();
         let result = ParticipantResult {
             first_date: Some(date(1)),
-            days,
+            days: scored_dates(&days),
             alarm_dates: [date(3), date(11), date(20)].into_iter().collect(),
             episodes: vec![
                 (date(3), date(3)),
@@ -421,15 +447,17 @@ mod tests {
         let stressor = event("late_night_alcohol", 20, 21);
         let result = ParticipantResult {
             first_date: Some(date(1)),
-            days: (1..=30)
-                .map(|d| ScoredDay {
-                    signal: Signal::Sleep,
-                    date: date(d),
-                    observed: 7.0,
-                    mean: 7.0,
-                    sd: 1.0,
-                })
-                .collect(),
+            days: scored_dates(
+                &(1..=30)
+                    .map(|d| ScoredDay {
+                        signal: Signal::Sleep,
+                        date: date(d),
+                        observed: 7.0,
+                        mean: 7.0,
+                        sd: 1.0,
+                    })
+                    .collect::<Vec<_>>(),
+            ),
             alarm_dates: [date(3), date(11), date(20)].into_iter().collect(),
             episodes: vec![
                 (date(3), date(3)),

@@ -19,7 +19,7 @@ use super::methods::{
     Method, PopulationPredictor, ROLLING_MIN_VALUES, ROLLING_SD_FLOOR, ROLLING_WINDOW_VALUES,
     RollingZ, alavi_scores, fit_local,
 };
-use super::metrics::{Accumulator, ParticipantResult, Period, ScoredDay};
+use super::metrics::{Accumulator, ParticipantResult, Period, ScoredDate, ScoredDay, scored_dates};
 use super::report::{CAUTION, EvaluationReport, MethodSummary, ReportSettings, SCHEMA};
 use super::sweep::{self, Compact, Truth};
 use crate::cohort::{Cohort, Event, ParticipantSeries};
@@ -104,7 +104,7 @@ impl LocalFitStats {
 /// One participant's scores under every method, kept compact.
 struct Scored {
     index: usize,
-    per_method: Vec<(Vec<Compact>, Vec<ScoredDay>)>,
+    per_method: Vec<(Vec<Compact>, Vec<ScoredDate>)>,
 }
 
 /// Runs `f` over the participants on `threads` threads, in participant order.
@@ -234,7 +234,7 @@ pub fn evaluate_cohort(
                 &configs[m],
             )?;
             per_method.push(match s {
-                Some(s) => (compact(&s.days), scored_days(&s)),
+                Some(s) => (compact(&s.days), scored_dates(&scored_days(&s))),
                 None => (Vec::new(), Vec::new()),
             });
         }
@@ -301,8 +301,9 @@ pub fn evaluate_cohort(
                 }
             })
             .collect();
-        let curve = sweep::curve(&truths, gap);
-        let matched = sweep::matched(&truths, gap, &sweep::MATCHED_LEVELS);
+        let sweep = sweep::Sweep::new(&truths, gap);
+        let curve = sweep.curve();
+        let matched = sweep.matched(&sweep::MATCHED_LEVELS);
         let pauc = sweep::partial_auc(&curve, 1.0);
 
         let mut acc = Accumulator::with_periods(periods.clone());
@@ -495,7 +496,7 @@ fn scored_days(s: &ParticipantScores) -> Vec<ScoredDay> {
 fn participant_result(
     series: &ParticipantSeries,
     days: &[Compact],
-    signal_days: &[ScoredDay],
+    signal_days: &[ScoredDate],
     threshold: f64,
     gap: crate::detect::episodes::Grouping,
 ) -> ParticipantResult {

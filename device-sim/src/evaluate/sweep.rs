@@ -3,7 +3,7 @@
 //! alarm episode rates; the partial area under the curve (definitions in
 //! `docs/evaluation.md`).
 
-use chrono::NaiveDate;
+use chrono::{Datelike, NaiveDate};
 use serde::Serialize;
 
 use crate::cohort::Event;
@@ -63,46 +63,280 @@ pub struct MatchedPoint {
 
 /// The figures at threshold `h`.
 pub fn at_threshold(truths: &[Truth<'_>], h: f64, rule: Grouping) -> CurvePoint {
-    let (mut events, mut detected) = (0usize, 0usize);
-    let (mut fa_episodes, mut fa_days, mut outside) = (0usize, 0usize, 0usize);
-    let mut leads: Vec<f64> = Vec::new();
+    Sweep::with_floor(truths, rule, h).at(h)
+}
+
+/// The curve on the grid `0, SWEEP_STEP, …, SWEEP_MAX` from the top down to the first point
+/// with more than [`CURVE_MAX_FA`] false alarm episodes per participant-month (included), in
+/// ascending threshold order.
+pub fn curve(truths: &[Truth<'_>], rule: Grouping) -> Vec<CurvePoint> {
+    Sweep::new(truths, rule).curve()
+}
+
+/// For each level, the threshold where the false alarm episode rate, coming down from the top
+/// of the sweep, first exceeds the level: scanning thresholds downwards from [`SWEEP_MAX`] in
+/// steps of [`SWEEP_STEP`] to the first one above the level, then bisecting (to 1e-4) between
+/// it and the step before; the sensitivity is read at the upper end (rate at most the level).
+/// Scanning from the top matters: far below the useful range, alarm days run together into a
+/// few long episodes and the episode rate falls again.
+pub fn matched(truths: &[Truth<'_>], rule: Grouping, levels: &[f64]) -> Vec<MatchedPoint> {
+    Sweep::new(truths, rule).matched(levels)
+}
+
+/// One participant as the sweep reads it: day numbers instead of dates, each day's target
+/// membership worked out once, and only the days that can alarm at a threshold of the sweep.
+#[derive(Debug)]
+struct PreparedTruth {
+    /// Days with a score at or above the sweep's floor, in date order: (day number, score,
+    /// inside a target event).
+    candidates: Vec<(i64, f32, bool)>,
+    /// Target events as (first, last) day numbers.
+    targets: Vec<(i64, i64)>,
+    /// Highest score of the participant (`-inf` without a scored day).
+    max_score: f64,
+}
+
+/// Counts at one threshold, summed over participants.
+#[derive(Default)]
+struct Tally {
+    events: usize,
+    detected: usize,
+    fa_episodes: usize,
+    fa_days: usize,
+    leads: Vec<f64>,
+}
+
+impl Tally {
+    fn absorb(&mut self, o: Tally) {
+        self.events += o.events;
+        self.detected += o.detected;
+        self.fa_episodes += o.fa_episodes;
+        self.fa_days += o.fa_days;
+        self.leads.extend(o.leads);
+    }
+}
+
+/// The threshold sweep of one method, prepared once and evaluated at many thresholds. The
+/// figures equal [`at_threshold`]'s definition: the days below every threshold the sweep asks
+/// about only ever count in the false-alarm denominator (event-free scored days), which does
+/// not depend on the threshold and is counted once; each figure is remembered per threshold,
+/// so [`Sweep::curve`] and [`Sweep::matched`] share the grid points; participants are split
+/// over threads.
+#[derive(Debug)]
+pub struct Sweep {
+    truths: Vec<PreparedTruth>,
+    /// Scored days outside every target event, over all participants.
+    outside: usize,
+    /// Lowest threshold this sweep may be asked about.
+    floor: f64,
+    rule: Grouping,
+    threads: usize,
+    seen: std::cell::RefCell<std::collections::HashMap<u64, CurvePoint>>,
+}
+
+impl Sweep {
+    /// A sweep over thresholds from 0 up.
+    pub fn new(truths: &[Truth<'_>], rule: Grouping) -> Sweep {
+        Sweep::with_floor(truths, rule, 0.0)
+    }
+
+    fn with_floor(truths: &[Truth<'_>], rule: Grouping, floor: f64) -> Sweep {
+        let day = |d: NaiveDate| i64::from(d.num_days_from_ce());
+        let mut outside = 0usize;
+        let prepared = truths
+            .iter()
+            .map(|t| {
+                let targets: Vec<(i64, i64)> = t
+                    .targets
+                    .iter()
+                    .map(|e| (day(e.start), day(e.end)))
+                    .collect();
+                let in_target = |d: i64| targets.iter().any(|&(s, e)| s <= d && d <= e);
+                let mut max_score = f64::NEG_INFINITY;
+                let mut candidates = Vec::new();
+                for c in t.days {
+                    let d = day(c.date);
+                    let target = in_target(d);
+                    if !target {
+                        outside += 1;
+                    }
+                    let score = f64::from(c.score);
+                    max_score = max_score.max(score);
+                    if score >= floor {
+                        candidates.push((d, c.score, target));
+                    }
+                }
+                PreparedTruth {
+                    candidates,
+                    targets,
+                    max_score,
+                }
+            })
+            .collect();
+        Sweep {
+            truths: prepared,
+            outside,
+            floor,
+            rule,
+            threads: std::thread::available_parallelism().map_or(1, |n| n.get()),
+            seen: Default::default(),
+        }
+    }
+
+    /// The figures at threshold `h` (at least the floor, 0 for [`Sweep::new`]).
+    pub fn at(&self, h: f64) -> CurvePoint {
+        if let Some(p) = self.seen.borrow().get(&h.to_bits()) {
+            return *p;
+        }
+        debug_assert!(h >= self.floor, "threshold {h} below the sweep's floor");
+        let chunk = self.truths.len().div_ceil(self.threads.max(1)).max(1);
+        let mut tally = Tally::default();
+        if self.truths.len() < 2 * chunk || self.threads <= 1 {
+            tally = tally_of(&self.truths, h, self.rule);
+        } else {
+            let rule = self.rule;
+            let parts: Vec<Tally> = std::thread::scope(|scope| {
+                let handles: Vec<_> = self
+                    .truths
+                    .chunks(chunk)
+                    .map(|part| scope.spawn(move || tally_of(part, h, rule)))
+                    .collect();
+                handles
+                    .into_iter()
+                    .map(|h| h.join().expect("sweep thread panicked"))
+                    .collect()
+            });
+            for part in parts {
+                tally.absorb(part);
+            }
+        }
+        let months = self.outside as f64 / DAYS_PER_MONTH;
+        tally.leads.sort_by(f64::total_cmp);
+        let point = CurvePoint {
+            threshold: h,
+            sensitivity: (tally.events > 0).then(|| tally.detected as f64 / tally.events as f64),
+            false_alarm_episodes_per_participant_month: (months > 0.0)
+                .then(|| tally.fa_episodes as f64 / months),
+            false_alarms_per_participant_month: (months > 0.0)
+                .then(|| tally.fa_days as f64 / months),
+            median_lead_from_start_days: median(&tally.leads),
+        };
+        self.seen.borrow_mut().insert(h.to_bits(), point);
+        point
+    }
+
+    /// See [`curve`].
+    pub fn curve(&self) -> Vec<CurvePoint> {
+        let n = (SWEEP_MAX / SWEEP_STEP).round() as usize;
+        let mut out = Vec::new();
+        for i in (0..=n).rev() {
+            let p = self.at(i as f64 * SWEEP_STEP);
+            let stop = p
+                .false_alarm_episodes_per_participant_month
+                .is_some_and(|f| f > CURVE_MAX_FA);
+            out.push(p);
+            if stop {
+                break;
+            }
+        }
+        out.reverse();
+        out
+    }
+
+    /// See [`matched`].
+    pub fn matched(&self, levels: &[f64]) -> Vec<MatchedPoint> {
+        let fa = |h: f64| {
+            self.at(h)
+                .false_alarm_episodes_per_participant_month
+                .unwrap_or(0.0)
+        };
+        levels
+            .iter()
+            .map(|&level| {
+                let none = MatchedPoint {
+                    false_alarm_episodes_per_participant_month: level,
+                    threshold: None,
+                    achieved_false_alarm_episodes: None,
+                    sensitivity: None,
+                    median_lead_from_start_days: None,
+                };
+                let mut hi = SWEEP_MAX;
+                if fa(hi) > level {
+                    return none;
+                }
+                let mut lo = None;
+                let n = (SWEEP_MAX / SWEEP_STEP).round() as usize;
+                for i in (0..n).rev() {
+                    let h = i as f64 * SWEEP_STEP;
+                    if fa(h) > level {
+                        lo = Some(h);
+                        break;
+                    }
+                    hi = h;
+                }
+                if let Some(mut lo) = lo {
+                    while hi - lo > 1e-4 {
+                        let mid = 0.5 * (lo + hi);
+                        if fa(mid) <= level {
+                            hi = mid;
+                        } else {
+                            lo = mid;
+                        }
+                    }
+                }
+                let p = self.at(hi);
+                MatchedPoint {
+                    false_alarm_episodes_per_participant_month: level,
+                    threshold: Some(hi),
+                    achieved_false_alarm_episodes: p.false_alarm_episodes_per_participant_month,
+                    sensitivity: p.sensitivity,
+                    median_lead_from_start_days: p.median_lead_from_start_days,
+                }
+            })
+            .collect()
+    }
+}
+
+/// Events, detections, leads and false alarms of `truths` at threshold `h`.
+fn tally_of(truths: &[PreparedTruth], h: f64, rule: Grouping) -> Tally {
+    let mut tally = Tally::default();
     for t in truths {
-        let in_target = |d: NaiveDate| t.targets.iter().any(|e| e.start <= d && d <= e.end);
-        for e in t.targets {
-            events += 1;
-            if let Some(first) = t
-                .days
+        tally.events += t.targets.len();
+        if t.max_score < h {
+            continue;
+        }
+        for &(start, end) in &t.targets {
+            if let Some(&(first, _, _)) = t
+                .candidates
                 .iter()
-                .find(|c| c.date >= e.start && c.date <= e.end && f64::from(c.score) >= h)
+                .find(|&&(d, s, _)| d >= start && d <= end && f64::from(s) >= h)
             {
-                detected += 1;
-                leads.push((first.date - e.start).num_days() as f64);
+                tally.detected += 1;
+                tally.leads.push((first - start) as f64);
             }
         }
         // Episodes: groups of alarm days; false when none of its days is in a target event.
-        let mut span: Option<(NaiveDate, NaiveDate)> = None;
+        let mut span: Option<(i64, i64)> = None;
         let mut current_true = false;
         let mut open = false;
-        for c in t.days {
-            let target = in_target(c.date);
-            if !target {
-                outside += 1;
-            }
-            if f64::from(c.score) < h {
+        for &(d, score, target) in &t.candidates {
+            if f64::from(score) < h {
                 continue;
             }
             if !target {
-                fa_days += 1;
+                tally.fa_days += 1;
             }
-            let joins = span.is_some_and(|(f, l)| rule.joins(f, l, c.date));
+            let joins = span.is_some_and(|(f, l)| {
+                d - l <= rule.merge_gap_days && d - f < rule.max_episode_days
+            });
             if joins {
                 if let Some((_, l)) = &mut span {
-                    *l = c.date;
+                    *l = d;
                 }
             } else {
-                span = Some((c.date, c.date));
+                span = Some((d, d));
                 if open && !current_true {
-                    fa_episodes += 1;
+                    tally.fa_episodes += 1;
                 }
                 open = true;
                 current_true = false;
@@ -110,19 +344,10 @@ pub fn at_threshold(truths: &[Truth<'_>], h: f64, rule: Grouping) -> CurvePoint 
             current_true |= target;
         }
         if open && !current_true {
-            fa_episodes += 1;
+            tally.fa_episodes += 1;
         }
     }
-    let months = outside as f64 / DAYS_PER_MONTH;
-    leads.sort_by(f64::total_cmp);
-    CurvePoint {
-        threshold: h,
-        sensitivity: (events > 0).then(|| detected as f64 / events as f64),
-        false_alarm_episodes_per_participant_month: (months > 0.0)
-            .then(|| fa_episodes as f64 / months),
-        false_alarms_per_participant_month: (months > 0.0).then(|| fa_days as f64 / months),
-        median_lead_from_start_days: median(&leads),
-    }
+    tally
 }
 
 fn median(sorted: &[f64]) -> Option<f64> {
@@ -134,84 +359,6 @@ fn median(sorted: &[f64]) -> Option<f64> {
             0.5 * (sorted[n / 2 - 1] + sorted[n / 2])
         }
     })
-}
-
-/// The curve on the grid `0, SWEEP_STEP, …, SWEEP_MAX` from the top down to the first point
-/// with more than [`CURVE_MAX_FA`] false alarm episodes per participant-month (included), in
-/// ascending threshold order.
-pub fn curve(truths: &[Truth<'_>], rule: Grouping) -> Vec<CurvePoint> {
-    let n = (SWEEP_MAX / SWEEP_STEP).round() as usize;
-    let mut out = Vec::new();
-    for i in (0..=n).rev() {
-        let p = at_threshold(truths, i as f64 * SWEEP_STEP, rule);
-        let stop = p
-            .false_alarm_episodes_per_participant_month
-            .is_some_and(|f| f > CURVE_MAX_FA);
-        out.push(p);
-        if stop {
-            break;
-        }
-    }
-    out.reverse();
-    out
-}
-
-/// For each level, the threshold where the false alarm episode rate, coming down from the top
-/// of the sweep, first exceeds the level: scanning thresholds downwards from [`SWEEP_MAX`] in
-/// steps of [`SWEEP_STEP`] to the first one above the level, then bisecting (to 1e-4) between
-/// it and the step before; the sensitivity is read at the upper end (rate at most the level).
-/// Scanning from the top matters: far below the useful range, alarm days run together into a
-/// few long episodes and the episode rate falls again.
-pub fn matched(truths: &[Truth<'_>], rule: Grouping, levels: &[f64]) -> Vec<MatchedPoint> {
-    let fa = |h: f64| {
-        at_threshold(truths, h, rule)
-            .false_alarm_episodes_per_participant_month
-            .unwrap_or(0.0)
-    };
-    levels
-        .iter()
-        .map(|&level| {
-            let none = MatchedPoint {
-                false_alarm_episodes_per_participant_month: level,
-                threshold: None,
-                achieved_false_alarm_episodes: None,
-                sensitivity: None,
-                median_lead_from_start_days: None,
-            };
-            let mut hi = SWEEP_MAX;
-            if fa(hi) > level {
-                return none;
-            }
-            let mut lo = None;
-            let n = (SWEEP_MAX / SWEEP_STEP).round() as usize;
-            for i in (0..n).rev() {
-                let h = i as f64 * SWEEP_STEP;
-                if fa(h) > level {
-                    lo = Some(h);
-                    break;
-                }
-                hi = h;
-            }
-            if let Some(mut lo) = lo {
-                while hi - lo > 1e-4 {
-                    let mid = 0.5 * (lo + hi);
-                    if fa(mid) <= level {
-                        hi = mid;
-                    } else {
-                        lo = mid;
-                    }
-                }
-            }
-            let p = at_threshold(truths, hi, rule);
-            MatchedPoint {
-                false_alarm_episodes_per_participant_month: level,
-                threshold: Some(hi),
-                achieved_false_alarm_episodes: p.false_alarm_episodes_per_participant_month,
-                sensitivity: p.sensitivity,
-                median_lead_from_start_days: p.median_lead_from_start_days,
-            }
-        })
-        .collect()
 }
 
 /// Area under sensitivity against false alarm episodes per participant-month from 0 to
