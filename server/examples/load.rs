@@ -2,7 +2,9 @@
 //! fetch their task and submit one update each in a single round. Prints
 //! updates per second, p50/p99 submit latency, and the process's peak memory
 //! (server and clients share the process, so it is an upper bound on the
-//! server's), with the ratio against the 5,000 updates/s target.
+//! server's), with the ratio against the 5,000 updates/s target. The same run is then
+//! repeated over TLS (a development certificate, rustls on both ends) and printed beside it,
+//! with the TLS run's rate as a ratio of the plaintext one (the named baseline).
 //!
 //! `cargo run --release -p plimsoll-server --example load -- [DEVICES] [CONCURRENCY]`
 
@@ -13,11 +15,12 @@ use plimsoll_proto::auth::{DeviceCredential, authorized};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_client::AggregatorClient;
 use plimsoll_server::secrets::random_token;
+use plimsoll_server::tls::write_dev_certificate;
 use plimsoll_server::{
-    Coordinator, LocalTraining, SignalLayout, StudyConfig, serve, service::now_ms,
+    Coordinator, LocalTraining, SignalLayout, StudyConfig, TlsIdentity, serve_with, service::now_ms,
 };
 use tokio::sync::Semaphore;
-use tonic::transport::{Channel, Endpoint};
+use tonic::transport::{Certificate, Channel, ClientTlsConfig, Endpoint};
 
 const TARGET_UPDATES_PER_S: f64 = 5_000.0;
 
@@ -37,11 +40,46 @@ fn peak_rss_mb() -> f64 {
         .map_or(f64::NAN, |kb| kb / 1024.0)
 }
 
+/// What one run measured.
+struct Measured {
+    enroll_s: f64,
+    submit_s: f64,
+    p50_ms: f64,
+    p99_ms: f64,
+}
+
 #[tokio::main]
 async fn main() -> anyhow::Result<()> {
     let args: Vec<String> = std::env::args().collect();
     let n: usize = args.get(1).map_or(Ok(10_000), |s| s.parse())?;
     let concurrency: usize = args.get(2).map_or(Ok(256), |s| s.parse())?;
+    println!("devices {n}, concurrency {concurrency}, 8 HTTP/2 connections, loopback");
+    let plain = run(n, concurrency, false).await?;
+    let tls = run(n, concurrency, true).await?;
+    println!("transport   enrolments/s   updates/s   ratio to target   p50 ms   p99 ms");
+    for (name, m) in [("plaintext", &plain), ("TLS", &tls)] {
+        let rate = n as f64 / m.submit_s;
+        println!(
+            "{name:<9}   {:>12.0}   {rate:>9.0}   {:>14.2}×   {:>6.2}   {:>6.2}",
+            n as f64 / m.enroll_s,
+            rate / TARGET_UPDATES_PER_S,
+            m.p50_ms,
+            m.p99_ms,
+        );
+    }
+    println!(
+        "TLS updates/s as a share of plaintext (the baseline of this run): {:.2}×",
+        plain.submit_s / tls.submit_s
+    );
+    println!(
+        "peak RSS of the whole process (both runs, server and clients) {:.0} MB",
+        peak_rss_mb()
+    );
+    Ok(())
+}
+
+/// One load run: a fresh aggregator, `n` devices enrolling and submitting one update each.
+async fn run(n: usize, concurrency: usize, tls: bool) -> anyhow::Result<Measured> {
     let dir = tempfile::tempdir()?;
     let coordinator = Arc::new(Coordinator::open(&dir.path().join("load.db"))?);
     let code = coordinator.create_study(
@@ -69,15 +107,35 @@ async fn main() -> anyhow::Result<()> {
         },
         now_ms(),
     )?;
-    let server = serve(
+    let certs = if tls {
+        let files = write_dev_certificate(&dir.path().join("certs"), &["localhost".into()], 7)?;
+        let identity = TlsIdentity::load(&files.cert, &files.key)?;
+        Some((std::fs::read(&files.ca)?, identity))
+    } else {
+        None
+    };
+    let server = serve_with(
         coordinator.clone(),
         tokio::net::TcpListener::bind("127.0.0.1:0").await?,
+        certs.as_ref().map(|(_, identity)| identity),
     )
     .await?;
     // A few HTTP/2 connections, many streams each, as a fleet behind a
     // gateway would look; every call is a real gRPC request on loopback.
+    let port = server.addr.port();
     let channels: Vec<Channel> = (0..8)
-        .map(|_| Endpoint::from_shared(format!("http://{}", server.addr)).map(|e| e.connect_lazy()))
+        .map(|_| -> anyhow::Result<Channel> {
+            Ok(match &certs {
+                Some((ca, _)) => Endpoint::from_shared(format!("https://localhost:{port}"))?
+                    .tls_config(
+                        ClientTlsConfig::new()
+                            .ca_certificate(Certificate::from_pem(ca))
+                            .domain_name("localhost"),
+                    )?
+                    .connect_lazy(),
+                None => Endpoint::from_shared(format!("http://{}", server.addr))?.connect_lazy(),
+            })
+        })
         .collect::<Result<_, _>>()?;
     let gate = Arc::new(Semaphore::new(concurrency));
 
@@ -159,28 +217,12 @@ async fn main() -> anyhow::Result<()> {
     let pct =
         |q: f64| latencies[((q * (n - 1) as f64).round() as usize).min(n - 1)].as_secs_f64() * 1e3;
     let status = coordinator.status("load")?;
-    let rate = n as f64 / submit_s;
-    println!("devices {n}, concurrency {concurrency}, 8 HTTP/2 connections, loopback");
-    println!(
-        "enrolment: {:.2} s ({:.0} enrolments/s)",
-        enroll_s,
-        n as f64 / enroll_s
-    );
-    println!(
-        "submissions: {submit_s:.2} s → {rate:.0} updates/s (target {TARGET_UPDATES_PER_S:.0}; ratio {:.2}×)",
-        rate / TARGET_UPDATES_PER_S
-    );
-    println!(
-        "submit latency: p50 {:.2} ms, p99 {:.2} ms",
-        pct(0.50),
-        pct(0.99)
-    );
-    println!(
-        "rounds completed: {} (expected 1); peak RSS of the whole process {:.0} MB",
-        status.rounds_completed,
-        peak_rss_mb()
-    );
     server.shutdown().await?;
     anyhow::ensure!(status.rounds_completed == 1, "the round did not close");
-    Ok(())
+    Ok(Measured {
+        enroll_s,
+        submit_s,
+        p50_ms: pct(0.50),
+        p99_ms: pct(0.99),
+    })
 }
