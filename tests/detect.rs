@@ -243,9 +243,9 @@ fn joint_score_matches_its_closed_form_and_the_table() {
     }
     let mut rng = ChaCha8Rng::seed_from_u64(3);
     let mut m = [[0.0; N_SIGNALS]; N_SIGNALS];
-    for j in 0..N_SIGNALS {
-        for k in 0..N_SIGNALS {
-            m[j][k] = if j == k {
+    for (j, row) in m.iter_mut().enumerate() {
+        for (k, cell) in row.iter_mut().enumerate() {
+            *cell = if j == k {
                 1.0
             } else {
                 rng.random_range(-0.3..0.3)

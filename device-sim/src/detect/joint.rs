@@ -68,10 +68,10 @@ impl Default for ResidualMoments {
 impl ResidualMoments {
     /// Adds one day's residuals (`None` = not observed or not usable).
     pub fn add_day(&mut self, r: &[Option<f64>; N_SIGNALS]) {
-        for j in 0..N_SIGNALS {
-            let Some(a) = r[j] else { continue };
-            for k in 0..N_SIGNALS {
-                if let Some(b) = r[k] {
+        for (j, a) in r.iter().enumerate() {
+            let Some(a) = a else { continue };
+            for (k, b) in r.iter().enumerate() {
+                if let Some(b) = b {
                     self.cross[j][k] += a * b;
                     self.count[j][k] += 1;
                 }
@@ -95,9 +95,9 @@ impl ResidualMoments {
     /// Signals with no days keep correlation 0.
     pub fn correlation(&self, shrink_days: f64) -> Correlation {
         let mut m = [[0.0; N_SIGNALS]; N_SIGNALS];
-        for j in 0..N_SIGNALS {
-            m[j][j] = 1.0;
-            for k in 0..N_SIGNALS {
+        for (j, row) in m.iter_mut().enumerate() {
+            row[j] = 1.0;
+            for (k, cell) in row.iter_mut().enumerate() {
                 if j == k || self.count[j][k] < 2 {
                     continue;
                 }
@@ -111,7 +111,7 @@ impl ResidualMoments {
                 let mj = vj / self.count[j][j] as f64;
                 let mk = vk / self.count[k][k] as f64;
                 let rho = (self.cross[j][k] / n) / (mj * mk).sqrt();
-                m[j][k] = rho.clamp(-0.95, 0.95) * n / (n + shrink_days);
+                *cell = rho.clamp(-0.95, 0.95) * n / (n + shrink_days);
             }
         }
         Correlation::new(m)

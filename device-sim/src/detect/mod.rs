@@ -263,14 +263,18 @@ pub fn without_protected_days(
         .map(|(i, &d)| (d, i))
         .collect();
     for d in scores.signal_days.iter().filter(|d| d.protected) {
-        if let (Some(column), Some(&i)) = (out.values.get_mut(&d.signal), index.get(&d.date)) {
-            if column[i].take().is_some() {
-                removed += 1;
-            }
+        if let (Some(column), Some(&i)) = (out.values.get_mut(&d.signal), index.get(&d.date))
+            && column[i].take().is_some()
+        {
+            removed += 1;
         }
     }
     (out, removed)
 }
+
+/// The maximising window of a day: score, window length, each signal's contribution and
+/// window departure.
+type BestWindow = (f64, usize, [f64; N_SIGNALS], [Option<f64>; N_SIGNALS]);
 
 /// Per-signal state.
 struct Track<'a, P> {
@@ -390,7 +394,8 @@ pub fn score_participant<P: Predictor>(
                 track.recent.pop_front();
             }
         }
-        let mut best: Option<(f64, usize, [f64; N_SIGNALS], [Option<f64>; N_SIGNALS])> = None;
+        // (score, window, contributions, departures) of the best window so far.
+        let mut best: Option<BestWindow> = None;
         let mut mirror: Option<f64> = None;
         if any {
             for &w in &cfg.windows {
