@@ -140,3 +140,88 @@ async fn a_revoked_device_is_dropped_and_the_others_finish() {
     assert_eq!(training.updates, u64::from(rounds) * (n as u64 - 1));
     server.shutdown().await.unwrap();
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_device_that_cannot_enrol_is_dropped_and_the_study_starts_without_it() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut cohort = (*small_cohort(6, &dir.path().join("cohort"))).clone();
+    let n = cohort.participants.len();
+    // The aggregator refuses this label (letters, digits, `_` and `-` only), so the device
+    // never enrols, and the study waiting for all six would never start.
+    cohort.participants[1].participant = "label with spaces".into();
+    let cohort = Arc::new(cohort);
+    let rounds = 2;
+    let mut config = study_config("unenrolled", &cohort_signals(&cohort), n as u32, rounds);
+    config.min_quorum = 3;
+    let members: Vec<usize> = (0..n).collect();
+    let run = run_federated_pooled(
+        &cohort,
+        &members,
+        config,
+        &dir.path().join("agg.db"),
+        &PoolOptions::default(),
+        &PhaseBars::default(),
+    )
+    .await
+    .unwrap();
+    assert_eq!(run.enrolled, n - 1);
+    assert_eq!(run.dropped.len(), 1, "{:?}", run.dropped);
+    let dropped = &run.dropped[0];
+    assert_eq!(dropped.participant, "label with spaces");
+    assert_eq!(dropped.device_id, None);
+    assert!(
+        dropped.reason.contains("participant_label"),
+        "{}",
+        dropped.reason
+    );
+    // Every round ran with the five that enrolled.
+    assert_eq!(run.history.len(), rounds as usize + 1);
+    assert_eq!(run.updates, u64::from(rounds) * (n as u64 - 1));
+}
+
+#[test]
+fn a_study_cannot_be_started_early_below_its_quorum_or_twice() {
+    let dir = tempfile::tempdir().unwrap();
+    let coordinator = Coordinator::open(&dir.path().join("agg.db")).unwrap();
+    let mut config = study_config("early", &[plimsoll_device::signal::Signal::RestingHr], 4, 2);
+    config.min_quorum = 2;
+    let code = coordinator.create_study(config, now_ms()).unwrap();
+    let enrol = |label: &str, secret: &str| {
+        coordinator
+            .enroll(
+                &plimsoll_server::Enrollment {
+                    study_id: "early",
+                    label,
+                    signals: &["resting_hr_bpm".to_owned()],
+                    consent_share_flags: false,
+                    enrollment_code: &code,
+                    device_secret: &secret.repeat(32),
+                },
+                now_ms(),
+            )
+            .unwrap()
+    };
+    enrol("p-1", "ab");
+    let err = coordinator
+        .start_with_enrolled("early", now_ms())
+        .unwrap_err();
+    assert!(err.to_string().contains("min_quorum 2"), "{err}");
+    assert_eq!(coordinator.status("early").unwrap().current_round, 0);
+    enrol("p-2", "cd");
+    assert_eq!(
+        coordinator.start_with_enrolled("early", now_ms()).unwrap(),
+        2
+    );
+    assert_eq!(coordinator.status("early").unwrap().current_round, 1);
+    let err = coordinator
+        .start_with_enrolled("early", now_ms())
+        .unwrap_err();
+    assert!(err.to_string().contains("already started"), "{err}");
+    // The new threshold is stored: a restarted aggregator keeps it.
+    drop(coordinator);
+    let reopened = Coordinator::open(&dir.path().join("agg.db")).unwrap();
+    assert_eq!(
+        reopened.status("early").unwrap().config.start_when_enrolled,
+        2
+    );
+}

@@ -464,8 +464,10 @@ pub struct PooledRun {
 /// and [`train_enrolled`].
 ///
 /// # Errors
-/// The database cannot be opened, the server cannot start, the study cannot start (fewer
-/// devices enrolled than `config.start_when_enrolled`), or the pool fails.
+/// The database cannot be opened, the server cannot start, the study cannot start (when some
+/// devices could not enrol, it starts with the others through
+/// [`Coordinator::start_with_enrolled`], which refuses fewer than `config.min_quorum`), or the
+/// pool fails.
 pub async fn run_federated_pooled(
     cohort: &Arc<Cohort>,
     members: &[usize],
@@ -501,6 +503,26 @@ pub async fn run_federated_pooled(
         b.finish();
     }
     let enrolment_time = t_enrol.elapsed();
+    // Devices that could not enrol will not come later: start with those that did (the
+    // coordinator refuses when they are fewer than the study's quorum).
+    if !enrolment.dropped.is_empty() {
+        let started = coordinator
+            .start_with_enrolled(&study_id, plimsoll_server::service::now_ms())
+            .with_context(|| {
+                format!(
+                    "starting study `{study_id}` without the {} devices that could not enrol (first: {} — {})",
+                    enrolment.dropped.len(),
+                    enrolment.dropped[0].participant,
+                    enrolment.dropped[0].reason
+                )
+            })?;
+        tracing::warn!(
+            study = %study_id,
+            started,
+            dropped = enrolment.dropped.len(),
+            "started without the devices that could not enrol"
+        );
+    }
     let t_rounds = Instant::now();
     let training = train_enrolled(
         &coordinator,

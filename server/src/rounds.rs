@@ -369,6 +369,48 @@ impl Coordinator {
             .map(|r| (r.round_id, r.members.iter().copied().collect())))
     }
 
+    /// Starts a study that is still waiting for enrolments with the devices enrolled so far:
+    /// its `start_when_enrolled` becomes the number of active devices (stored first, then in
+    /// memory) and the first round opens. For an operator, or an in-process run, whose
+    /// remaining participants will not enrol. Returns the new threshold.
+    ///
+    /// # Errors
+    /// No such study; the study already started (FAILED_PRECONDITION); fewer active devices
+    /// than its `min_quorum` (FAILED_PRECONDITION); the database.
+    pub fn start_with_enrolled(&self, study_id: &str, now_ms: i64) -> Result<u32> {
+        let mut state = self.lock();
+        let State { store, studies } = &mut *state;
+        let rt = study_mut(studies, study_id)?;
+        if rt.last_round_id != 0 {
+            return Err(AggregatorError::FailedPrecondition(format!(
+                "study `{study_id}` has already started (round {})",
+                rt.last_round_id
+            )));
+        }
+        for id in store.revoked_devices(study_id)? {
+            if let Some(d) = rt.devices.get_mut(&id) {
+                d.revoked = true;
+            }
+        }
+        let active = rt.active_devices() as u32;
+        if active < rt.config.min_quorum {
+            return Err(AggregatorError::FailedPrecondition(format!(
+                "study `{study_id}` has {active} active devices, fewer than its min_quorum {}",
+                rt.config.min_quorum
+            )));
+        }
+        let mut config = rt.config.clone();
+        config.start_when_enrolled = active;
+        store.update_study_config(&config)?;
+        rt.config = config;
+        let opened = maybe_open_round(store, rt, now_ms, None)?;
+        drop(state);
+        if opened {
+            self.notify();
+        }
+        Ok(active)
+    }
+
     /// Enrols a participant's device, checking the study's enrollment code.
     /// The same label with the same device secret gets the same id back (and
     /// its recorded consent to share flags updated); with another secret it

@@ -407,6 +407,14 @@ impl Store {
             .flatten())
     }
 
+    /// Replaces a study's stored settings (same study id); false when there is no such study.
+    pub fn update_study_config(&mut self, config: &StudyConfig) -> Result<bool> {
+        Ok(self.conn.execute(
+            "UPDATE studies SET config_json = ?2 WHERE study_id = ?1",
+            params![config.study_id, to_json(config)],
+        )? == 1)
+    }
+
     /// Replaces a study's enrollment code hash; false when there is no such
     /// study.
     pub fn set_enrollment_code_hash(&mut self, study_id: &str, hash: &str) -> Result<bool> {
