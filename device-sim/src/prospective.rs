@@ -565,7 +565,7 @@ impl DailyFilter {
     pub fn predict(&self, day: i64) -> Result<OneStep> {
         // Only the three observed states matter, so instead of propagating the whole state
         // (what `update` does) this forms the 3 × 3 block of the propagated covariance
-        // directly: the same arithmetic on the entries it needs, about a tenth of the work.
+        // directly: the same arithmetic, on only the entries it needs.
         let w = IDX_WEEK + week_slot(day);
         let (i0, i1) = (IDX_TREND, IDX_TREND + 1);
         let (x, p) = (&self.x, &self.p);
