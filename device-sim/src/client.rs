@@ -437,19 +437,10 @@ pub async fn run_device_with(
 ) -> anyhow::Result<DeviceReport> {
     let participant = series.participant.clone();
     let mut client = AggregatorClient::new(channel.clone());
-    let origin = *series
-        .dates
-        .first()
-        .ok_or_else(|| anyhow!("participant {participant} has no days"))?;
-    let local: Vec<(Signal, LocalSeries)> = series
-        .signals()
-        .into_iter()
-        .map(|s| {
-            let (t, z) = standardised(&series, s, origin);
-            (s, LocalSeries { t, z })
-        })
-        .filter(|(_, l)| l.n_days() >= MIN_DAYS_TO_ENROLL)
-        .collect();
+    if series.dates.is_empty() {
+        return Err(anyhow!("participant {participant} has no days"));
+    }
+    let local = local_training_series(&series);
     if local.is_empty() {
         return Err(anyhow!(
             "participant {participant} has no signal with {MIN_DAYS_TO_ENROLL} observed days"
@@ -493,33 +484,18 @@ pub async fn run_device_with(
                 let task = wire::task_from_pb(task).context("task from the aggregator")?;
                 let round_id = task.round_id;
                 let seed: u64 = rand::Rng::random(&mut rng);
-                let permit = cpu.clone().acquire_owned().await?;
-                let data = local.clone();
-                let updates = tokio::task::spawn_blocking(move || {
-                    let _permit = permit;
-                    train_all(&task, &data, seed)
-                })
-                .await??;
-                let request = pb::SubmitUpdateRequest {
-                    study_id: opts.study_id.clone(),
-                    device_id,
-                    round_id,
-                    updates: updates
-                        .iter()
-                        .map(|(s, u)| wire::update_to_pb(*s, u))
-                        .collect(),
-                };
-                // A retry after a lost answer is safe: an identical
-                // submission is answered as the first one was.
-                retry(&backoff, seed, || {
-                    let mut c = client.clone();
-                    let r = authorized(&credential, request.clone());
-                    async move { c.submit_update(r).await }
-                })
+                train_and_submit(
+                    &client,
+                    &credential,
+                    &opts.study_id,
+                    task,
+                    local.clone(),
+                    &cpu,
+                    seed,
+                    &backoff,
+                )
                 .await
-                .with_context(|| {
-                    format!("SubmitUpdate for device {device_id}, round {round_id}")
-                })?;
+                .with_context(|| format!("device {device_id}, round {round_id}"))?;
                 rounds_trained += 1;
             }
             Some(Work::Wait(wait)) => {
@@ -633,6 +609,69 @@ pub async fn study_review_level(
 }
 
 /// One round of local training for every signal in the task.
+/// A device's local training series: every signal with at least [`MIN_DAYS_TO_ENROLL`]
+/// observed days, standardised, days counted from the participant's first date (empty when
+/// the series has no date).
+pub(crate) fn local_training_series(series: &ParticipantSeries) -> Vec<(Signal, LocalSeries)> {
+    let Some(&origin) = series.dates.first() else {
+        return Vec::new();
+    };
+    series
+        .signals()
+        .into_iter()
+        .map(|s| {
+            let (t, z) = standardised(series, s, origin);
+            (s, LocalSeries { t, z })
+        })
+        .filter(|(_, l)| l.n_days() >= MIN_DAYS_TO_ENROLL)
+        .collect()
+}
+
+/// One round's work after the task arrived: trains on `local` on the blocking pool (holding
+/// one of `cpu`'s permits) with `seed`, then submits the updates, retried with `backoff`. A
+/// retry after a lost answer is safe: an identical submission is answered as the first one
+/// was.
+///
+/// # Errors
+/// The training's error, or `SubmitUpdate` still failing after the retries.
+#[allow(clippy::too_many_arguments)]
+pub(crate) async fn train_and_submit(
+    client: &AggregatorClient<Channel>,
+    credential: &DeviceCredential,
+    study_id: &str,
+    task: wire::TrainingTask,
+    local: Arc<Vec<(Signal, LocalSeries)>>,
+    cpu: &Arc<Semaphore>,
+    seed: u64,
+    backoff: &Backoff,
+) -> anyhow::Result<()> {
+    let round_id = task.round_id;
+    let permit = cpu.clone().acquire_owned().await?;
+    let updates = tokio::task::spawn_blocking(move || {
+        let _permit = permit;
+        train_all(&task, &local, seed)
+    })
+    .await
+    .context("local training task")??;
+    let request = pb::SubmitUpdateRequest {
+        study_id: study_id.to_owned(),
+        device_id: credential.device_id,
+        round_id,
+        updates: updates
+            .iter()
+            .map(|(s, u)| wire::update_to_pb(*s, u))
+            .collect(),
+    };
+    retry(backoff, seed, || {
+        let mut c = client.clone();
+        let r = authorized(credential, request.clone());
+        async move { c.submit_update(r).await }
+    })
+    .await
+    .context("SubmitUpdate")?;
+    Ok(())
+}
+
 pub(crate) fn train_all(
     task: &wire::TrainingTask,
     local: &[(Signal, LocalSeries)],

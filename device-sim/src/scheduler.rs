@@ -34,13 +34,10 @@ use tonic::transport::Channel;
 
 use crate::client::{
     EnrollmentRequest, FlagSharing, MIN_DAYS_TO_ENROLL, authorized, connect_lazy, enroll,
-    new_device_secret, seed_of, train_all,
+    local_training_series, new_device_secret, seed_of, train_and_submit,
 };
-use crate::cohort::{Cohort, ParticipantSeries};
-use crate::personal::standardised;
+use crate::cohort::Cohort;
 use crate::retry::{Backoff, retry};
-use crate::signal::Signal;
-use crate::training::LocalSeries;
 use crate::wire;
 
 /// How much work runs at once.
@@ -120,23 +117,6 @@ pub struct Enrolment {
     pub dropped: Vec<DroppedDevice>,
 }
 
-/// A device's local training series: every signal with at least [`MIN_DAYS_TO_ENROLL`]
-/// observed days, standardised, days counted from its first date.
-fn local_series(series: &ParticipantSeries) -> Vec<(Signal, LocalSeries)> {
-    let Some(&origin) = series.dates.first() else {
-        return Vec::new();
-    };
-    series
-        .signals()
-        .into_iter()
-        .map(|s| {
-            let (t, z) = standardised(series, s, origin);
-            (s, LocalSeries { t, z })
-        })
-        .filter(|(_, l)| l.n_days() >= MIN_DAYS_TO_ENROLL)
-        .collect()
-}
-
 /// Enrols the devices of `cohort.participants[i]` for every `i` in `members` (without consent
 /// to share flags), at most `pool.workers` at a time. A participant without a signal of
 /// [`MIN_DAYS_TO_ENROLL`] observed days, or whose enrolment still fails after its retries, is
@@ -168,7 +148,7 @@ pub async fn enroll_all(
             );
             tasks.spawn(async move {
                 let series = &cohort.participants[index];
-                let signals: Vec<String> = local_series(series)
+                let signals: Vec<String> = local_training_series(series)
                     .iter()
                     .map(|(s, _)| s.column().to_owned())
                     .collect();
@@ -402,36 +382,19 @@ impl DeviceRound {
             None => bail!("FetchTask for device {device_id} answered without work"),
         };
         let round_id = task.round_id;
-        let permit = self.cpu.clone().acquire_owned().await?;
-        let cohort = self.cohort.clone();
-        let (index, seed) = (self.index, self.seed);
-        let updates = tokio::task::spawn_blocking(move || {
-            let _permit = permit;
-            let local = local_series(&cohort.participants[index]);
-            train_all(&task, &local, seed)
-        })
+        let local = Arc::new(local_training_series(&self.cohort.participants[self.index]));
+        train_and_submit(
+            &client,
+            credential,
+            &self.study_id,
+            task,
+            local,
+            &self.cpu,
+            self.seed,
+            &self.backoff,
+        )
         .await
-        .context("local training task")??;
-        let request = pb::SubmitUpdateRequest {
-            study_id: self.study_id.clone(),
-            device_id,
-            round_id,
-            updates: updates
-                .iter()
-                .map(|(s, u)| wire::update_to_pb(*s, u))
-                .collect(),
-        };
-        // A retry after a lost answer is safe: an identical submission is answered as the
-        // first one was.
-        retry(&self.backoff, self.seed ^ 0x5b, || {
-            let mut c = client.clone();
-            let r = authorized(credential, request.clone());
-            async move { c.submit_update(r).await }
-        })
-        .await
-        .with_context(|| {
-            format!("SubmitUpdate for device {device_id} ({participant}), round {round_id}")
-        })?;
+        .with_context(|| format!("device {device_id} ({participant}), round {round_id}"))?;
         Ok(RoundOutcome::Submitted)
     }
 }
