@@ -387,11 +387,7 @@ impl Coordinator {
                 rt.last_round_id
             )));
         }
-        for id in store.revoked_devices(study_id)? {
-            if let Some(d) = rt.devices.get_mut(&id) {
-                d.revoked = true;
-            }
-        }
+        refresh_revocations(store, rt)?;
         let active = rt.active_devices() as u32;
         if active < rt.config.min_quorum {
             return Err(AggregatorError::FailedPrecondition(format!(
@@ -969,11 +965,7 @@ fn due_completion(
     let Some(deadline_ms) = stage_deadline_ms(store, rt, stage)? else {
         return Ok(false);
     };
-    for id in store.revoked_devices(&rt.config.study_id)? {
-        if let Some(d) = rt.devices.get_mut(&id) {
-            d.revoked = true;
-        }
-    }
+    refresh_revocations(store, rt)?;
     let everyone = rt
         .devices
         .iter()
@@ -1099,6 +1091,17 @@ fn validate_updates(
 
 /// Opens the next round when none is open, rounds remain and enough devices
 /// are enrolled. `abandon` names a round being retried for lack of quorum.
+/// Marks the devices revoked in the database as revoked in memory (revocations may come from
+/// another process, the operator's command line, while this one runs).
+fn refresh_revocations(store: &Store, rt: &mut StudyRuntime) -> Result<()> {
+    for id in store.revoked_devices(&rt.config.study_id)? {
+        if let Some(d) = rt.devices.get_mut(&id) {
+            d.revoked = true;
+        }
+    }
+    Ok(())
+}
+
 fn maybe_open_round(
     store: &mut Store,
     rt: &mut StudyRuntime,
@@ -1117,11 +1120,7 @@ fn maybe_open_round(
     }
     // Revocations may come from another process (the operator's command
     // line) while this one runs: read them before choosing members.
-    for id in store.revoked_devices(&rt.config.study_id)? {
-        if let Some(d) = rt.devices.get_mut(&id) {
-            d.revoked = true;
-        }
-    }
+    refresh_revocations(store, rt)?;
     if too_few(rt) {
         return Ok(false);
     }
