@@ -488,3 +488,88 @@ async fn a_round_without_quorum_is_retried_never_half_applied() {
     assert_eq!(retry.shared[0].values, prior.params[0].values);
     server.stop().await;
 }
+
+/// `Coordinator::submit_batch` (what `SubmitUpdate` calls arriving together go through): each
+/// call in a batch is answered as it would be alone, in order, and only the new, valid ones are
+/// recorded. Expected answers follow the single-call rules tested above; the average is the
+/// day-weighted mean (FedAvg, McMahan et al. 2017, computed by hand below).
+#[tokio::test]
+async fn a_batch_of_submissions_is_answered_call_by_call() {
+    use plimsoll_server::AggregatorError;
+    use plimsoll_server::rounds::Submission;
+    use plimsoll_server::study::SignalUpdate;
+
+    let dir = tempfile::tempdir().unwrap();
+    let server = TestServer::start(
+        &dir.path().join("agg.db"),
+        vec![study_config(STUDY, &[Signal::RestingHr], 3, 2)],
+    )
+    .await;
+    let mut client = server.client();
+    let a = enroll(&server, "p-a").await;
+    let b = enroll(&server, "p-b").await;
+    let c = enroll(&server, "p-c").await;
+    let round = task(&mut client, &a).await.round_id;
+    let updates = |v: f64, days: u32| {
+        vec![SignalUpdate {
+            signal: "resting_hr_bpm".into(),
+            values: vec![v; 7],
+            n_days: days,
+            local_loss: 1.0,
+        }]
+    };
+    let call = |who: &DeviceCredential, v: f64, days: u32| Submission {
+        study_id: STUDY.into(),
+        device_id: who.device_id,
+        round_id: round,
+        updates: updates(v, days),
+        credential: who.clone(),
+    };
+    let wrong_secret = DeviceCredential {
+        device_id: b.device_id,
+        secret: "0".repeat(64),
+    };
+    let batch = vec![
+        call(&a, 1.0, 10),
+        // The same call again in the same batch: answered, not counted twice.
+        call(&a, 1.0, 10),
+        // A different update from a device already in the batch.
+        call(&a, 9.0, 10),
+        Submission {
+            credential: wrong_secret,
+            ..call(&b, 2.0, 30)
+        },
+        call(&b, f64::NAN, 30),
+        call(&b, 2.0, 30),
+    ];
+    let answers = server.coordinator.submit_batch(batch, plimsoll_server::service::now_ms());
+    assert_eq!(answers.len(), 6);
+    let ok = |i: usize| answers[i].as_ref().unwrap_or_else(|e| panic!("call {i}: {e}"));
+    assert_eq!((ok(0).accepted_in_round, ok(0).round_closed), (1, false));
+    assert!(!ok(1).round_closed);
+    assert!(matches!(answers[2], Err(AggregatorError::AlreadyExists(_))));
+    assert!(matches!(answers[3], Err(AggregatorError::Unauthenticated(_))));
+    assert!(matches!(answers[4], Err(AggregatorError::InvalidArgument { .. })));
+    assert_eq!((ok(5).accepted_in_round, ok(5).round_closed), (2, false));
+    assert_eq!(server.coordinator.prior(STUDY, None).unwrap().version, 0);
+
+    // The last member's call, alone in its batch, closes the round.
+    let answers = server
+        .coordinator
+        .submit_batch(vec![call(&c, 4.0, 60)], plimsoll_server::service::now_ms());
+    let closing = answers[0].as_ref().unwrap();
+    assert_eq!((closing.accepted_in_round, closing.round_closed), (3, true));
+    let prior = server.coordinator.prior(STUDY, None).unwrap();
+    assert_eq!(prior.version, 1);
+    assert_eq!(prior.contributions[0].n_devices, 3);
+    // (10·1 + 30·2 + 60·4) / 100 = 3.1
+    assert!((prior.params[0].values[0] - 3.1).abs() < 1e-12);
+    server.stop().await;
+
+    // What was recorded survives a restart: the same prior, and device a's retry of its
+    // accepted call is still answered as accepted (its row is in the database).
+    let reopened = plimsoll_server::Coordinator::open(&dir.path().join("agg.db")).unwrap();
+    assert_eq!(reopened.prior(STUDY, None).unwrap(), prior);
+    let retry = reopened.submit_batch(vec![call(&a, 1.0, 10)], plimsoll_server::service::now_ms());
+    assert!(retry[0].as_ref().unwrap().round_closed);
+}

@@ -27,6 +27,10 @@ pub enum AggregatorError {
     /// The embedded database failed.
     #[error("database: {0}")]
     Database(#[from] rusqlite::Error),
+    /// The transaction this call's change shared with others (a group commit) failed, so
+    /// nothing of it was applied; the message is the database's.
+    #[error("database: {0}")]
+    Unapplied(String),
     /// Stored state could not be decoded.
     #[error("stored state is corrupt: {0}")]
     Corrupt(String),

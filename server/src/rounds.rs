@@ -53,6 +53,9 @@ struct OpenRound {
 struct StudyRuntime {
     config: StudyConfig,
     devices: BTreeMap<u64, Device>,
+    /// How many of `devices` are revoked (kept with [`StudyRuntime::mark_revoked`], so that
+    /// counting the active devices, which every enrolment does, costs O(1)).
+    revoked: usize,
     labels: HashMap<String, u64>,
     latest: PriorVersion,
     rounds_completed: u32,
@@ -66,7 +69,17 @@ struct StudyRuntime {
 impl StudyRuntime {
     /// Enrolled devices that were not revoked.
     fn active_devices(&self) -> usize {
-        self.devices.values().filter(|d| !d.revoked).count()
+        self.devices.len() - self.revoked
+    }
+
+    /// Marks device `id` revoked in memory (the database already says so).
+    fn mark_revoked(&mut self, id: u64) {
+        if let Some(d) = self.devices.get_mut(&id)
+            && !d.revoked
+        {
+            d.revoked = true;
+            self.revoked += 1;
+        }
     }
 
     fn training_done(&self) -> bool {
@@ -99,10 +112,70 @@ impl std::fmt::Debug for Enrollment<'_> {
     }
 }
 
+/// One `SubmitUpdate` call, as [`Coordinator::submit_batch`] checks it.
+#[derive(Debug)]
+pub struct Submission {
+    pub study_id: String,
+    pub device_id: u64,
+    pub round_id: u64,
+    pub updates: Vec<SignalUpdate>,
+    /// The call's credential (`Debug` never prints the secret).
+    pub credential: DeviceCredential,
+}
+
 #[derive(Debug)]
 struct State {
     store: Store,
     studies: BTreeMap<String, StudyRuntime>,
+}
+
+impl State {
+    /// [`Coordinator::authenticate`] under the lock already held.
+    fn authenticate(
+        &mut self,
+        study_id: &str,
+        claimed: Option<u64>,
+        credential: &DeviceCredential,
+    ) -> Result<()> {
+        let id = credential.device_id;
+        let identity = self.store.device_identity(id)?;
+        let Some(identity) = identity else {
+            return Err(AggregatorError::Unauthenticated(format!(
+                "authorization: no device {id} is enrolled"
+            )));
+        };
+        let presented = secret_hash(&credential.secret);
+        if !identity
+            .credential_hash
+            .as_deref()
+            .is_some_and(|stored| constant_time_eq(stored, &presented))
+        {
+            return Err(AggregatorError::Unauthenticated(format!(
+                "authorization: the secret does not match device {id}"
+            )));
+        }
+        if identity.revoked_ms.is_some() {
+            if let Some(rt) = self.studies.get_mut(&identity.study_id) {
+                rt.mark_revoked(id);
+            }
+            return Err(AggregatorError::PermissionDenied(format!(
+                "authorization: device {id} was revoked by the study team"
+            )));
+        }
+        if identity.study_id != study_id {
+            return Err(AggregatorError::PermissionDenied(format!(
+                "study_id: device {id} is not enrolled in study `{study_id}`"
+            )));
+        }
+        if let Some(claimed) = claimed
+            && claimed != id
+        {
+            return Err(AggregatorError::PermissionDenied(format!(
+                "device_id: {claimed} is not the authenticated device {id}"
+            )));
+        }
+        Ok(())
+    }
 }
 
 /// The aggregator's state machine, shared by the gRPC service and the
@@ -152,7 +225,9 @@ impl Coordinator {
             for stage in DetectionStage::ALL {
                 detection_complete[stage.index()] = store.completed_stage(&id, stage)?.is_some();
             }
+            let revoked = devices.values().filter(|d| d.revoked).count();
             let mut runtime = StudyRuntime {
+                revoked,
                 rounds_completed: store.rounds_completed(&id)?,
                 last_round_id: store.last_round_id(&id)?,
                 config,
@@ -236,6 +311,7 @@ impl Coordinator {
             StudyRuntime {
                 config,
                 devices: BTreeMap::new(),
+                revoked: 0,
                 labels: HashMap::new(),
                 latest: initial,
                 rounds_completed: 0,
@@ -268,9 +344,7 @@ impl Coordinator {
         let rt = study_mut(studies, study_id)?;
         let id = store.resolve_device(study_id, device)?;
         store.revoke_device(id, now_ms)?;
-        if let Some(d) = rt.devices.get_mut(&id) {
-            d.revoked = true;
-        }
+        rt.mark_revoked(id);
         tracing::warn!(study = %study_id, device_id = id, "device revoked");
         // The revoked device may have been the last one a calibration stage
         // was waiting for.
@@ -295,49 +369,7 @@ impl Coordinator {
         claimed: Option<u64>,
         credential: &DeviceCredential,
     ) -> Result<()> {
-        let id = credential.device_id;
-        let mut state = self.lock();
-        let identity = state.store.device_identity(id)?;
-        let Some(identity) = identity else {
-            return Err(AggregatorError::Unauthenticated(format!(
-                "authorization: no device {id} is enrolled"
-            )));
-        };
-        let presented = secret_hash(&credential.secret);
-        if !identity
-            .credential_hash
-            .as_deref()
-            .is_some_and(|stored| constant_time_eq(stored, &presented))
-        {
-            return Err(AggregatorError::Unauthenticated(format!(
-                "authorization: the secret does not match device {id}"
-            )));
-        }
-        if identity.revoked_ms.is_some() {
-            if let Some(d) = state
-                .studies
-                .get_mut(&identity.study_id)
-                .and_then(|rt| rt.devices.get_mut(&id))
-            {
-                d.revoked = true;
-            }
-            return Err(AggregatorError::PermissionDenied(format!(
-                "authorization: device {id} was revoked by the study team"
-            )));
-        }
-        if identity.study_id != study_id {
-            return Err(AggregatorError::PermissionDenied(format!(
-                "study_id: device {id} is not enrolled in study `{study_id}`"
-            )));
-        }
-        if let Some(claimed) = claimed
-            && claimed != id
-        {
-            return Err(AggregatorError::PermissionDenied(format!(
-                "device_id: {claimed} is not the authenticated device {id}"
-            )));
-        }
-        Ok(())
+        self.lock().authenticate(study_id, claimed, credential)
     }
 
     /// Identifiers of all studies.
@@ -579,89 +611,84 @@ impl Coordinator {
         })
     }
 
-    /// Validates and records a submission; closes the round when complete.
-    pub fn submit(
-        &self,
-        study_id: &str,
-        device_id: u64,
-        round_id: u64,
-        updates: Vec<SignalUpdate>,
-        now_ms: i64,
-    ) -> Result<SubmitOutcome> {
+    /// Authenticates, validates and records a batch of `SubmitUpdate` calls, answering each as
+    /// it would be answered alone, in order. The new submissions that pass every check are
+    /// written in **one** transaction (a group commit: under load the calls that arrived
+    /// together share one commit), and only then applied in memory; a round they complete is
+    /// closed and the next one opened, as for a single call. If that transaction fails, none
+    /// of them is recorded and each gets the error, so a device's retry starts from a clean
+    /// state.
+    pub fn submit_batch(&self, batch: Vec<Submission>, now_ms: i64) -> Vec<Result<SubmitOutcome>> {
         let mut state = self.lock();
-        let State { store, studies } = &mut *state;
-        let rt = study_mut(studies, study_id)?;
-        let device = rt
-            .devices
-            .get(&device_id)
-            .ok_or_else(|| unknown_device(study_id, device_id))?;
-        validate_updates(&rt.config, &device.signals, &updates)?;
-
-        let open_id = rt.open.as_ref().map(|r| r.round_id);
-        if open_id != Some(round_id) {
-            // A retry of a submission that was accepted before its round closed
-            // is answered as it was the first time (idempotent submission).
-            if round_id <= rt.last_round_id
-                && store.submission(study_id, round_id, device_id)?.as_ref() == Some(&updates)
-            {
-                return Ok(SubmitOutcome {
-                    accepted_in_round: 0,
-                    round_closed: true,
-                });
-            }
-            return Err(AggregatorError::FailedPrecondition(match open_id {
-                _ if round_id > rt.last_round_id => {
-                    format!(
-                        "round_id: round {round_id} has not opened (latest is {})",
-                        rt.last_round_id
-                    )
+        let mut answers: Vec<Option<Result<SubmitOutcome>>> = Vec::with_capacity(batch.len());
+        // New submissions that passed every check, by position in `batch`.
+        let mut fresh: Vec<usize> = Vec::new();
+        for s in &batch {
+            let answer = state
+                .authenticate(&s.study_id, Some(s.device_id), &s.credential)
+                .and_then(|()| check_submission(&mut state, s, &batch, &fresh, now_ms));
+            match answer {
+                Ok(None) => {
+                    fresh.push(answers.len());
+                    answers.push(None);
                 }
-                Some(cur) => {
-                    format!("round_id: round {round_id} is closed; the open round is {cur}")
-                }
-                None => format!("round_id: round {round_id} is closed and no round is open"),
-            }));
-        }
-        let open = rt.open.as_mut().expect("checked above");
-        if !open.members.contains(&device_id) {
-            return Err(AggregatorError::FailedPrecondition(format!(
-                "device_id: device {device_id} was not selected for round {round_id}"
-            )));
-        }
-        if let Some(previous) = open.submissions.get(&device_id) {
-            if previous == &updates {
-                return Ok(SubmitOutcome {
-                    accepted_in_round: open.submissions.len() as u32,
-                    round_closed: false,
-                });
+                Ok(Some(outcome)) => answers.push(Some(Ok(outcome))),
+                Err(e) => answers.push(Some(Err(e))),
             }
-            return Err(AggregatorError::AlreadyExists(format!(
-                "device {device_id} already submitted a different update for round {round_id}"
-            )));
         }
-        if now_ms > open.deadline_ms {
-            return Err(AggregatorError::FailedPrecondition(format!(
-                "round_id: the deadline of round {round_id} has passed"
-            )));
-        }
-        store.insert_update(study_id, round_id, device_id, &updates, now_ms)?;
-        open.submissions.insert(device_id, updates);
-        let accepted = open.submissions.len() as u32;
-        let complete = open.submissions.len() == open.members.len();
         let mut closed = false;
-        if complete {
-            close_round(store, rt, now_ms)?;
-            maybe_open_round(store, rt, now_ms, None)?;
-            closed = true;
+        if !fresh.is_empty() {
+            let State { store, studies } = &mut *state;
+            let rows: Vec<_> = fresh
+                .iter()
+                .map(|&i| {
+                    let s = &batch[i];
+                    (s.study_id.as_str(), s.round_id, s.device_id, s.updates.as_slice())
+                })
+                .collect();
+            match store.insert_updates(&rows, now_ms) {
+                Err(e) => {
+                    let message = e.to_string();
+                    for &i in &fresh {
+                        answers[i] = Some(Err(AggregatorError::Unapplied(message.clone())));
+                    }
+                }
+                Ok(()) => {
+                    drop(rows);
+                    let mut batch: Vec<Option<Submission>> = batch.into_iter().map(Some).collect();
+                    for &i in &fresh {
+                        let s = batch[i].take().expect("each submission is applied once");
+                        let rt = studies.get_mut(&s.study_id).expect("checked above");
+                        let open = rt.open.as_mut().expect("checked above");
+                        open.submissions.insert(s.device_id, s.updates);
+                        let accepted = open.submissions.len() as u32;
+                        let complete = open.submissions.len() == open.members.len();
+                        let mut answer = Ok(SubmitOutcome {
+                            accepted_in_round: accepted,
+                            round_closed: false,
+                        });
+                        if complete {
+                            answer = close_round(store, rt, now_ms)
+                                .and_then(|()| maybe_open_round(store, rt, now_ms, None))
+                                .map(|_| SubmitOutcome {
+                                    accepted_in_round: accepted,
+                                    round_closed: true,
+                                });
+                            closed = true;
+                        }
+                        answers[i] = Some(answer);
+                    }
+                }
+            }
         }
         drop(state);
         if closed {
             self.notify();
         }
-        Ok(SubmitOutcome {
-            accepted_in_round: accepted,
-            round_closed: closed,
-        })
+        answers
+            .into_iter()
+            .map(|a| a.expect("every submission is answered"))
+            .collect()
     }
 
     /// Closes or retries rounds whose deadline has passed. Returns true when
@@ -1089,19 +1116,93 @@ fn validate_updates(
     Ok(())
 }
 
-/// Opens the next round when none is open, rounds remain and enough devices
-/// are enrolled. `abandon` names a round being retried for lack of quorum.
+/// The checks of one submission against the state and the earlier new submissions of its batch
+/// (`fresh`, positions in `batch`): `Some(outcome)` when it is a retry answered without writing
+/// anything, `None` when it is new and must be recorded.
+fn check_submission(
+    state: &mut State,
+    s: &Submission,
+    batch: &[Submission],
+    fresh: &[usize],
+    now_ms: i64,
+) -> Result<Option<SubmitOutcome>> {
+    let State { store, studies } = state;
+    let (study_id, device_id, round_id, updates) =
+        (s.study_id.as_str(), s.device_id, s.round_id, &s.updates);
+    let rt = study_mut(studies, study_id)?;
+    let device = rt
+        .devices
+        .get(&device_id)
+        .ok_or_else(|| unknown_device(study_id, device_id))?;
+    validate_updates(&rt.config, &device.signals, updates)?;
+
+    let open_id = rt.open.as_ref().map(|r| r.round_id);
+    if open_id != Some(round_id) {
+        // A retry of a submission that was accepted before its round closed
+        // is answered as it was the first time (idempotent submission).
+        if round_id <= rt.last_round_id
+            && store.submission(study_id, round_id, device_id)?.as_ref() == Some(updates)
+        {
+            return Ok(Some(SubmitOutcome {
+                accepted_in_round: 0,
+                round_closed: true,
+            }));
+        }
+        return Err(AggregatorError::FailedPrecondition(match open_id {
+            _ if round_id > rt.last_round_id => {
+                format!(
+                    "round_id: round {round_id} has not opened (latest is {})",
+                    rt.last_round_id
+                )
+            }
+            Some(cur) => {
+                format!("round_id: round {round_id} is closed; the open round is {cur}")
+            }
+            None => format!("round_id: round {round_id} is closed and no round is open"),
+        }));
+    }
+    let open = rt.open.as_ref().expect("checked above");
+    if !open.members.contains(&device_id) {
+        return Err(AggregatorError::FailedPrecondition(format!(
+            "device_id: device {device_id} was not selected for round {round_id}"
+        )));
+    }
+    // The same device earlier in this batch counts as an accepted submission.
+    let earlier = fresh
+        .iter()
+        .map(|&i| &batch[i])
+        .find(|e| e.study_id == study_id && e.device_id == device_id)
+        .map(|e| &e.updates);
+    if let Some(previous) = open.submissions.get(&device_id).or(earlier) {
+        if previous == updates {
+            return Ok(Some(SubmitOutcome {
+                accepted_in_round: open.submissions.len() as u32,
+                round_closed: false,
+            }));
+        }
+        return Err(AggregatorError::AlreadyExists(format!(
+            "device {device_id} already submitted a different update for round {round_id}"
+        )));
+    }
+    if now_ms > open.deadline_ms {
+        return Err(AggregatorError::FailedPrecondition(format!(
+            "round_id: the deadline of round {round_id} has passed"
+        )));
+    }
+    Ok(None)
+}
+
 /// Marks the devices revoked in the database as revoked in memory (revocations may come from
 /// another process, the operator's command line, while this one runs).
 fn refresh_revocations(store: &Store, rt: &mut StudyRuntime) -> Result<()> {
     for id in store.revoked_devices(&rt.config.study_id)? {
-        if let Some(d) = rt.devices.get_mut(&id) {
-            d.revoked = true;
-        }
+        rt.mark_revoked(id);
     }
     Ok(())
 }
 
+/// Opens the next round when none is open, rounds remain and enough devices
+/// are enrolled. `abandon` names a round being retried for lack of quorum.
 fn maybe_open_round(
     store: &mut Store,
     rt: &mut StudyRuntime,

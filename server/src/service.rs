@@ -2,19 +2,20 @@
 //! and the task that closes rounds whose deadline passed.
 
 use std::net::SocketAddr;
-use std::sync::Arc;
+use std::sync::{Arc, OnceLock};
 use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use plimsoll_proto::auth::{self, DeviceCredential};
 use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_server::{Aggregator, AggregatorServer};
 use tokio::net::TcpListener;
+use tokio::sync::{mpsc, oneshot};
 use tokio_stream::wrappers::TcpListenerStream;
 use tonic::{Request, Response, Status};
 
 use crate::error::AggregatorError;
-use crate::rounds::{Coordinator, Enrollment};
-use crate::study::Work;
+use crate::rounds::{Coordinator, Enrollment, Submission};
+use crate::study::{SubmitOutcome, Work};
 use crate::tls::TlsIdentity;
 use crate::wire;
 
@@ -28,15 +29,74 @@ pub fn now_ms() -> i64 {
         .map_or(0, |d| d.as_millis() as i64)
 }
 
+/// Most `SubmitUpdate` calls written in one transaction.
+const MAX_SUBMIT_BATCH: usize = 512;
+
+/// A `SubmitUpdate` call waiting for its batch, and where its answer goes.
+type QueuedSubmission = (
+    Submission,
+    oneshot::Sender<crate::error::Result<SubmitOutcome>>,
+);
+
 /// gRPC front of a [`Coordinator`].
 #[derive(Debug, Clone)]
 pub struct AggregatorService {
     coordinator: Arc<Coordinator>,
+    /// Queue of the task that writes `SubmitUpdate` calls in batches, started by the first call
+    /// (so a service can be built outside a runtime).
+    submissions: Arc<OnceLock<mpsc::UnboundedSender<QueuedSubmission>>>,
 }
 
 impl AggregatorService {
     pub fn new(coordinator: Arc<Coordinator>) -> Self {
-        AggregatorService { coordinator }
+        AggregatorService {
+            coordinator,
+            submissions: Arc::default(),
+        }
+    }
+
+    /// Hands `submission` to the batch writer and waits for its answer.
+    async fn submit(&self, submission: Submission) -> Result<SubmitOutcome, Status> {
+        const RPC: &str = "SubmitUpdate";
+        let queue = self.submissions.get_or_init(|| {
+            let (tx, rx) = mpsc::unbounded_channel();
+            tokio::spawn(write_submissions(self.coordinator.clone(), rx));
+            tx
+        });
+        let (tx, rx) = oneshot::channel();
+        let gone = || Status::unavailable(format!("{RPC}: the aggregator is shutting down"));
+        queue.send((submission, tx)).map_err(|_| gone())?;
+        rx.await
+            .map_err(|_| gone())?
+            .map_err(|e| in_rpc(RPC, wire::to_status(e)))
+    }
+}
+
+/// Writes queued `SubmitUpdate` calls: takes every call waiting (up to [`MAX_SUBMIT_BATCH`]),
+/// checks and records them with one [`Coordinator::submit_batch`] off the async threads, answers
+/// each, and repeats. While one batch is written the next one gathers, so under load calls
+/// share a commit and the worker hand-off; a lone call is written at once. Ends when every
+/// service clone is gone.
+async fn write_submissions(
+    coordinator: Arc<Coordinator>,
+    mut queue: mpsc::UnboundedReceiver<QueuedSubmission>,
+) {
+    let mut waiting = Vec::with_capacity(MAX_SUBMIT_BATCH);
+    while queue.recv_many(&mut waiting, MAX_SUBMIT_BATCH).await > 0 {
+        let (batch, replies): (Vec<_>, Vec<_>) = waiting.drain(..).unzip();
+        let c = coordinator.clone();
+        match tokio::task::spawn_blocking(move || c.submit_batch(batch, now_ms())).await {
+            Ok(answers) => {
+                for (answer, reply) in answers.into_iter().zip(replies) {
+                    // A caller that went away needs no answer.
+                    let _ = reply.send(answer);
+                }
+            }
+            Err(e) => {
+                tracing::error!(error = %e, "SubmitUpdate batch writer failed");
+                // Dropping the replies answers each waiting call UNAVAILABLE.
+            }
+        }
     }
 }
 
@@ -149,15 +209,17 @@ impl Aggregator for AggregatorService {
         &self,
         req: Request<pb::SubmitUpdateRequest>,
     ) -> Result<Response<pb::SubmitUpdateResponse>, Status> {
-        let cred = credential("SubmitUpdate", &req)?;
-        let c = self.coordinator.clone();
+        let credential = credential("SubmitUpdate", &req)?;
         let r = req.into_inner();
-        let updates = wire::updates_from_pb(r.updates);
-        let outcome = blocking("SubmitUpdate", move || {
-            c.authenticate(&r.study_id, Some(r.device_id), &cred)?;
-            c.submit(&r.study_id, r.device_id, r.round_id, updates, now_ms())
-        })
-        .await?;
+        let outcome = self
+            .submit(Submission {
+                study_id: r.study_id,
+                device_id: r.device_id,
+                round_id: r.round_id,
+                updates: wire::updates_from_pb(r.updates),
+                credential,
+            })
+            .await?;
         Ok(Response::new(pb::SubmitUpdateResponse {
             accepted_in_round: outcome.accepted_in_round,
             round_closed: outcome.round_closed,

@@ -838,26 +838,29 @@ impl Store {
         Ok(())
     }
 
-    /// Records an accepted submission.
-    pub fn insert_update(
+    /// Records accepted submissions, `(study, round, device, updates)` each, in one transaction.
+    pub fn insert_updates(
         &mut self,
-        study_id: &str,
-        round_id: u64,
-        device_id: u64,
-        updates: &[SignalUpdate],
+        rows: &[(&str, u64, u64, &[SignalUpdate])],
         now_ms: i64,
     ) -> Result<()> {
-        self.conn.execute(
-            "INSERT INTO updates (study_id, round_id, device_id, payload_json, received_ms)
-             VALUES (?1, ?2, ?3, ?4, ?5)",
-            params![
-                study_id,
-                round_id as i64,
-                device_id as i64,
-                to_json(&updates),
-                now_ms
-            ],
-        )?;
+        let tx = self.conn.transaction()?;
+        {
+            let mut stmt = tx.prepare_cached(
+                "INSERT INTO updates (study_id, round_id, device_id, payload_json, received_ms)
+                 VALUES (?1, ?2, ?3, ?4, ?5)",
+            )?;
+            for (study_id, round_id, device_id, updates) in rows {
+                stmt.execute(params![
+                    study_id,
+                    *round_id as i64,
+                    *device_id as i64,
+                    to_json(updates),
+                    now_ms
+                ])?;
+            }
+        }
+        tx.commit()?;
         Ok(())
     }
 

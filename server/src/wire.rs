@@ -28,6 +28,10 @@ pub fn to_status(err: AggregatorError) -> Status {
             tracing::error!(error = %e, "database error");
             Status::internal("the aggregator's database failed; the request was not applied")
         }
+        AggregatorError::Unapplied(m) => {
+            tracing::error!(error = %m, "database error in a group commit");
+            Status::internal("the aggregator's database failed; the request was not applied")
+        }
         AggregatorError::Corrupt(m) => {
             tracing::error!(error = %m, "corrupt state");
             Status::internal("the aggregator's stored state is inconsistent")
