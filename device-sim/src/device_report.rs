@@ -28,6 +28,11 @@ pub const CAUTION: &str = plimsoll_proto::caution::TEXT;
 /// expect the header first), and the caution sits in the same folder.
 pub const CAUTION_FILE: &str = "CAUTION.txt";
 
+/// `n` with the noun in the right number: "1 Alert", "3 Alerts".
+pub fn counted(n: usize, one: &str, many: &str) -> String {
+    format!("{n} {}", if n == 1 { one } else { many })
+}
+
 /// One sentence on what the bands mean.
 pub const BANDS_EXPLAINED: &str = "The shaded bands are where a day's value was expected to fall, \
 predicted each day from earlier days only: the darker band holds half of expected values, the \
@@ -465,6 +470,13 @@ pub fn detect_and_write(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn counts_take_the_right_number() {
+        assert_eq!(counted(1, "Alert", "Alerts"), "1 Alert");
+        assert_eq!(counted(0, "Alert", "Alerts"), "0 Alerts");
+        assert_eq!(counted(2, "episode", "episodes"), "2 episodes");
+    }
     use crate::cohort::ParticipantSeries;
     use crate::prior::PriorParams;
     use std::collections::BTreeMap;

@@ -10,7 +10,7 @@ use plimsoll_device::cohort::{
     BadRowPolicy, Scenario, SimulateOptions, SimulationSummary, simulate_to_dir,
 };
 use plimsoll_device::demo::{DemoOptions, initial_layouts, run_demo};
-use plimsoll_device::device_report::CAUTION;
+use plimsoll_device::device_report::{CAUTION, counted};
 use plimsoll_device::evaluate::command::{EvaluateOptions, run_evaluation};
 use plimsoll_device::evaluate::report::render_table;
 use plimsoll_device::evaluate::run::{
@@ -405,9 +405,9 @@ async fn main() -> anyhow::Result<()> {
                 c.histogram_devices, c.alert.threshold, c.watch.threshold, c.budget_per_month
             );
             println!(
-                "{} episodes flagged ({} Alerts), {} sent for review; outputs in {}",
-                report.flags,
-                report.alerts,
+                "{} flagged ({}), {} sent for review; outputs in {}",
+                counted(report.flags, "episode", "episodes"),
+                counted(report.alerts, "Alert", "Alerts"),
                 report.packets_sent,
                 opts.out_dir.display()
             );

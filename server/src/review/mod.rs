@@ -462,10 +462,36 @@ async fn study_queue(
     if !session.may_see(&study_id) {
         return not_found(&session);
     }
+    // A filter value the form does not offer is refused, not read as "all".
+    let level = q.level.as_deref().filter(|v| !v.is_empty());
+    let status = q.status.as_deref().filter(|v| !v.is_empty());
+    let bad_filter = |what: &str, value: &str, choices: &str| {
+        html(
+            StatusCode::BAD_REQUEST,
+            pages::error(
+                Some(&session),
+                "Filter not valid",
+                &format!(
+                    "There is no {what} `{}`; choose {choices}, or leave it empty for all.",
+                    value.chars().take(40).collect::<String>()
+                ),
+            ),
+        )
+    };
+    if let Some(v) = level
+        && FlagLevel::parse(v).is_none()
+    {
+        return bad_filter("level", v, "alert or watch");
+    }
+    if let Some(v) = status
+        && ReviewStatus::parse(v).is_none()
+    {
+        return bad_filter("status", v, "new, acknowledged, dismissed or escalated");
+    }
     let filter = QueueFilter {
         signal: q.signal.filter(|s| !s.is_empty()),
-        level: q.level.as_deref().and_then(FlagLevel::parse),
-        status: q.status.as_deref().and_then(ReviewStatus::parse),
+        level: level.and_then(FlagLevel::parse),
+        status: status.and_then(ReviewStatus::parse),
     };
     let id = study_id.clone();
     let f = filter.clone();
@@ -478,6 +504,32 @@ async fn study_queue(
         })
         .await;
     match loaded {
+        Ok((Some(_), _, signals))
+            if filter.signal.as_ref().is_some_and(|s| !signals.contains(s)) =>
+        {
+            let choices = if signals.is_empty() {
+                "none (this study has no flags yet)".to_owned()
+            } else {
+                signals.join(", ")
+            };
+            html(
+                StatusCode::BAD_REQUEST,
+                pages::error(
+                    Some(&session),
+                    "Filter not valid",
+                    &format!(
+                        "No episode in this study involves signal `{}`; signals with episodes: {choices}.",
+                        filter
+                            .signal
+                            .as_deref()
+                            .unwrap_or_default()
+                            .chars()
+                            .take(40)
+                            .collect::<String>()
+                    ),
+                ),
+            )
+        }
         Ok((Some(title), entries, signals)) => html(
             StatusCode::OK,
             pages::queue(&session, &study_id, &title, &entries, &filter, &signals),
