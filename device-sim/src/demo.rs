@@ -394,7 +394,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     )?;
     writeln!(
         out,
-        "  per-device flags and report:    {}/<participant>/{{flags.csv,flags.json,prospective.csv,report.html}}",
+        "  per-device flags and report:    {}/<participant>/{{flags.csv,flags.json,prospective.csv,report.html,CAUTION.txt}}",
         devices_dir.display()
     )?;
     writeln!(
