@@ -215,7 +215,7 @@ fn unknown_column_is_reported_and_ignored_without_aborting() {
 
 #[test]
 fn empty_file_and_header_only_are_errors() {
-    for content in ["", "\n", HEADER] {
+    for content in ["", "\n"] {
         let (_dir, path) = file_with("daily.csv", content.as_bytes());
         let err = read_daily(&path, BadRowPolicy::Quarantine).expect_err("empty");
         assert!(
@@ -223,7 +223,73 @@ fn empty_file_and_header_only_are_errors() {
             "{content:?}: {err}"
         );
         assert!(err.to_string().contains("daily.csv"), "{err}");
+        assert!(err.to_string().contains("empty"), "{err}");
     }
+    // A header and nothing else is "no rows", not "empty".
+    let (_dir, path) = file_with("daily.csv", HEADER.as_bytes());
+    let err = read_daily(&path, BadRowPolicy::Quarantine).expect_err("no rows");
+    assert!(matches!(err, CohortError::NoRows { .. }), "{err}");
+    let text = err.to_string();
+    assert!(
+        text.contains("daily.csv") && text.contains("no rows"),
+        "{text}"
+    );
+    assert!(!text.contains("empty"), "{text}");
+}
+
+#[test]
+fn echoed_cells_are_cut_to_80_characters() {
+    let huge = "9".repeat(400) + "x";
+    let content = format!("{HEADER}\np1,2024-01-01,{huge},,,,,\np1,{huge},60,,,,,\n");
+    let (series, issues) = read_ok(&content);
+    assert!(series.is_empty());
+    assert_eq!(issues.len(), 2, "{issues:?}");
+    for issue in &issues {
+        let text = issue.to_string();
+        // 80 echoed characters (reader::MAX_ECHO_CHARS) plus the reason's own words.
+        assert!(text.len() < 200, "{} characters: {text}", text.len());
+        assert!(text.contains("… (401 characters)"), "{text}");
+    }
+}
+
+/// Reads `content` through a pipe, as `--data /dev/stdin` does.
+#[cfg(unix)]
+fn read_from_pipe(content: &str) -> (Vec<ParticipantSeries>, Vec<InputIssue>) {
+    use std::io::Write;
+    use std::process::{Command, Stdio};
+    let mut child = Command::new("cat")
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .spawn()
+        .expect("cat runs");
+    let mut stdin = child.stdin.take().unwrap();
+    let text = content.to_owned();
+    let writer = std::thread::spawn(move || stdin.write_all(text.as_bytes()).unwrap());
+    let fd = std::os::fd::AsRawFd::as_raw_fd(child.stdout.as_ref().unwrap());
+    let path = PathBuf::from(format!("/proc/self/fd/{fd}"));
+    let read = read_daily(&path, BadRowPolicy::Quarantine).expect("read from a pipe");
+    writer.join().unwrap();
+    child.wait().unwrap();
+    read
+}
+
+#[cfg(unix)]
+#[test]
+fn line_numbers_come_from_the_stream_read_from_a_pipe() {
+    // The report in the issue: lines 6 and 10 were reported as line 1.
+    let mut content = format!("{HEADER}\n");
+    for day in 1..=9 {
+        let hr = if day == 5 || day == 9 { "999" } else { "60" };
+        content.push_str(&format!("p1,2024-01-{day:02},{hr},,,,,\n"));
+    }
+    let (series, issues) = read_from_pipe(&content);
+    let lines: Vec<u64> = issues.iter().map(|i| i.line).collect();
+    assert_eq!(lines, [6, 10], "{issues:?}");
+    assert_eq!(series[0].dates.len(), 7);
+    // The same bytes from a file give the same lines.
+    let (_, from_file) = read_ok(&content);
+    let file_lines: Vec<u64> = from_file.iter().map(|i| i.line).collect();
+    assert_eq!(file_lines, lines);
 }
 
 #[test]

@@ -48,6 +48,7 @@ fn options(cohort: &Path, out: &Path, prior: Option<PathBuf>) -> EvaluateOptions
         screened: true,
         settings,
         progress: false,
+        bad_rows: plimsoll_device::cohort::BadRowPolicy::Quarantine,
     }
 }
 

@@ -15,6 +15,7 @@ mod pooled;
 mod prospective;
 mod review_access;
 mod review_browser;
+mod review_login_limits;
 mod review_support;
 mod server_rpc;
 mod simulator;

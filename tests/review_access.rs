@@ -330,6 +330,20 @@ async fn actions_are_an_append_only_trail_and_drive_the_status() {
     assert!(by_signal.body.contains(&format!("/flag/{alert}\"")));
     assert!(by_signal.body.contains(&format!("/flag/{watch}\"")));
 
+    // A value the filter form does not offer is refused and named, not
+    // read as "all levels" with no rows.
+    for (query, named) in [
+        ("level=urgent", "level `urgent`"),
+        ("status=closed", "status `closed`"),
+        ("signal=pulse", "signal `pulse`"),
+    ] {
+        let r = get(&f, &format!("/study/{STUDY}/flags?{query}"), Some(&cookie)).await;
+        assert_eq!(r.status, 400, "{query}");
+        assert!(r.body.contains(named), "{query}: {}", r.body);
+        assert!(!r.body.contains("All levels"), "{query}");
+        assert_page_rules(&r, query);
+    }
+
     let overview = get(&f, &format!("/study/{STUDY}"), Some(&cookie)).await;
     assert_eq!(overview.status, 200);
     assert_page_rules(&overview, "overview");

@@ -20,7 +20,8 @@ use plimsoll_device::packets::{DayRow, FlagPacket, PacketDayStatus, build_packet
 use plimsoll_device::prior::PriorParams;
 use plimsoll_device::signal::Signal;
 use plimsoll_proto::v1 as pb;
-use plimsoll_server::review::{RunningReview, accounts, serve_review};
+use plimsoll_server::review::limits::LoginLimits;
+use plimsoll_server::review::{RunningReview, accounts, serve_review_limited};
 use plimsoll_server::service::now_ms;
 use plimsoll_server::store::Store;
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
@@ -217,6 +218,11 @@ pub struct ReviewFixture {
 
 impl ReviewFixture {
     pub async fn start(dir: &Path) -> ReviewFixture {
+        ReviewFixture::start_limited(dir, LoginLimits::default()).await
+    }
+
+    /// [`ReviewFixture::start`] with failed sign-ins limited by `limits`.
+    pub async fn start_limited(dir: &Path, limits: LoginLimits) -> ReviewFixture {
         let db = dir.join("agg.db");
         let signals = [Signal::RestingHr, Signal::HrvRmssd];
         let mut study = study_config(STUDY, &signals, 2, 3);
@@ -328,7 +334,9 @@ impl ReviewFixture {
             accounts::assign(&mut store, OUTSIDER, OTHER_STUDY).unwrap();
         }
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-        let review = serve_review(&db, listener).await.unwrap();
+        let review = serve_review_limited(&db, listener, None, limits)
+            .await
+            .unwrap();
         ReviewFixture {
             grpc,
             review,

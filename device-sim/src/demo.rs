@@ -21,7 +21,8 @@ use crate::signal::Signal;
 /// Settings of a demo run.
 #[derive(Debug, Clone)]
 pub struct DemoOptions {
-    pub scenario: PathBuf,
+    /// Scenario file; `None` runs the built-in [`DEFAULT_SCENARIO`].
+    pub scenario: Option<PathBuf>,
     pub out_dir: PathBuf,
     pub seed: Option<u64>,
     pub participants: Option<usize>,
@@ -33,6 +34,87 @@ pub struct DemoOptions {
     pub serve: bool,
     /// Loopback port of the review page (0 = any free port).
     pub review_port: u16,
+    /// Abort on the first bad row of the simulated cohort, or quarantine
+    /// bad rows (copied to `out_dir/quarantine/`) and go on.
+    pub bad_rows: BadRowPolicy,
+}
+
+/// The default demo scenario (`demo-data/quick.toml`), built into the
+/// binary so the demo runs from any folder.
+pub const DEFAULT_SCENARIO: &str = include_str!("../../demo-data/quick.toml");
+
+/// Files a device writes into its output folder; a folder under the demo's
+/// `devices/` holding nothing else is one an earlier demo wrote.
+pub const DEVICE_OUTPUT_FILES: &[&str] = &[
+    "posterior.csv",
+    "prospective.csv",
+    "flags.csv",
+    "flags.json",
+    "report.html",
+    crate::client::CALIBRATION_FILE,
+    crate::device_report::CAUTION_FILE,
+];
+
+/// Removes the participant folders an earlier demo left under `devices_dir`
+/// (those holding only [`DEVICE_OUTPUT_FILES`]), so the outputs are this
+/// run's only. Anything else is left alone and named in the returned list.
+pub fn clear_previous_devices(devices_dir: &Path) -> anyhow::Result<Vec<PathBuf>> {
+    let mut kept = Vec::new();
+    let entries = match std::fs::read_dir(devices_dir) {
+        Ok(e) => e,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(kept),
+        Err(e) => {
+            return Err(e).with_context(|| format!("reading {}", devices_dir.display()));
+        }
+    };
+    for entry in entries {
+        let entry = entry.with_context(|| format!("reading {}", devices_dir.display()))?;
+        let path = entry.path();
+        let ours = path.is_dir()
+            && std::fs::read_dir(&path)
+                .with_context(|| format!("reading {}", path.display()))?
+                .all(|f| {
+                    f.is_ok_and(|f| {
+                        f.file_type().is_ok_and(|t| t.is_file())
+                            && DEVICE_OUTPUT_FILES
+                                .iter()
+                                .any(|n| f.file_name().to_str() == Some(n))
+                    })
+                });
+        if ours {
+            std::fs::remove_dir_all(&path)
+                .with_context(|| format!("removing the earlier demo's {}", path.display()))?;
+        } else {
+            kept.push(path);
+        }
+    }
+    Ok(kept)
+}
+
+/// The study configuration of a demo over `signals` with `n` devices.
+fn demo_config(opts: &DemoOptions, title: String, signals: &[Signal], n: u32) -> StudyConfig {
+    StudyConfig {
+        study_id: "demo".into(),
+        title,
+        signals: initial_layouts(signals),
+        rounds: opts.rounds,
+        training: LocalTraining {
+            optimizer: Optimizer::Sgd,
+            local_steps: opts.local_steps,
+            learning_rate: opts.learning_rate,
+            window_days: opts.window_days,
+            hyperprior_weight_per_day: 0.0,
+        },
+        fraction_per_round: 1.0,
+        min_quorum: (n / 2).max(1),
+        start_when_enrolled: n,
+        round_deadline_ms: 120_000,
+        selection_seed: 7,
+        aggregation: Default::default(),
+        alert_budget_per_participant_month:
+            plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
+        review_level: plimsoll_server::packets::FlagLevel::Alert,
+    }
 }
 
 /// Study layouts for `signals`, starting from [`PriorParams::initial`].
@@ -165,7 +247,18 @@ pub async fn run_federated_with(
 /// Runs the demo and prints its report to standard output.
 pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     let t0 = Instant::now();
-    let scenario = Scenario::from_path(&opts.scenario)?;
+    let (scenario, scenario_name) = match &opts.scenario {
+        Some(path) => (Scenario::from_path(path)?, path.display().to_string()),
+        None => (
+            Scenario::from_toml_str(DEFAULT_SCENARIO).context("the built-in demo scenario")?,
+            "the built-in quick scenario".to_owned(),
+        ),
+    };
+    // Check the study settings before simulating anything (all six signals
+    // and a quorum of 1 stand in for what the cohort decides).
+    demo_config(opts, String::new(), &Signal::ALL, 1)
+        .validate()
+        .map_err(|e| anyhow::anyhow!("demo settings: {e}"))?;
     let cohort_dir = opts.out_dir.join("cohort");
     std::fs::create_dir_all(&cohort_dir)
         .with_context(|| format!("creating {}", cohort_dir.display()))?;
@@ -184,34 +277,22 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     );
     // Read the cohort back through the same validating reader a real pilot's
     // export goes through.
-    let cohort = cohort::read_cohort(&cohort_dir, BadRowPolicy::Quarantine)?;
+    let cohort = cohort::read_cohort(&cohort_dir, opts.bad_rows)
+        .with_context(|| format!("reading the cohort in {}", cohort_dir.display()))?;
     for issue in &cohort.issues {
         println!("  input issue: {issue}");
     }
+    for file in cohort::write_quarantine_files(&cohort.issues, &opts.out_dir)? {
+        println!("  {file}");
+    }
     let signals = cohort_signals(&cohort);
     let n = cohort.participants.len() as u32;
-    let config = StudyConfig {
-        study_id: "demo".into(),
-        title: format!("Demo cohort from {}", opts.scenario.display()),
-        signals: initial_layouts(&signals),
-        rounds: opts.rounds,
-        training: LocalTraining {
-            optimizer: Optimizer::Sgd,
-            local_steps: opts.local_steps,
-            learning_rate: opts.learning_rate,
-            window_days: opts.window_days,
-            hyperprior_weight_per_day: 0.0,
-        },
-        fraction_per_round: 1.0,
-        min_quorum: (n / 2).max(1),
-        start_when_enrolled: n,
-        round_deadline_ms: 120_000,
-        selection_seed: 7,
-        aggregation: Default::default(),
-        alert_budget_per_participant_month:
-            plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
-        review_level: plimsoll_server::packets::FlagLevel::Alert,
-    };
+    let config = demo_config(
+        opts,
+        format!("Demo cohort from {scenario_name}"),
+        &signals,
+        n,
+    );
     let db_path = opts.out_dir.join("aggregator.db");
     for suffix in ["", "-wal", "-shm"] {
         let p = PathBuf::from(format!("{}{suffix}", db_path.display()));
@@ -225,6 +306,12 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
             .expect("static template"),
     );
     let devices_dir = opts.out_dir.join("devices");
+    for kept in clear_previous_devices(&devices_dir)? {
+        println!(
+            "  left in place (not written by a demo): {}",
+            kept.display()
+        );
+    }
     // Every demo participant consented to share flag packets with reviewers.
     let run = run_federated_with(
         &cohort,
@@ -307,7 +394,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     )?;
     writeln!(
         out,
-        "  per-device flags and report:    {}/<participant>/{{flags.csv,flags.json,prospective.csv,report.html}}",
+        "  per-device flags and report:    {}/<participant>/{{flags.csv,flags.json,prospective.csv,report.html,CAUTION.txt}}",
         devices_dir.display()
     )?;
     writeln!(

@@ -19,10 +19,19 @@ use crate::flags::FlagLevel;
 use crate::packets::{DayRow, PacketDayStatus};
 use crate::signal::Signal;
 
-/// The caution shown wherever a flag is shown to a person.
-pub const CAUTION: &str = "Decision support only — this is not a diagnosis. Flags mark episodes in \
-which this person's signals departed from their own expected range; they support, and never replace, the judgement of a \
-qualified clinician who knows the clinical context. Local protocols and regulations govern any action.";
+/// The caution shown wherever a flag is shown to a person: the one caution
+/// of [`plimsoll_proto::caution`], shared with the review pages.
+pub const CAUTION: &str = plimsoll_proto::caution::TEXT;
+
+/// The sidecar beside `flags.csv` and `prospective.csv` holding [`CAUTION`]:
+/// the CSVs stay plain RFC 4180 (a comment line would break readers that
+/// expect the header first), and the caution sits in the same folder.
+pub const CAUTION_FILE: &str = "CAUTION.txt";
+
+/// `n` with the noun in the right number: "1 Alert", "3 Alerts".
+pub fn counted(n: usize, one: &str, many: &str) -> String {
+    format!("{n} {}", if n == 1 { one } else { many })
+}
 
 /// One sentence on what the bands mean.
 pub const BANDS_EXPLAINED: &str = "The shaded bands are where a day's value was expected to fall, \
@@ -424,6 +433,15 @@ pub fn detect_and_write(
         result.with_context(|| format!("writing {}", out_dir.join(name).display()))
     };
     write(
+        CAUTION_FILE,
+        std::fs::write(
+            out_dir.join(CAUTION_FILE),
+            format!(
+                "{CAUTION}\n\nThis caution applies to flags.csv, flags.json, prospective.csv and report.html in this folder.\n"
+            ),
+        ),
+    )?;
+    write(
         "prospective.csv",
         write_days_csv(&out_dir.join("prospective.csv"), &detection),
     )?;
@@ -452,6 +470,13 @@ pub fn detect_and_write(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn counts_take_the_right_number() {
+        assert_eq!(counted(1, "Alert", "Alerts"), "1 Alert");
+        assert_eq!(counted(0, "Alert", "Alerts"), "0 Alerts");
+        assert_eq!(counted(2, "episode", "episodes"), "2 episodes");
+    }
     use crate::cohort::ParticipantSeries;
     use crate::prior::PriorParams;
     use std::collections::BTreeMap;

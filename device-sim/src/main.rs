@@ -6,9 +6,11 @@ use anyhow::Context;
 use clap::{Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressStyle};
 use plimsoll_device::client::{AggregatorAddress, FlagSharing};
-use plimsoll_device::cohort::{Scenario, SimulateOptions, SimulationSummary, simulate_to_dir};
+use plimsoll_device::cohort::{
+    BadRowPolicy, Scenario, SimulateOptions, SimulationSummary, simulate_to_dir,
+};
 use plimsoll_device::demo::{DemoOptions, initial_layouts, run_demo};
-use plimsoll_device::device_report::CAUTION;
+use plimsoll_device::device_report::{CAUTION, counted};
 use plimsoll_device::evaluate::command::{EvaluateOptions, run_evaluation};
 use plimsoll_device::evaluate::report::render_table;
 use plimsoll_device::evaluate::run::{
@@ -37,9 +39,13 @@ enum Command {
     Simulate {
         /// Scenario file (TOML), e.g. demo-data/pilot.toml.
         scenario: PathBuf,
-        /// Output folder.
+        /// Output folder: must be empty or not exist, unless --force.
         #[arg(long, default_value = "out/cohort")]
         out: PathBuf,
+        /// Write into a folder that already holds files (a cohort there is
+        /// overwritten).
+        #[arg(long)]
+        force: bool,
         /// Override the scenario's seed.
         #[arg(long)]
         seed: Option<u64>,
@@ -52,9 +58,9 @@ enum Command {
     },
     /// Simulate a small cohort, train the shared prior over loopback gRPC, and report.
     Demo {
-        /// Scenario file (TOML).
-        #[arg(long, default_value = "demo-data/quick.toml")]
-        scenario: PathBuf,
+        /// Scenario file (TOML); default: the built-in copy of demo-data/quick.toml.
+        #[arg(long)]
+        scenario: Option<PathBuf>,
         /// Output folder (cohort, aggregator database, device outputs).
         #[arg(long, default_value = "out/demo")]
         out: PathBuf,
@@ -82,6 +88,10 @@ enum Command {
         /// Loopback port for the review page (0 picks a free port).
         #[arg(long, default_value_t = 8080)]
         review_port: u16,
+        /// What a bad input row does: `quarantine` keeps the good rows, reports every bad one
+        /// and copies the bad rows to <out>/quarantine/; `abort` stops at the first.
+        #[arg(long, value_enum, default_value_t = OnBadRow::Quarantine)]
+        on_bad_row: OnBadRow,
     },
     /// Write a study configuration for `plimsoll-aggregator create-study`:
     /// the shared prior's parameter layout and starting values for the
@@ -151,6 +161,10 @@ enum Command {
         /// Allow http:// to a host that is not loopback.
         #[arg(long)]
         insecure_plaintext: bool,
+        /// What a bad input row does: `quarantine` keeps the good rows, reports every bad one
+        /// and copies the bad rows to <out>/quarantine/; `abort` stops at the first.
+        #[arg(long, value_enum, default_value_t = OnBadRow::Quarantine)]
+        on_bad_row: OnBadRow,
     },
     /// Compare detection methods on a cohort in the shared format (daily.csv, optional
     /// participants.csv and events.csv): federated prior + personal posterior, the same GP fit
@@ -193,7 +207,29 @@ enum Command {
         /// docs/evaluation.md).
         #[arg(long)]
         detector: Option<PathBuf>,
+        /// What a bad input row does: `quarantine` keeps the good rows, reports every bad one
+        /// and copies the bad rows to <out>/quarantine/; `abort` stops at the first.
+        #[arg(long, value_enum, default_value_t = OnBadRow::Quarantine)]
+        on_bad_row: OnBadRow,
     },
+}
+
+/// `--on-bad-row`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+enum OnBadRow {
+    /// Keep the good rows, report and quarantine the bad ones.
+    Quarantine,
+    /// Stop at the first bad row, naming file, line, column and reason.
+    Abort,
+}
+
+impl From<OnBadRow> for BadRowPolicy {
+    fn from(v: OnBadRow) -> BadRowPolicy {
+        match v {
+            OnBadRow::Quarantine => BadRowPolicy::Quarantine,
+            OnBadRow::Abort => BadRowPolicy::Abort,
+        }
+    }
 }
 
 /// `--alarm-level`.
@@ -251,6 +287,7 @@ struct EvaluateArgs {
     local_fit_days: usize,
     alarm_level: AlarmLevel,
     detector: Option<PathBuf>,
+    on_bad_row: OnBadRow,
 }
 
 #[tokio::main]
@@ -260,6 +297,7 @@ async fn main() -> anyhow::Result<()> {
             tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "warn".into()),
         )
         .with_writer(std::io::stderr)
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
         .init();
     match Cli::parse().command {
         Command::StudyConfig {
@@ -333,6 +371,7 @@ async fn main() -> anyhow::Result<()> {
             out,
             share_flags,
             insecure_plaintext,
+            on_bad_row,
         } => {
             let ca_pem = ca
                 .map(|p| std::fs::read(&p).with_context(|| format!("reading {}", p.display())))
@@ -353,6 +392,7 @@ async fn main() -> anyhow::Result<()> {
                 } else {
                     FlagSharing::Withheld
                 },
+                bad_rows: on_bad_row.into(),
             };
             let report = run_participate(&opts).await?;
             println!(
@@ -365,9 +405,9 @@ async fn main() -> anyhow::Result<()> {
                 c.histogram_devices, c.alert.threshold, c.watch.threshold, c.budget_per_month
             );
             println!(
-                "{} episodes flagged ({} Alerts), {} sent for review; outputs in {}",
-                report.flags,
-                report.alerts,
+                "{} flagged ({}), {} sent for review; outputs in {}",
+                counted(report.flags, "episode", "episodes"),
+                counted(report.alerts, "Alert", "Alerts"),
                 report.packets_sent,
                 opts.out_dir.display()
             );
@@ -380,9 +420,12 @@ async fn main() -> anyhow::Result<()> {
             seed,
             participants,
             days,
+            force,
         } => {
             let parsed = Scenario::from_path(&scenario)?;
-            std::fs::create_dir_all(&out)?;
+            refuse_non_empty(&out, force)?;
+            std::fs::create_dir_all(&out)
+                .with_context(|| format!("creating the output folder {}", out.display()))?;
             let bar = ProgressBar::new(0).with_style(
                 ProgressStyle::with_template(
                     "simulating {bar:40} {pos}/{len} participants [{elapsed}]",
@@ -413,6 +456,7 @@ async fn main() -> anyhow::Result<()> {
             window_days,
             serve,
             review_port,
+            on_bad_row,
         } => {
             run_demo(&DemoOptions {
                 scenario,
@@ -425,6 +469,7 @@ async fn main() -> anyhow::Result<()> {
                 window_days,
                 serve,
                 review_port,
+                bad_rows: on_bad_row.into(),
             })
             .await
         }
@@ -439,6 +484,7 @@ async fn main() -> anyhow::Result<()> {
             local_fit_days,
             alarm_level,
             detector,
+            on_bad_row,
         } => {
             evaluate(EvaluateArgs {
                 cohort,
@@ -451,6 +497,7 @@ async fn main() -> anyhow::Result<()> {
                 local_fit_days,
                 alarm_level,
                 detector,
+                on_bad_row,
             })
             .await
         }
@@ -478,6 +525,7 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
         screened: args.screened_prior,
         settings,
         progress: true,
+        bad_rows: args.on_bad_row.into(),
     })
     .await?;
     if !outcome.issues.is_empty() {
@@ -488,6 +536,12 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
         if outcome.issues.len() > 20 {
             println!("  … and {} more", outcome.issues.len() - 20);
         }
+    }
+    for file in &outcome.quarantine {
+        println!("{file}");
+    }
+    for warning in &outcome.warnings {
+        eprintln!("warning: {warning}");
     }
     let report = &outcome.report;
     println!();
@@ -530,6 +584,24 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
         outcome.detection.as_secs_f64(),
         t0.elapsed().as_secs_f64()
     );
+    Ok(())
+}
+
+/// Refuses to simulate into a folder that holds anything, unless `force`.
+fn refuse_non_empty(out: &std::path::Path, force: bool) -> anyhow::Result<()> {
+    let mut entries = match std::fs::read_dir(out) {
+        Ok(e) => e,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(()),
+        Err(e) => {
+            return Err(e).with_context(|| format!("reading the output folder {}", out.display()));
+        }
+    };
+    if !force && entries.next().is_some() {
+        anyhow::bail!(
+            "{} is not empty; choose an empty or new folder with --out, or pass --force to overwrite the cohort there",
+            out.display()
+        );
+    }
     Ok(())
 }
 

@@ -19,7 +19,7 @@ use crate::client::{
     AggregatorAddress, DeviceOptions, DeviceReport, FlagSharing, connect_to, new_device_secret,
     run_device_with,
 };
-use crate::cohort::{BadRowPolicy, read_daily};
+use crate::cohort::{BadRowPolicy, read_daily, write_quarantine_files};
 
 /// Name of the file holding the device's secret inside its output folder.
 pub const SECRET_FILE: &str = "device-secret";
@@ -36,6 +36,9 @@ pub struct ParticipateOptions {
     pub data: PathBuf,
     pub out_dir: PathBuf,
     pub sharing: FlagSharing,
+    /// Abort on the first bad row of `data`, or quarantine bad rows (copied
+    /// to `out_dir/quarantine/`) and go on.
+    pub bad_rows: BadRowPolicy,
 }
 
 impl std::fmt::Debug for ParticipateOptions {
@@ -48,6 +51,7 @@ impl std::fmt::Debug for ParticipateOptions {
             .field("data", &self.data)
             .field("out_dir", &self.out_dir)
             .field("sharing", &self.sharing)
+            .field("bad_rows", &self.bad_rows)
             .finish_non_exhaustive()
     }
 }
@@ -84,9 +88,17 @@ pub fn load_or_create_secret(dir: &Path) -> anyhow::Result<String> {
 
 /// Runs the device to the end of the study and writes its outputs.
 pub async fn run_participate(opts: &ParticipateOptions) -> anyhow::Result<DeviceReport> {
-    let (participants, issues) = read_daily(&opts.data, BadRowPolicy::Quarantine)?;
+    let (participants, issues) = read_daily(&opts.data, opts.bad_rows)
+        .with_context(|| format!("reading --data {}", opts.data.display()))?;
     for issue in &issues {
         eprintln!("input issue (row kept out): {issue}");
+    }
+    if issues.iter().any(|i| i.is_row_error()) {
+        std::fs::create_dir_all(&opts.out_dir)
+            .with_context(|| format!("creating the output folder {}", opts.out_dir.display()))?;
+        for file in write_quarantine_files(&issues, &opts.out_dir)? {
+            eprintln!("{file}");
+        }
     }
     let series = participants
         .into_iter()

@@ -12,6 +12,23 @@ pub mod v1 {
         include_bytes!(concat!(env!("OUT_DIR"), "/plimsoll_v1_descriptor.bin"));
 }
 
+/// The non-diagnostic caution, defined once for both ends: the review
+/// pages, the device's outputs (`report.html`, `flags.json`, the CSVs'
+/// `CAUTION.txt` sidecar), the command lines and the evaluation's outputs
+/// show exactly this text wherever a flag is shown.
+pub mod caution {
+    /// The caution's heading, also its first sentence.
+    pub const TITLE: &str = "Decision support, not a diagnosis";
+
+    /// The whole caution. It says that a flag is not a diagnosis, that it
+    /// supports (never replaces) a qualified clinician's judgement, and that
+    /// local protocols and regulations govern any action.
+    pub const TEXT: &str = "Decision support, not a diagnosis. A flag marks days on which a \
+person's signals departed from their own expected range, and the models behind it can be wrong in \
+both directions. Flags support, and never replace, the judgement of a qualified clinician who knows \
+the clinical context. Local protocols and regulations govern any action.";
+}
+
 /// The device credential carried in call metadata, shared by both ends.
 ///
 /// Every call of `plimsoll.v1.Aggregator` except `GetStudy` and `Enroll`

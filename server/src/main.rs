@@ -188,6 +188,8 @@ fn reviewer_command(db: &std::path::Path, command: ReviewerCommand) -> anyhow::R
 async fn main() -> anyhow::Result<()> {
     tracing_subscriber::fmt()
         .with_writer(std::io::stderr)
+        // Colour codes only on a terminal: a redirected log stays plain text.
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
         .with_env_filter(
             tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
         )

@@ -19,8 +19,10 @@
 //! 3 adds enrollment codes, device credentials and revocation; 4 adds the
 //! detector's calibration statistics (per-device submissions and each
 //! stage's published sum, see [`crate::detection`]); 5 makes every flag
-//! packet an episode (`MIGRATE_EPISODES`). Opening an older database
-//! migrates it in one transaction.
+//! packet an episode (`MIGRATE_EPISODES`); 6 adds the review pages'
+//! append-only login record (`MIGRATE_LOGIN_EVENTS`, see
+//! [`crate::review::limits`]). Opening an older database migrates it in one
+//! transaction.
 
 use std::path::Path;
 
@@ -31,7 +33,7 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::study::{PriorVersion, SignalUpdate, StudyConfig};
 
-const SCHEMA_VERSION: i64 = 5;
+const SCHEMA_VERSION: i64 = 6;
 
 /// Version 1: federated training.
 const SCHEMA_V1: &str = "
@@ -218,6 +220,25 @@ CREATE UNIQUE INDEX flag_packets_by_episode ON flag_packets (device_id, episode_
 UPDATE schema_version SET version = 5;
 ";
 
+/// Version 5 → 6: the review pages' login record, append-only like
+/// `review_actions`: failed sign-ins, lockouts and successful sign-ins with
+/// the name typed (at most 64 characters) and the source address.
+const MIGRATE_LOGIN_EVENTS: &str = "
+CREATE TABLE review_login_events (
+    event_id INTEGER PRIMARY KEY AUTOINCREMENT,
+    at_ms    INTEGER NOT NULL,
+    name     TEXT NOT NULL,
+    source   TEXT NOT NULL,
+    event    TEXT NOT NULL CHECK (event IN ('failure', 'lockout', 'success')),
+    detail   TEXT NOT NULL
+);
+CREATE TRIGGER review_login_events_append_only_update BEFORE UPDATE ON review_login_events
+BEGIN SELECT RAISE(ABORT, 'review_login_events is append-only'); END;
+CREATE TRIGGER review_login_events_append_only_delete BEFORE DELETE ON review_login_events
+BEGIN SELECT RAISE(ABORT, 'review_login_events is append-only'); END;
+UPDATE schema_version SET version = 6;
+";
+
 /// A stored episode: its id (the same for every version) and how many
 /// versions were received.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -305,28 +326,41 @@ impl Store {
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
+                tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
             }
             Some(1) => {
-                tracing::info!("migrating the aggregator database from schema 1 to 5");
+                tracing::info!("migrating the aggregator database from schema 1 to 6");
                 tx.execute_batch(MIGRATE_V1_TO_V2)?;
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
+                tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
             }
             Some(2) => {
-                tracing::info!("migrating the aggregator database from schema 2 to 5");
+                tracing::info!("migrating the aggregator database from schema 2 to 6");
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
+                tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
             }
             Some(3) => {
-                tracing::info!("migrating the aggregator database from schema 3 to 5");
+                tracing::info!("migrating the aggregator database from schema 3 to 6");
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
+                tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
             }
             Some(4) => {
-                tracing::info!("migrating the aggregator database from schema 4 to 5 (episodes)");
+                tracing::info!(
+                    "migrating the aggregator database from schema 4 to 6 (episodes, login record)"
+                );
                 tx.execute_batch(MIGRATE_EPISODES)?;
+                tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
+            }
+            Some(5) => {
+                tracing::info!(
+                    "migrating the aggregator database from schema 5 to 6 (login record)"
+                );
+                tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
             }
             Some(SCHEMA_VERSION) => {}
             Some(other) => {

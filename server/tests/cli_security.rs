@@ -241,3 +241,31 @@ async fn operator_commands_take_effect_on_a_running_aggregator() {
     let (ok, _, stderr) = run(&db, &["device", "revoke", STUDY, "p-404"]);
     assert!(!ok && stderr.contains("p-404"), "{stderr}");
 }
+
+#[test]
+fn a_redirected_log_has_no_colour_codes() {
+    // stderr is a pipe here, not a terminal: the log must be plain text.
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("agg.db");
+    let mut child = Command::new(BIN)
+        .arg("--db")
+        .arg(&db)
+        .args(["serve", "--listen", "127.0.0.1:0"])
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let _ = listening_line(&mut child);
+    // The aggregator logs `aggregator listening` (INFO) before it prints the
+    // line read above; read stderr up to that log line.
+    let mut stderr = std::io::BufReader::new(child.stderr.take().unwrap());
+    let mut line = String::new();
+    std::io::BufRead::read_line(&mut stderr, &mut line).unwrap();
+    let _ = child.kill();
+    let _ = child.wait();
+    assert!(line.contains("aggregator listening"), "{line:?}");
+    assert!(
+        !line.contains('\u{1b}'),
+        "colour codes in a redirected log: {line:?}"
+    );
+}

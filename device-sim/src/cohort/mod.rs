@@ -169,6 +169,89 @@ impl fmt::Display for InputIssue {
     }
 }
 
+/// Folder, under a command's output folder, that holds the quarantine
+/// copies of bad rows ([`write_quarantine_files`]).
+pub const QUARANTINE_DIR: &str = "quarantine";
+
+/// One input file's quarantine copy.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct QuarantineFile {
+    /// The file read.
+    pub source: PathBuf,
+    /// Where its bad rows were copied; `None` when the source is not a
+    /// regular file (a pipe cannot be read again): its rows are then known
+    /// only from the issues.
+    pub written: Option<PathBuf>,
+    /// Bad rows of the source (issues on distinct lines ≥ 2).
+    pub rows: usize,
+}
+
+impl fmt::Display for QuarantineFile {
+    /// `3 bad rows of daily.csv copied to out/quarantine/daily.csv`
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let rows = if self.rows == 1 { "row" } else { "rows" };
+        match &self.written {
+            Some(out) => write!(
+                f,
+                "{} bad {rows} of {} copied to {}",
+                self.rows,
+                self.source.display(),
+                out.display()
+            ),
+            None => write!(
+                f,
+                "{} bad {rows} of {} not copied ({} is not a regular file and cannot be read again; the issues list them)",
+                self.rows,
+                self.source.display(),
+                self.source.display()
+            ),
+        }
+    }
+}
+
+/// Copies the bad rows of every file named by a row issue to
+/// `out_dir/quarantine/<file name>` ([`write_quarantine`]), creating the
+/// folder; writes nothing when no row was quarantined. Errors name the path.
+pub fn write_quarantine_files(
+    issues: &[InputIssue],
+    out_dir: &Path,
+) -> Result<Vec<QuarantineFile>, CohortError> {
+    let mut sources: Vec<&Path> = Vec::new();
+    for issue in issues.iter().filter(|i| i.is_row_error()) {
+        if !sources.contains(&issue.file.as_path()) {
+            sources.push(&issue.file);
+        }
+    }
+    let mut done = Vec::new();
+    for source in sources {
+        let mut lines: Vec<u64> = issues
+            .iter()
+            .filter(|i| i.is_row_error() && i.file == source)
+            .map(|i| i.line)
+            .collect();
+        lines.dedup();
+        let regular = std::fs::metadata(source).is_ok_and(|m| m.is_file());
+        let written = if regular {
+            let dir = out_dir.join(QUARANTINE_DIR);
+            std::fs::create_dir_all(&dir).map_err(|e| CohortError::io(&dir, e))?;
+            let name = source
+                .file_name()
+                .map_or_else(|| "input.csv".into(), |n| n.to_os_string());
+            let out = dir.join(name);
+            write_quarantine(source, issues, &out)?;
+            Some(out)
+        } else {
+            None
+        };
+        done.push(QuarantineFile {
+            source: source.to_owned(),
+            written,
+            rows: lines.len(),
+        });
+    }
+    Ok(done)
+}
+
 /// What the reader does with a bad row.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
 pub enum BadRowPolicy {
@@ -197,9 +280,12 @@ pub enum CohortError {
         #[source]
         source: csv::Error,
     },
-    /// The file has no header, or (for `daily.csv`) no data row.
-    #[error("{}: file is empty", path.display())]
+    /// The file has no header (nothing, or only blank lines).
+    #[error("{}: file is empty (no header)", path.display())]
     Empty { path: PathBuf },
+    /// `daily.csv` has a header but no data row.
+    #[error("{}: no rows (the file has a header and nothing after it)", path.display())]
+    NoRows { path: PathBuf },
     /// A required column is absent from the header.
     #[error("{}: missing required column `{column}`", path.display())]
     MissingColumn { path: PathBuf, column: String },

@@ -2,10 +2,12 @@
 //! every bad row is reported with file, line, column and reason, and either
 //! quarantined (good rows kept) or aborts the read.
 
-use std::collections::{BTreeMap, HashMap};
+use std::cell::RefCell;
+use std::collections::{BTreeMap, HashMap, VecDeque};
 use std::fs::File;
-use std::io::{BufRead, BufReader, Write};
+use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
+use std::rc::Rc;
 
 use chrono::NaiveDate;
 
@@ -42,20 +44,74 @@ pub fn read_cohort(dir: &Path, policy: BadRowPolicy) -> Result<Cohort, CohortErr
     })
 }
 
+/// Longest echo of a cell or header name in a reason, in characters.
+pub const MAX_ECHO_CHARS: usize = 80;
+
+/// `text` as echoed in a reason: escaped (`escape_debug`) and cut to
+/// [`MAX_ECHO_CHARS`] characters with "…" and the full length when longer,
+/// so a huge cell cannot make a huge message.
+pub fn echo(text: &str) -> String {
+    let escaped: String = text.escape_debug().collect();
+    let n = escaped.chars().count();
+    if n <= MAX_ECHO_CHARS {
+        return escaped;
+    }
+    let head: String = escaped.chars().take(MAX_ECHO_CHARS).collect();
+    format!("{head}… ({n} characters)")
+}
+
+/// The bytes the csv parser has read and the line counter has not yet
+/// passed, shared by [`Tape`] (which appends) and [`LineCounter`] (which
+/// consumes). The parser reads ahead by at most its buffer, so this holds
+/// about one buffer or one record.
+type Pending = Rc<RefCell<VecDeque<u8>>>;
+
+/// A reader that keeps a copy of every byte it hands out in a [`Pending`]
+/// tape, so line numbers come from the very stream the parser read (a pipe
+/// such as `/dev/stdin` cannot be read twice).
+struct Tape<R> {
+    inner: R,
+    pending: Pending,
+}
+
+impl<R: Read> Read for Tape<R> {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        self.pending.borrow_mut().extend(&buf[..n]);
+        Ok(n)
+    }
+}
+
+type CsvReader = csv::Reader<Tape<File>>;
+
+/// Opens `path` for the csv parser with a line counter over the same bytes.
+fn taped_reader(path: &Path, has_headers: bool) -> Result<(CsvReader, LineCounter), CohortError> {
+    let file = File::open(path).map_err(|e| CohortError::io(path, e))?;
+    let pending = Pending::default();
+    let reader = csv::ReaderBuilder::new()
+        .has_headers(has_headers)
+        .flexible(true)
+        .from_reader(Tape {
+            inner: file,
+            pending: pending.clone(),
+        });
+    Ok((reader, LineCounter::new(pending)))
+}
+
 /// An open CSV file with its header (BOM stripped, names trimmed).
 struct CsvFile {
     path: PathBuf,
-    reader: csv::Reader<BufReader<File>>,
+    reader: CsvReader,
     header: Vec<String>,
     lines: LineCounter,
 }
 
 /// Physical line numbers of records, from their byte offsets. The csv
 /// crate's own line count is off by one in CRLF files and skips blank
-/// lines, so the file is read a second time, in step, counting line breaks.
+/// lines, so line breaks are counted on the bytes the parser read (kept on
+/// its [`Tape`]), in step with the records.
 struct LineCounter {
-    path: PathBuf,
-    reader: BufReader<File>,
+    pending: Pending,
     pos: u64,
     breaks: LineBreaks,
 }
@@ -82,56 +138,45 @@ impl LineBreaks {
 }
 
 impl LineCounter {
-    fn open(path: &Path) -> Result<Self, CohortError> {
-        let file = File::open(path).map_err(|e| CohortError::io(path, e))?;
-        Ok(LineCounter {
-            path: path.to_owned(),
-            reader: BufReader::new(file),
+    fn new(pending: Pending) -> Self {
+        LineCounter {
+            pending,
             pos: 0,
             breaks: LineBreaks::default(),
-        })
+        }
     }
 
     /// 1-based line on which the record whose position is `record` starts.
     /// Records must be asked for in file order. A record position may point
     /// at line-end bytes left over from the previous line (CRLF, blank
     /// lines); a record never starts with `\r` or `\n`, so those are skipped.
+    ///
+    /// The parser has read at least the record's first byte, so every byte
+    /// up to it is on the tape.
     fn line_of(&mut self, record: Option<&csv::Position>) -> Result<u64, CohortError> {
         let offset = record.map_or(0, csv::Position::byte);
-        let io = |e| CohortError::io(&self.path, e);
-        while self.pos < offset {
-            let buf = self.reader.fill_buf().map_err(io)?;
-            if buf.is_empty() {
+        let mut pending = self.pending.borrow_mut();
+        let take = pending
+            .len()
+            .min((offset.saturating_sub(self.pos)) as usize);
+        for b in pending.drain(..take) {
+            self.breaks.add(&[b]);
+        }
+        self.pos += take as u64;
+        while let Some(&b) = pending.front() {
+            if !matches!(b, b'\r' | b'\n') {
                 break;
             }
-            let take = buf.len().min((offset - self.pos) as usize);
-            self.breaks.add(&buf[..take]);
-            self.reader.consume(take);
-            self.pos += take as u64;
+            self.breaks.add(&[b]);
+            pending.pop_front();
+            self.pos += 1;
         }
-        loop {
-            let buf = self.reader.fill_buf().map_err(io)?;
-            let skip = buf
-                .iter()
-                .take_while(|b| matches!(b, b'\r' | b'\n'))
-                .count();
-            self.breaks.add(&buf[..skip]);
-            let done = skip < buf.len() || buf.is_empty();
-            self.reader.consume(skip);
-            self.pos += skip as u64;
-            if done {
-                return Ok(self.breaks.count + 1);
-            }
-        }
+        Ok(self.breaks.count + 1)
     }
 }
 
 fn open_csv(path: &Path) -> Result<CsvFile, CohortError> {
-    let file = File::open(path).map_err(|e| CohortError::io(path, e))?;
-    let mut reader = csv::ReaderBuilder::new()
-        .has_headers(true)
-        .flexible(true)
-        .from_reader(BufReader::new(file));
+    let (mut reader, lines) = taped_reader(path, true)?;
     let raw = reader
         .byte_headers()
         .map_err(|e| CohortError::Csv {
@@ -159,7 +204,7 @@ fn open_csv(path: &Path) -> Result<CsvFile, CohortError> {
         path: path.to_owned(),
         reader,
         header,
-        lines: LineCounter::open(path)?,
+        lines,
     })
 }
 
@@ -177,7 +222,7 @@ enum NextRow {
 /// from the header's is reported to `issues` (under `Abort` that is the
 /// error) and returned as [`NextRow::Skipped`].
 fn next_row(
-    reader: &mut csv::Reader<BufReader<File>>,
+    reader: &mut CsvReader,
     record: &mut csv::ByteRecord,
     lines: &mut LineCounter,
     issues: &mut Issues<'_>,
@@ -214,7 +259,7 @@ impl Issues<'_> {
         self.found.push(InputIssue {
             file: self.path.to_owned(),
             line: 1,
-            column: Some((column + 1, name.to_owned())),
+            column: Some((column + 1, echo(name))),
             reason,
         });
     }
@@ -253,12 +298,16 @@ fn map_header<T: Clone + PartialEq>(
     for (i, name) in header.iter().enumerate() {
         let column = match known(name) {
             Some(c) if mapped.contains(&Some(c.clone())) => {
-                issues.header(i, name, format!("repeated column `{name}`, ignored"));
+                issues.header(
+                    i,
+                    name,
+                    format!("repeated column `{}`, ignored", echo(name)),
+                );
                 None
             }
             Some(c) => Some(c),
             None => {
-                issues.header(i, name, format!("unknown column `{name}`, ignored"));
+                issues.header(i, name, format!("unknown column `{}`, ignored", echo(name)));
                 None
             }
         };
@@ -296,19 +345,15 @@ fn check_participant(bytes: &[u8]) -> Result<&str, String> {
     } else {
         Err(format!(
             "participant id `{}` is not [A-Za-z0-9_-]{{1,64}}",
-            text.escape_debug()
+            echo(text)
         ))
     }
 }
 
 fn check_date(bytes: &[u8]) -> Result<NaiveDate, String> {
     let text = field_text(bytes)?;
-    parse_date(text.trim()).ok_or_else(|| {
-        format!(
-            "unparsable date `{}`, expected YYYY-MM-DD",
-            text.escape_debug()
-        )
-    })
+    parse_date(text.trim())
+        .ok_or_else(|| format!("unparsable date `{}`, expected YYYY-MM-DD", echo(text)))
 }
 
 /// Parses one signal cell: `Ok(None)` for an empty cell.
@@ -319,12 +364,13 @@ fn check_value(bytes: &[u8], signal: Signal) -> Result<Option<f64>, String> {
     }
     let value: f64 = match text.parse() {
         Ok(v) if f64::is_finite(v) => v,
-        _ => return Err(format!("non-numeric value `{}`", text.escape_debug())),
+        _ => return Err(format!("non-numeric value `{}`", echo(text))),
     };
     let (low, high) = signal.plausible_range();
     if !(low..=high).contains(&value) {
         return Err(format!(
-            "value {text} outside the plausible range {low}–{high} {} of {}",
+            "value {} outside the plausible range {low}–{high} {} of {}",
+            echo(text),
             signal.unit(),
             signal.column()
         ));
@@ -485,7 +531,7 @@ pub fn read_daily(
         builder.values.extend_from_slice(&row_values);
     }
     if n_rows == 0 {
-        return Err(CohortError::Empty { path });
+        return Err(CohortError::NoRows { path });
     }
 
     builders.sort_by(|a, b| a.0.cmp(&b.0));
@@ -768,10 +814,7 @@ pub fn write_quarantine(
             source: e,
         }
     }
-    let file = File::open(source).map_err(|e| CohortError::io(source, e))?;
-    let mut reader = csv::ReaderBuilder::new()
-        .flexible(true)
-        .from_reader(BufReader::new(file));
+    let (mut reader, mut lines) = taped_reader(source, true)?;
     let out_file = File::create(out).map_err(|e| CohortError::io(out, e))?;
     let mut writer = csv::WriterBuilder::new()
         .flexible(true)
@@ -781,7 +824,6 @@ pub fn write_quarantine(
     header.push_field(b"quarantine_line");
     header.push_field(b"quarantine_reason");
     writer.write_byte_record(&header).map_err(csv_err(out))?;
-    let mut lines = LineCounter::open(source)?;
     let mut record = csv::ByteRecord::new();
     let mut written = 0;
     while reader

@@ -19,7 +19,7 @@ use super::prior_file::{read_prior_file, write_prior_file};
 use super::report::{EvaluationReport, render_svg, write_csv, write_json, write_matched_csv};
 use super::run::{EvaluationSettings, evaluate_cohort};
 use crate::client::MIN_DAYS_TO_ENROLL;
-use crate::cohort::{BadRowPolicy, Cohort, read_cohort};
+use crate::cohort::{BadRowPolicy, Cohort, QuarantineFile, read_cohort, write_quarantine_files};
 use crate::demo::initial_layouts;
 use crate::detect::calibration::shared_prior_filters;
 use crate::prior::PriorParams;
@@ -44,6 +44,9 @@ pub struct EvaluateOptions {
     pub settings: EvaluationSettings,
     /// Show progress bars.
     pub progress: bool,
+    /// Abort on the first bad row, or quarantine bad rows (copied to
+    /// `out_dir/quarantine/`) and go on.
+    pub bad_rows: BadRowPolicy,
 }
 
 /// Paths and timings of a finished evaluation.
@@ -57,6 +60,10 @@ pub struct EvaluationOutcome {
     pub prior: PathBuf,
     /// Input problems the reader quarantined, as printable lines.
     pub issues: Vec<String>,
+    /// Where the quarantined rows were copied, per input file.
+    pub quarantine: Vec<QuarantineFile>,
+    /// Things the run went on despite, e.g. a target kind that no event has.
+    pub warnings: Vec<String>,
     /// Reading and checking the cohort.
     pub reading: Duration,
     /// Learning (or loading) the prior: enrolment and rounds of every pass, and what lies
@@ -69,6 +76,27 @@ pub struct EvaluationOutcome {
     /// Devices dropped from federated training (calls that kept failing), over every pass.
     pub dropped: usize,
     pub detection: Duration,
+}
+
+/// One warning per target kind that no event in `events.csv` has, naming
+/// the kinds present (without such events every target count is zero).
+pub fn target_kind_warnings(cohort: &Cohort, target_kinds: &[String]) -> Vec<String> {
+    let present: std::collections::BTreeSet<&str> =
+        cohort.events.iter().map(|e| e.kind.as_str()).collect();
+    let listed = if present.is_empty() {
+        "none (no events.csv, or no event in it)".to_owned()
+    } else {
+        present.iter().copied().collect::<Vec<_>>().join(", ")
+    };
+    target_kinds
+        .iter()
+        .filter(|k| !present.contains(k.as_str()))
+        .map(|k| {
+            format!(
+                "--target-kind {k}: no event of this kind in events.csv, so nothing counts as a detection target for it; kinds present: {listed}"
+            )
+        })
+        .collect()
 }
 
 /// Runs the whole command (see the module docs).
@@ -86,7 +114,7 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
         s.enable_steady_tick(Duration::from_millis(200));
         s
     });
-    let cohort = read_cohort(&opts.cohort_dir, BadRowPolicy::Quarantine)
+    let cohort = read_cohort(&opts.cohort_dir, opts.bad_rows)
         .with_context(|| format!("reading the cohort in {}", opts.cohort_dir.display()))?;
     if let Some(s) = &spinner {
         s.finish();
@@ -98,7 +126,9 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
     }
     let issues: Vec<String> = cohort.issues.iter().map(ToString::to_string).collect();
     std::fs::create_dir_all(&opts.out_dir)
-        .with_context(|| format!("creating {}", opts.out_dir.display()))?;
+        .with_context(|| format!("creating the output folder {}", opts.out_dir.display()))?;
+    let quarantine = write_quarantine_files(&cohort.issues, &opts.out_dir)?;
+    let warnings = target_kind_warnings(&cohort, &opts.settings.target_kinds);
     let prior_path = opts.out_dir.join("prior.json");
 
     let t_train = Instant::now();
@@ -169,6 +199,8 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
         svg,
         prior: prior_path,
         issues,
+        quarantine,
+        warnings,
         reading,
         training,
         enrolment,

@@ -66,9 +66,51 @@ pub struct EvaluationReport {
     pub target_kinds: Vec<String>,
     /// Row-level problems the reader quarantined (see the command's output).
     pub input_issues: usize,
+    /// Every problem the reader reported (quarantined rows and header
+    /// remarks), in file then line order, at most [`MAX_LISTED_ISSUES`].
+    pub issues: Vec<ReportedIssue>,
+    /// Problems beyond [`MAX_LISTED_ISSUES`], left out of `issues` (the
+    /// quarantine files under `quarantine/` hold every bad row).
+    pub issues_not_listed: usize,
     pub settings: ReportSettings,
     pub methods: Vec<MethodSummary>,
     pub caution: String,
+}
+
+/// Most input problems listed in `evaluation.json`.
+pub const MAX_LISTED_ISSUES: usize = 1000;
+
+/// One input problem as listed in `evaluation.json`.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ReportedIssue {
+    /// File name within the cohort folder, e.g. `daily.csv`.
+    pub file: String,
+    /// 1-based physical line (the header is line 1).
+    pub line: u64,
+    /// 1-based column number, when the problem is one cell.
+    pub column: Option<usize>,
+    /// That column's header name.
+    pub column_name: Option<String>,
+    pub reason: String,
+    /// True when the row was quarantined (false: a header remark, e.g. an
+    /// unknown column that was ignored).
+    pub quarantined: bool,
+}
+
+impl ReportedIssue {
+    pub fn from_issue(issue: &crate::cohort::InputIssue) -> ReportedIssue {
+        ReportedIssue {
+            file: issue.file.file_name().map_or_else(
+                || issue.file.display().to_string(),
+                |n| n.to_string_lossy().into_owned(),
+            ),
+            line: issue.line,
+            column: issue.column.as_ref().map(|c| c.0),
+            column_name: issue.column.as_ref().map(|c| c.1.clone()),
+            reason: issue.reason.clone(),
+            quarantined: issue.is_row_error(),
+        }
+    }
 }
 
 /// How the evaluation was run.
@@ -98,9 +140,29 @@ pub struct ReportSettings {
     pub matched_levels: Vec<f64>,
 }
 
-/// The caution printed with every evaluation output.
-pub const CAUTION: &str = "Evaluation of decision-support flags on the given cohort. Flags are not a diagnosis; \
-they support a qualified clinician's judgement, and local protocols and regulations govern any action.";
+/// The caution printed with every evaluation output: the one caution of
+/// [`plimsoll_proto::caution`].
+pub const CAUTION: &str = plimsoll_proto::caution::TEXT;
+
+/// `text` broken at spaces into lines of at most `width` characters (a word
+/// longer than that gets its own line).
+fn wrap_words(text: &str, width: usize) -> Vec<String> {
+    let mut lines: Vec<String> = Vec::new();
+    let mut line = String::new();
+    for word in text.split_whitespace() {
+        if !line.is_empty() && line.chars().count() + 1 + word.chars().count() > width {
+            lines.push(std::mem::take(&mut line));
+        }
+        if !line.is_empty() {
+            line.push(' ');
+        }
+        line.push_str(word);
+    }
+    if !line.is_empty() {
+        lines.push(line);
+    }
+    lines
+}
 
 impl MethodSummary {
     pub fn new(
@@ -381,8 +443,10 @@ fn marker(shape: &str, x: f64, y: f64, colour: &str) -> String {
 /// SVG: sensitivity (y) against false alarms per participant-month (x), one
 /// line per method over the threshold sweep.
 pub fn render_svg(report: &EvaluationReport) -> String {
-    let (w, h) = (720.0, 460.0);
-    let (left, right, top, bottom) = (70.0, 190.0, 40.0, 60.0);
+    let caution_lines = wrap_words(CAUTION, 118);
+    let caution_height = 13.0 * caution_lines.len() as f64;
+    let (w, h) = (720.0, 466.0 + caution_height);
+    let (left, right, top, bottom) = (70.0, 190.0, 40.0, 66.0 + caution_height);
     let pw = w - left - right;
     let ph = h - top - bottom;
     // Logarithmic x axis: the sweep spans two orders of magnitude of false alarms, and the
@@ -473,7 +537,7 @@ pub fn render_svg(report: &EvaluationReport) -> String {
         s,
         r#"<text x="{:.1}" y="{:.1}" text-anchor="middle">False alarm-days per participant-month outside target events (log scale)</text>"#,
         left + pw / 2.0,
-        h - 18.0
+        top + ph + 44.0
     );
     let _ = write!(
         s,
@@ -554,11 +618,14 @@ pub fn render_svg(report: &EvaluationReport) -> String {
             top + ph / 2.0
         );
     }
-    let _ = write!(
-        s,
-        r#"<text x="{left}" y="{:.1}" font-size="10">Decision support only; not a diagnosis.</text>"#,
-        h - 4.0
-    );
+    for (i, line) in caution_lines.iter().enumerate() {
+        let _ = write!(
+            s,
+            r#"<text x="{left}" y="{:.1}" font-size="10">{}</text>"#,
+            h - caution_height + 9.0 + 13.0 * i as f64,
+            escape(line)
+        );
+    }
     s.push_str("</svg>\n");
     s
 }

@@ -353,6 +353,16 @@ pub fn evaluate_cohort(
         participants: cohort.participants.len(),
         target_kinds: settings.target_kinds.clone(),
         input_issues: cohort.issues.iter().filter(|i| i.is_row_error()).count(),
+        issues: cohort
+            .issues
+            .iter()
+            .take(super::report::MAX_LISTED_ISSUES)
+            .map(super::report::ReportedIssue::from_issue)
+            .collect(),
+        issues_not_listed: cohort
+            .issues
+            .len()
+            .saturating_sub(super::report::MAX_LISTED_ISSUES),
         settings: ReportSettings {
             alarm_level: settings.alarm_level,
             budget_alert_episodes_per_participant_month: settings.budget_per_month,

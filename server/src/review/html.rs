@@ -27,12 +27,20 @@ pub fn esc(text: &str) -> String {
 
 /// The caution shown on every page, login included.
 pub fn caution() -> String {
-    r#"<aside class="caution" role="note" aria-labelledby="caution-title">
-<h2 id="caution-title">Decision support, not a diagnosis</h2>
-<p>These flags come from statistical models of each participant's own history and can be wrong in both directions. Read them together with the clinical context and what you know of the person. Any action is governed by your local clinical protocols and the regulations that apply to you, not by this page.</p>
+    use plimsoll_proto::caution::{TEXT, TITLE};
+    let body = TEXT
+        .strip_prefix(TITLE)
+        .unwrap_or(TEXT)
+        .trim_start_matches(['.', ' ']);
+    format!(
+        r#"<aside class="caution" role="note" aria-labelledby="caution-title">
+<h2 id="caution-title">{}</h2>
+<p>{}</p>
 <p><strong>The bands:</strong> the darker band is where the model expected about half of a participant's typical days to fall, the lighter band about 95 in 100; a value outside them is unusual for this person, not necessarily abnormal.</p>
-</aside>"#
-        .to_owned()
+</aside>"#,
+        esc(TITLE),
+        esc(body)
+    )
 }
 
 /// A full page: header (with the reviewer and a sign-out button when logged

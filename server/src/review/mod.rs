@@ -6,7 +6,9 @@
 //! Access: reviewer accounts are made on the command line
 //! (`plimsoll-aggregator reviewer add|assign`); a reviewer logs in with a
 //! password (Argon2id), gets an HttpOnly, SameSite=Strict session cookie and
-//! sees only the studies assigned to them. Every state-changing form carries
+//! sees only the studies assigned to them. Failed sign-ins are limited per
+//! name and per source address with growing lockouts (429 with
+//! `Retry-After`) and recorded ([`limits`]). Every state-changing form carries
 //! the session's CSRF token. Pages load nothing from the network and run no
 //! script; charts are inline SVG with a table as text alternative.
 //!
@@ -18,14 +20,17 @@ pub mod accounts;
 pub mod charts;
 pub mod db;
 pub mod html;
+pub mod limits;
 pub mod pages;
 
 use std::net::SocketAddr;
 use std::path::Path;
 use std::sync::{Arc, Mutex};
+use std::time::Instant;
 
 use axum::Router;
-use axum::extract::{Form, Path as UrlPath, Query, State};
+use axum::extract::connect_info::Connected;
+use axum::extract::{ConnectInfo, Form, Path as UrlPath, Query, State};
 use axum::http::{HeaderMap, HeaderValue, StatusCode, header};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
@@ -34,6 +39,7 @@ use tokio::net::TcpListener;
 
 use self::accounts::Session;
 use self::db::{QueueFilter, ReviewAction, ReviewStatus};
+use self::limits::{LoginEvent, LoginLimiter, LoginLimits};
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagLevel;
 use crate::service::now_ms;
@@ -52,6 +58,8 @@ pub struct ReviewState {
     store: Mutex<Store>,
     /// Mark session cookies `Secure` (pages served over TLS).
     secure_cookies: bool,
+    /// Failed sign-ins per name and per source address.
+    limiter: Arc<LoginLimiter>,
 }
 
 impl ReviewState {
@@ -59,7 +67,14 @@ impl ReviewState {
         ReviewState {
             store: Mutex::new(store),
             secure_cookies: false,
+            limiter: Arc::new(LoginLimiter::new(LoginLimits::default())),
         }
+    }
+
+    /// Limits failed sign-ins by `limits` instead of the default.
+    pub fn with_login_limits(mut self, limits: LoginLimits) -> ReviewState {
+        self.limiter = Arc::new(LoginLimiter::new(limits));
+        self
     }
 
     /// Marks session cookies `Secure`, so browsers send them only over TLS.
@@ -266,19 +281,91 @@ struct LoginForm {
     password: String,
 }
 
-async fn login(State(state): State<Arc<ReviewState>>, Form(form): Form<LoginForm>) -> Response {
+/// The peer address of a connection, plain or TLS.
+#[derive(Debug, Clone, Copy)]
+pub struct ClientAddr(pub SocketAddr);
+
+impl Connected<axum::serve::IncomingStream<'_, TcpListener>> for ClientAddr {
+    fn connect_info(stream: axum::serve::IncomingStream<'_, TcpListener>) -> ClientAddr {
+        ClientAddr(*stream.remote_addr())
+    }
+}
+
+impl Connected<axum::serve::IncomingStream<'_, TlsListener>> for ClientAddr {
+    fn connect_info(stream: axum::serve::IncomingStream<'_, TlsListener>) -> ClientAddr {
+        ClientAddr(*stream.remote_addr())
+    }
+}
+
+/// How a checked sign-in ended.
+enum LoginOutcome {
+    Session(String),
+    Refused(Option<std::time::Duration>),
+}
+
+/// The answer to a sign-in refused for too many failures.
+fn too_many_attempts(wait: std::time::Duration) -> Response {
+    let seconds = wait.as_secs().max(1);
+    let mut r = html(
+        StatusCode::TOO_MANY_REQUESTS,
+        pages::login(Some(&format!(
+            "Too many failed sign-ins for this name or from this address. Try again in {seconds} s."
+        ))),
+    );
+    r.headers_mut().insert(
+        header::RETRY_AFTER,
+        HeaderValue::from_str(&seconds.to_string()).expect("digits are a valid header"),
+    );
+    r
+}
+
+async fn login(
+    State(state): State<Arc<ReviewState>>,
+    ConnectInfo(ClientAddr(peer)): ConnectInfo<ClientAddr>,
+    Form(form): Form<LoginForm>,
+) -> Response {
     let name = form.name.trim().to_owned();
+    let source = peer.ip();
+    let ticket = match state.limiter.admit(&name, source, Instant::now()) {
+        Ok(t) => t,
+        Err(wait) => {
+            tracing::debug!(name = %limits::counted_name(&name), %source, wait_s = wait.as_secs(), "sign-in refused during a lockout");
+            return too_many_attempts(wait);
+        }
+    };
     let result = state
         .with_store(move |s| {
+            let at_ms = now_ms();
             if accounts::verify_login(s, &name, &form.password)? {
-                accounts::create_session(s, &name, now_ms()).map(Some)
-            } else {
-                Ok(None)
+                let token = accounts::create_session(s, &name, at_ms)?;
+                limits::record(s, at_ms, &name, source, LoginEvent::Success, "")?;
+                ticket.succeeded();
+                tracing::info!(name = %name, %source, "reviewer signed in");
+                return Ok(LoginOutcome::Session(token));
             }
+            let counted = ticket.name().to_owned();
+            let lockouts = ticket.failed(Instant::now());
+            tracing::warn!(name = %counted, %source, "failed sign-in to the review pages");
+            limits::record(
+                s,
+                at_ms,
+                &name,
+                source,
+                LoginEvent::Failure,
+                "wrong name or password",
+            )?;
+            for lockout in &lockouts {
+                let detail = limits::lockout_detail(lockout);
+                tracing::warn!(name = %counted, %source, "review sign-in lockout: {detail}");
+                limits::record(s, at_ms, &name, source, LoginEvent::Lockout, &detail)?;
+            }
+            Ok(LoginOutcome::Refused(
+                lockouts.iter().map(|l| l.delay).max(),
+            ))
         })
         .await;
     match result {
-        Ok(Some(token)) => {
+        Ok(LoginOutcome::Session(token)) => {
             let mut r = redirect("/");
             let cookie = format!(
                 "{SESSION_COOKIE}={token}; {}; Max-Age={}",
@@ -291,7 +378,8 @@ async fn login(State(state): State<Arc<ReviewState>>, Form(form): Form<LoginForm
             );
             r
         }
-        Ok(None) => html(
+        Ok(LoginOutcome::Refused(Some(wait))) => too_many_attempts(wait),
+        Ok(LoginOutcome::Refused(None)) => html(
             StatusCode::UNAUTHORIZED,
             pages::login(Some("That name and password do not match an account.")),
         ),
@@ -374,10 +462,36 @@ async fn study_queue(
     if !session.may_see(&study_id) {
         return not_found(&session);
     }
+    // A filter value the form does not offer is refused, not read as "all".
+    let level = q.level.as_deref().filter(|v| !v.is_empty());
+    let status = q.status.as_deref().filter(|v| !v.is_empty());
+    let bad_filter = |what: &str, value: &str, choices: &str| {
+        html(
+            StatusCode::BAD_REQUEST,
+            pages::error(
+                Some(&session),
+                "Filter not valid",
+                &format!(
+                    "There is no {what} `{}`; choose {choices}, or leave it empty for all.",
+                    value.chars().take(40).collect::<String>()
+                ),
+            ),
+        )
+    };
+    if let Some(v) = level
+        && FlagLevel::parse(v).is_none()
+    {
+        return bad_filter("level", v, "alert or watch");
+    }
+    if let Some(v) = status
+        && ReviewStatus::parse(v).is_none()
+    {
+        return bad_filter("status", v, "new, acknowledged, dismissed or escalated");
+    }
     let filter = QueueFilter {
         signal: q.signal.filter(|s| !s.is_empty()),
-        level: q.level.as_deref().and_then(FlagLevel::parse),
-        status: q.status.as_deref().and_then(ReviewStatus::parse),
+        level: level.and_then(FlagLevel::parse),
+        status: status.and_then(ReviewStatus::parse),
     };
     let id = study_id.clone();
     let f = filter.clone();
@@ -390,6 +504,32 @@ async fn study_queue(
         })
         .await;
     match loaded {
+        Ok((Some(_), _, signals))
+            if filter.signal.as_ref().is_some_and(|s| !signals.contains(s)) =>
+        {
+            let choices = if signals.is_empty() {
+                "none (this study has no flags yet)".to_owned()
+            } else {
+                signals.join(", ")
+            };
+            html(
+                StatusCode::BAD_REQUEST,
+                pages::error(
+                    Some(&session),
+                    "Filter not valid",
+                    &format!(
+                        "No episode in this study involves signal `{}`; signals with episodes: {choices}.",
+                        filter
+                            .signal
+                            .as_deref()
+                            .unwrap_or_default()
+                            .chars()
+                            .take(40)
+                            .collect::<String>()
+                    ),
+                ),
+            )
+        }
         Ok((Some(title), entries, signals)) => html(
             StatusCode::OK,
             pages::queue(&session, &study_id, &title, &entries, &filter, &signals),
@@ -573,11 +713,26 @@ pub async fn serve_review_with(
     listener: TcpListener,
     tls: Option<&TlsIdentity>,
 ) -> anyhow::Result<RunningReview> {
+    serve_review_limited(db_path, listener, tls, LoginLimits::default()).await
+}
+
+/// [`serve_review_with`], limiting failed sign-ins by `limits` (tests use
+/// short lockouts).
+pub async fn serve_review_limited(
+    db_path: &Path,
+    listener: TcpListener,
+    tls: Option<&TlsIdentity>,
+    limits: LoginLimits,
+) -> anyhow::Result<RunningReview> {
     let store = Store::open(db_path)?;
-    let state = Arc::new(ReviewState::new(store).with_secure_cookies(tls.is_some()));
+    let state = Arc::new(
+        ReviewState::new(store)
+            .with_secure_cookies(tls.is_some())
+            .with_login_limits(limits),
+    );
     let addr = listener.local_addr()?;
     let (tx, rx) = tokio::sync::oneshot::channel::<()>();
-    let app = router(state);
+    let app = router(state).into_make_service_with_connect_info::<ClientAddr>();
     let shutdown = async {
         let _ = rx.await;
     };

@@ -565,7 +565,7 @@ pub fn flag(
     }
     let _ = write!(
         body,
-        r#"<p>{} {} <span class="muted">·</span> {} <span class="muted">· participant</span> <strong>{}</strong> <span class="muted">· episode</span> <strong>{}</strong> <span class="muted">· direction</span> <strong>{}</strong> <span class="muted">· first received {}</span></p>
+        r#"<p>{} {} <span class="muted">·</span> {} <span class="muted">· participant</span> <strong>{}</strong> <span class="muted">· episode</span> <strong>{}</strong> <span class="muted">· direction</span> <strong>{}</strong> <span class="muted">· first received {} (server clock; the episode's dates are the participant's local calendar days)</span></p>
 <h2>Why this was flagged</h2>
 <p class="reason">{}</p>
 <p class="muted">{}</p>
