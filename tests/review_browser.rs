@@ -354,10 +354,12 @@ async fn review_steps(b: &Browser, base: &str, alert: u64) -> PathBuf {
     let flag_path = format!("/flag/{alert}");
     b.url_when("the flag page", |u| u.ends_with(&flag_path))
         .await;
+    let caution = b.text(".caution").await;
     assert!(
-        b.text(".caution")
-            .await
-            .contains("local clinical protocols")
+        caution.contains("not a diagnosis")
+            && caution.contains("qualified clinician")
+            && caution.contains("Local protocols and regulations govern any action"),
+        "{caution}"
     );
     let reason = b.text(".reason").await;
     assert!(reason.contains("resting heart rate up"), "{reason}");
