@@ -6,6 +6,8 @@
 //! repeated over TLS (a development certificate, rustls on both ends) and printed beside it,
 //! with the TLS run's rate as a ratio of the plaintext one (the named baseline).
 //!
+//! An unmeasured warm-up run with a fifth of the devices comes first.
+//!
 //! The aggregator runs on a runtime of its own (threads named `aggregator`, two workers) and the
 //! simulated devices on another (`load-client`), so the CPU time each side spends per update is
 //! read from the threads' own counters (`/proc/self/task/*/stat`) and printed too: on a shared
@@ -107,6 +109,10 @@ fn main() -> anyhow::Result<()> {
     let server_rt = runtime(SERVER_THREADS)?;
     let client_rt = runtime("load-client")?;
     println!("devices {n}, concurrency {concurrency}, 8 HTTP/2 connections, loopback");
+    // An unmeasured warm-up run (its own aggregator, a fifth of the devices): without it the
+    // first measured run carried the process's start-up costs (thread pools, allocator growth,
+    // page faults) and came out slower whichever transport went first.
+    client_rt.block_on(run(server_rt.handle(), n.div_ceil(5), concurrency, false))?;
     let plain = client_rt.block_on(run(server_rt.handle(), n, concurrency, false))?;
     let tls = client_rt.block_on(run(server_rt.handle(), n, concurrency, true))?;
     println!(
