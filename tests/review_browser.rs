@@ -333,7 +333,45 @@ async fn review_steps(b: &Browser, base: &str, alert: u64) -> PathBuf {
             .contains("Shared prior, in plain units")
     );
     assert_eq!(b.count("svg.chart").await, 1, "convergence chart");
+    // The lead's view: backlog, consent, completeness per participant and signal (p-017's
+    // summary: 40 and 36 of 42 days; 40/42 = 95.2 %, 36/42 = 85.7 %), episodes per week.
+    let backlog = b.text("#backlog").await;
+    assert!(
+        backlog.starts_with("2 episodes not yet reviewed, the oldest waiting"),
+        "{backlog}"
+    );
+    assert_eq!(b.count("#participants tbody tr").await, 2);
+    let p017 = b.text("#participants tbody tr:nth-child(1)").await;
+    assert!(
+        p017.contains("p-017") && p017.contains("42") && p017.contains("2024-04-11"),
+        "{p017}"
+    );
+    assert!(
+        p017.contains("95%") && p017.contains("86%") && p017.contains("2 (2)"),
+        "{p017}"
+    );
+    let p018 = b.text("#participants tbody tr:nth-child(2)").await;
+    assert!(
+        p018.contains("no (withheld)") && p018.contains("no summary yet"),
+        "{p018}"
+    );
+    // The scenario's episodes start on 2024-03-25 (a Monday) and 2024-04-08 (a Monday).
+    let weekly = b.text("#weekly").await;
+    assert!(
+        weekly.contains("2024-03-25") && weekly.contains("2024-04-08"),
+        "{weekly}"
+    );
     b.screenshot("review-2-overview.png").await;
+
+    // Every participant id links to their page.
+    b.click("#participants a.participant").await;
+    let participant_path = format!("/study/{STUDY}/participant/p-017");
+    b.url_when("the participant page", |u| u.ends_with(&participant_path))
+        .await;
+    assert_eq!(b.count("#coverage tbody tr").await, 2, "one row per signal");
+    assert!(b.text("#coverage").await.contains("2024-04-10"));
+    assert_eq!(b.count("#episodes tbody tr").await, 2, "both episodes");
+    b.screenshot("review-2b-participant.png").await;
 
     b.goto(&format!("{base}/study/{STUDY}/flags")).await;
     assert_eq!(b.count("#queue tbody tr").await, 2, "one row per episode");

@@ -271,6 +271,31 @@ impl ReviewFixture {
             .await
             .unwrap();
 
+        // p-017's data summary over the real RPC (p-018 sends none): 42 days
+        // from 2024-03-01 to 2024-04-11, resting HR on 40, HRV on 36.
+        let summary = pb::SubmitDataSummaryRequest {
+            study_id: STUDY.into(),
+            device_id: device.device_id,
+            first_day: "2024-03-01".into(),
+            last_day: "2024-04-11".into(),
+            signals: vec![
+                pb::SignalCoverage {
+                    signal: Signal::RestingHr.column().into(),
+                    days_with_data: 40,
+                    last_day: "2024-04-11".into(),
+                },
+                pb::SignalCoverage {
+                    signal: Signal::HrvRmssd.column().into(),
+                    days_with_data: 36,
+                    last_day: "2024-04-10".into(),
+                },
+            ],
+        };
+        client
+            .submit_data_summary(authorized(&device, summary))
+            .await
+            .unwrap();
+
         // A second device, without consent, so rounds can run: three rounds
         // with made-up updates give the overview a convergence chart.
         let quiet = grpc

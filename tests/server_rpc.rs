@@ -542,14 +542,26 @@ async fn a_batch_of_submissions_is_answered_call_by_call() {
         call(&b, f64::NAN, 30),
         call(&b, 2.0, 30),
     ];
-    let answers = server.coordinator.submit_batch(batch, plimsoll_server::service::now_ms());
+    let answers = server
+        .coordinator
+        .submit_batch(batch, plimsoll_server::service::now_ms());
     assert_eq!(answers.len(), 6);
-    let ok = |i: usize| answers[i].as_ref().unwrap_or_else(|e| panic!("call {i}: {e}"));
+    let ok = |i: usize| {
+        answers[i]
+            .as_ref()
+            .unwrap_or_else(|e| panic!("call {i}: {e}"))
+    };
     assert_eq!((ok(0).accepted_in_round, ok(0).round_closed), (1, false));
     assert!(!ok(1).round_closed);
     assert!(matches!(answers[2], Err(AggregatorError::AlreadyExists(_))));
-    assert!(matches!(answers[3], Err(AggregatorError::Unauthenticated(_))));
-    assert!(matches!(answers[4], Err(AggregatorError::InvalidArgument { .. })));
+    assert!(matches!(
+        answers[3],
+        Err(AggregatorError::Unauthenticated(_))
+    ));
+    assert!(matches!(
+        answers[4],
+        Err(AggregatorError::InvalidArgument { .. })
+    ));
     assert_eq!((ok(5).accepted_in_round, ok(5).round_closed), (2, false));
     assert_eq!(server.coordinator.prior(STUDY, None).unwrap().version, 0);
 
@@ -572,4 +584,78 @@ async fn a_batch_of_submissions_is_answered_call_by_call() {
     assert_eq!(reopened.prior(STUDY, None).unwrap(), prior);
     let retry = reopened.submit_batch(vec![call(&a, 1.0, 10)], plimsoll_server::service::now_ms());
     assert!(retry[0].as_ref().unwrap().round_closed);
+}
+
+#[tokio::test]
+async fn a_data_summary_is_kept_replaced_and_refused_when_it_cannot_be_true() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("agg.db");
+    let server =
+        TestServer::start(&db, vec![study_config(STUDY, &[Signal::RestingHr], 3, 2)]).await;
+    let mut client = server.client();
+    let a = enroll(&server, "p-a").await;
+    let b = enroll(&server, "p-b").await;
+    let summary = |device: &DeviceCredential, days: u32, last: &str| pb::SubmitDataSummaryRequest {
+        study_id: STUDY.into(),
+        device_id: device.device_id,
+        first_day: "2024-01-01".into(),
+        last_day: "2024-01-31".into(),
+        signals: vec![pb::SignalCoverage {
+            signal: "resting_hr_bpm".into(),
+            days_with_data: days,
+            last_day: last.into(),
+        }],
+    };
+    let refused = |r: Result<tonic::Response<pb::SubmitDataSummaryResponse>, tonic::Status>| {
+        r.expect_err("must be refused")
+    };
+    // 32 days with data in a 31-day span.
+    let e = refused(
+        client
+            .submit_data_summary(authorized(&a, summary(&a, 32, "2024-01-31")))
+            .await,
+    );
+    assert_eq!(e.code(), Code::InvalidArgument);
+    assert!(
+        e.message().starts_with("SubmitDataSummary")
+            && e.message().contains("signals[0].days_with_data"),
+        "{}",
+        e.message()
+    );
+    let e = refused(
+        client
+            .submit_data_summary(authorized(&a, summary(&a, 3, "2024-02-30")))
+            .await,
+    );
+    assert!(
+        e.message().contains("signals[0].last_day"),
+        "{}",
+        e.message()
+    );
+    // A device cannot send another device's summary.
+    let e = refused(
+        client
+            .submit_data_summary(authorized(&b, summary(&a, 3, "2024-01-31")))
+            .await,
+    );
+    assert_eq!(e.code(), Code::PermissionDenied, "{}", e.message());
+    // Nothing was stored by the refusals.
+    let store = plimsoll_server::store::Store::open(&db).unwrap();
+    assert!(store.data_summaries(STUDY).unwrap().is_empty());
+    drop(store);
+
+    client
+        .submit_data_summary(authorized(&a, summary(&a, 20, "2024-01-30")))
+        .await
+        .unwrap();
+    client
+        .submit_data_summary(authorized(&a, summary(&a, 25, "2024-01-31")))
+        .await
+        .unwrap();
+    let store = plimsoll_server::store::Store::open(&db).unwrap();
+    let kept = store.data_summaries(STUDY).unwrap();
+    assert_eq!(kept.len(), 1, "the newer summary replaces the older");
+    assert_eq!(kept[0].0, a.device_id);
+    assert_eq!(kept[0].1.signals[0].days_with_data, 25);
+    server.stop().await;
 }

@@ -22,6 +22,7 @@ use std::sync::Arc;
 use std::time::Duration;
 
 use anyhow::{Context, anyhow};
+use chrono::NaiveDate;
 use plimsoll_proto::auth::DeviceCredential;
 pub use plimsoll_proto::auth::authorized;
 use plimsoll_proto::v1 as pb;
@@ -539,6 +540,7 @@ pub async fn run_device_with(
         serde_json::to_string_pretty(&calibration)? + "\n",
     )
     .with_context(|| format!("writing {}", calibration_path.display()))?;
+    let summary = data_summary(&opts.study_id, device_id, &series, &local);
     let permit = cpu.clone().acquire_owned().await?;
     let out_dir = opts.out_dir.clone();
     let packet_priors = priors.clone();
@@ -561,6 +563,13 @@ pub async fn run_device_with(
             Ok((bands, path, detection))
         })
         .await??;
+    // Every device reports its data completeness (counts and dates, no value) for the
+    // study's lead; `data_summary` is the only place that fills the message.
+    let request = authorized(&credential, summary);
+    client
+        .submit_data_summary(request)
+        .await
+        .with_context(|| format!("SubmitDataSummary for device {device_id}"))?;
     // With consent, one packet per episode at or above the study's review
     // level goes to the reviewers (sent again under the same key when a
     // later run finds it grown); without it `FlagSender::new` gives no
@@ -612,6 +621,44 @@ pub async fn study_review_level(
 /// A device's local training series: every signal with at least [`MIN_DAYS_TO_ENROLL`]
 /// observed days, standardised, days counted from the participant's first date (empty when
 /// the series has no date).
+/// The data-completeness summary of `series` for the signals the device
+/// enrolled (`local`): per signal the days with a value and the last such
+/// day, and the series' first and last day. It carries counts and dates
+/// only; no value of any day is put in it.
+pub(crate) fn data_summary(
+    study_id: &str,
+    device_id: u64,
+    series: &ParticipantSeries,
+    local: &[(Signal, LocalSeries)],
+) -> pb::SubmitDataSummaryRequest {
+    let day = |d: Option<&NaiveDate>| d.map_or_else(String::new, |d| d.to_string());
+    let signals = local
+        .iter()
+        .map(|(signal, _)| {
+            let values = series.values.get(signal).map_or(&[][..], Vec::as_slice);
+            let observed = series
+                .dates
+                .iter()
+                .zip(values)
+                .filter(|(_, v)| v.is_some())
+                .map(|(d, _)| d);
+            let (days, last) = observed.fold((0u32, None), |(n, _), d| (n + 1, Some(d)));
+            pb::SignalCoverage {
+                signal: signal.column().to_owned(),
+                days_with_data: days,
+                last_day: day(last),
+            }
+        })
+        .collect();
+    pb::SubmitDataSummaryRequest {
+        study_id: study_id.to_owned(),
+        device_id,
+        first_day: day(series.dates.first()),
+        last_day: day(series.dates.last()),
+        signals,
+    }
+}
+
 pub(crate) fn local_training_series(series: &ParticipantSeries) -> Vec<(Signal, LocalSeries)> {
     let Some(&origin) = series.dates.first() else {
         return Vec::new();
@@ -764,4 +811,55 @@ pub(crate) fn seed_of(label: &str) -> u64 {
     label.bytes().fold(0xcbf2_9ce4_8422_2325, |h, b| {
         (h ^ u64::from(b)).wrapping_mul(0x100_0000_01b3)
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use std::collections::BTreeMap;
+
+    use super::*;
+
+    #[test]
+    fn a_data_summary_counts_days_with_a_value_and_carries_no_value() {
+        let day = |s: &str| s.parse::<NaiveDate>().unwrap();
+        let dates = vec![
+            day("2024-05-01"),
+            day("2024-05-02"),
+            day("2024-05-04"),
+            day("2024-05-05"),
+        ];
+        let mut values = BTreeMap::new();
+        values.insert(Signal::RestingHr, vec![Some(61.0), None, Some(63.5), None]);
+        values.insert(Signal::Steps, vec![Some(4100.0); 4]);
+        let series = ParticipantSeries {
+            participant: "p-1".into(),
+            dates,
+            values,
+        };
+        let enrolled = |s| {
+            (
+                s,
+                LocalSeries {
+                    t: Vec::new(),
+                    z: Vec::new(),
+                },
+            )
+        };
+        // Only the enrolled signals are summarised.
+        let r = data_summary("s", 7, &series, &[enrolled(Signal::RestingHr)]);
+        assert_eq!((r.study_id.as_str(), r.device_id), ("s", 7));
+        assert_eq!(
+            (r.first_day.as_str(), r.last_day.as_str()),
+            ("2024-05-01", "2024-05-05")
+        );
+        assert_eq!(r.signals.len(), 1);
+        assert_eq!(r.signals[0].signal, Signal::RestingHr.column());
+        assert_eq!(r.signals[0].days_with_data, 2);
+        assert_eq!(r.signals[0].last_day, "2024-05-04");
+        // No value of the series appears anywhere in the encoded message.
+        let text = format!("{r:?}");
+        for v in ["61", "63.5", "4100"] {
+            assert!(!text.contains(v), "{v} in {text}");
+        }
+    }
 }

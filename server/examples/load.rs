@@ -72,9 +72,9 @@ fn cpu_seconds() -> (f64, f64) {
         let comm = &stat[open + 1..close];
         let fields: Vec<&str> = stat[close + 2..].split_whitespace().collect();
         // Fields 14 and 15 of proc(5) (utime, stime) are 11 and 12 after the comm.
-        let ticks: f64 = fields
-            .get(11..13)
-            .map_or(0.0, |f| f.iter().filter_map(|v| v.parse::<f64>().ok()).sum());
+        let ticks: f64 = fields.get(11..13).map_or(0.0, |f| {
+            f.iter().filter_map(|v| v.parse::<f64>().ok()).sum()
+        });
         if comm.starts_with(SERVER_THREADS) {
             server += ticks / TICKS;
         } else {

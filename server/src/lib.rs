@@ -11,6 +11,7 @@
 //! counts, which it only validates, stores and adds up.
 
 pub mod aggregate;
+pub mod coverage;
 pub mod detection;
 pub mod error;
 pub mod packets;

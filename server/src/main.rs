@@ -320,8 +320,17 @@ async fn main() -> anyhow::Result<()> {
                 let version = store.priors(id)?.last().map_or(0, |p| p.version);
                 let open_round = store.open_round(id)?.map_or(0, |r| r.round_id);
                 let completed = store.rounds_completed(id)?;
+                let Some(overview) = plimsoll_server::review::db::overview(&store, id)? else {
+                    continue;
+                };
+                let (header, details) = status_lines(&overview, plimsoll_server::service::now_ms());
+                print!("{header}");
+                let open = match open_round {
+                    0 => "no round open".to_owned(),
+                    r => format!("round {r} open"),
+                };
                 println!(
-                    "{id}: {active} devices, {completed}/{} rounds, prior version {version}, open round {open_round}",
+                    "  training: {completed}/{} rounds, prior version {version}, {open}",
                     config.rounds,
                 );
                 // The detector's calibration stages follow training (moments, then the
@@ -342,8 +351,75 @@ async fn main() -> anyhow::Result<()> {
                     };
                     println!("  calibration {}: {state}", stage.as_str());
                 }
+                print!("{details}");
             }
         }
     }
     Ok(())
+}
+
+/// The lines of `status` for one study that the review pages' overview also
+/// shows: the headline (enrolment and consent), then the details (data
+/// completeness, episodes and the review backlog).
+fn status_lines(o: &plimsoll_server::review::db::StudyOverview, now_ms: i64) -> (String, String) {
+    use std::fmt::Write;
+    let p = &o.participants;
+    let revoked = p.iter().filter(|d| d.revoked).count();
+    let mut out = format!(
+        "{}: {} participants enrolled ({revoked} revoked); flags shared by {}, withheld by {}\n",
+        o.config.study_id,
+        p.len(),
+        o.devices_consenting,
+        p.len() - o.devices_consenting,
+    );
+    let header = std::mem::take(&mut out);
+    // Each participant's completeness: the mean over their enrolled signals.
+    let mut complete: Vec<(f64, &str)> = p
+        .iter()
+        .filter_map(|d| {
+            let (s, _) = d.summary.as_ref()?;
+            let shares: Vec<f64> = d.signals.iter().filter_map(|x| s.completeness(x)).collect();
+            (!shares.is_empty()).then(|| {
+                (
+                    shares.iter().sum::<f64>() / shares.len() as f64,
+                    d.label.as_str(),
+                )
+            })
+        })
+        .collect();
+    complete.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let last_day = p
+        .iter()
+        .filter_map(|d| d.summary.as_ref()?.0.last_data_day())
+        .max();
+    match (complete.first(), last_day) {
+        (Some(&(low, who)), Some(last)) => {
+            let median = complete[complete.len() / 2].0;
+            let _ = writeln!(
+                out,
+                "  data: summaries from {} of {} devices; completeness median {:.0}%, lowest {:.0}% ({who}); latest data day {last}",
+                complete.len(),
+                p.len(),
+                median * 100.0,
+                low * 100.0,
+            );
+        }
+        _ => {
+            let _ = writeln!(out, "  data: no device has sent a data summary yet");
+        }
+    }
+    let b = &o.backlog;
+    let oldest = match b.oldest_new_ms {
+        Some(at) if b.new > 0 => format!(
+            ", the oldest waiting {}",
+            plimsoll_server::review::pages::age_text(at, now_ms)
+        ),
+        _ => String::new(),
+    };
+    let _ = writeln!(
+        out,
+        "  episodes: {} received; review backlog {} not yet reviewed{oldest}, {} grew after review",
+        o.flags_total, b.new, b.updated_since_review,
+    );
+    (header, out)
 }

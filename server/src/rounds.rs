@@ -643,7 +643,12 @@ impl Coordinator {
                 .iter()
                 .map(|&i| {
                     let s = &batch[i];
-                    (s.study_id.as_str(), s.round_id, s.device_id, s.updates.as_slice())
+                    (
+                        s.study_id.as_str(),
+                        s.round_id,
+                        s.device_id,
+                        s.updates.as_slice(),
+                    )
                 })
                 .collect();
             match store.insert_updates(&rows, now_ms) {
@@ -784,6 +789,26 @@ impl Coordinator {
         check_flag_consent(rt, study_id, device_id)?;
         packet.validate(&rt.config)?;
         store.upsert_flag_packet(study_id, device_id, packet, now_ms)
+    }
+
+    /// Stores a device's data-completeness summary (replacing its earlier
+    /// one) after checking it against the signals the device enrolled.
+    pub fn submit_data_summary(
+        &self,
+        study_id: &str,
+        device_id: u64,
+        summary: &crate::coverage::DataSummary,
+        now_ms: i64,
+    ) -> Result<()> {
+        let mut state = self.lock();
+        let State { store, studies } = &mut *state;
+        let rt = study(studies, study_id)?;
+        let device = rt
+            .devices
+            .get(&device_id)
+            .ok_or_else(|| unknown_device(study_id, device_id))?;
+        summary.validate(&device.signals)?;
+        store.upsert_data_summary(study_id, device_id, summary, now_ms)
     }
 
     /// `Ok` when `device_id` is enrolled in `study_id` with consent to share

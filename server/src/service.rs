@@ -265,6 +265,22 @@ impl Aggregator for AggregatorService {
         }))
     }
 
+    async fn submit_data_summary(
+        &self,
+        req: Request<pb::SubmitDataSummaryRequest>,
+    ) -> Result<Response<pb::SubmitDataSummaryResponse>, Status> {
+        let cred = credential("SubmitDataSummary", &req)?;
+        let c = self.coordinator.clone();
+        let r = req.into_inner();
+        blocking("SubmitDataSummary", move || {
+            c.authenticate(&r.study_id, Some(r.device_id), &cred)?;
+            let summary = wire::data_summary_from_pb(&r)?;
+            c.submit_data_summary(&r.study_id, r.device_id, &summary, now_ms())
+        })
+        .await?;
+        Ok(Response::new(pb::SubmitDataSummaryResponse {}))
+    }
+
     async fn submit_detection_stats(
         &self,
         req: Request<pb::SubmitDetectionStatsRequest>,

@@ -33,7 +33,7 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::study::{PriorVersion, SignalUpdate, StudyConfig};
 
-const SCHEMA_VERSION: i64 = 6;
+const SCHEMA_VERSION: i64 = 7;
 
 /// Version 1: federated training.
 const SCHEMA_V1: &str = "
@@ -239,6 +239,19 @@ BEGIN SELECT RAISE(ABORT, 'review_login_events is append-only'); END;
 UPDATE schema_version SET version = 6;
 ";
 
+/// Version 6 → 7: each device's latest data-completeness summary
+/// ([`crate::coverage::DataSummary`]): counts and dates, never a value.
+const MIGRATE_DATA_SUMMARIES: &str = "
+CREATE TABLE data_summaries (
+    device_id    INTEGER PRIMARY KEY REFERENCES devices(device_id),
+    study_id     TEXT NOT NULL REFERENCES studies(study_id),
+    payload_json TEXT NOT NULL,
+    received_ms  INTEGER NOT NULL
+);
+CREATE INDEX data_summaries_by_study ON data_summaries (study_id);
+UPDATE schema_version SET version = 7;
+";
+
 /// A stored episode: its id (the same for every version) and how many
 /// versions were received.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -327,40 +340,52 @@ impl Store {
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
+                tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
             }
             Some(1) => {
-                tracing::info!("migrating the aggregator database from schema 1 to 6");
+                tracing::info!("migrating the aggregator database from schema 1 to 7");
                 tx.execute_batch(MIGRATE_V1_TO_V2)?;
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
+                tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
             }
             Some(2) => {
-                tracing::info!("migrating the aggregator database from schema 2 to 6");
+                tracing::info!("migrating the aggregator database from schema 2 to 7");
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
+                tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
             }
             Some(3) => {
-                tracing::info!("migrating the aggregator database from schema 3 to 6");
+                tracing::info!("migrating the aggregator database from schema 3 to 7");
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
+                tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
             }
             Some(4) => {
                 tracing::info!(
-                    "migrating the aggregator database from schema 4 to 6 (episodes, login record)"
+                    "migrating the aggregator database from schema 4 to 7 (episodes, login record, data summaries)"
                 );
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
+                tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
             }
             Some(5) => {
                 tracing::info!(
-                    "migrating the aggregator database from schema 5 to 6 (login record)"
+                    "migrating the aggregator database from schema 5 to 7 (login record, data summaries)"
                 );
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
+                tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
+            }
+            Some(6) => {
+                tracing::info!(
+                    "migrating the aggregator database from schema 6 to 7 (data summaries)"
+                );
+                tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
             }
             Some(SCHEMA_VERSION) => {}
             Some(other) => {
@@ -607,6 +632,51 @@ impl Store {
             params![device_id as i64, consent_share_flags],
         )?;
         Ok(())
+    }
+    /// Stores `summary` as `device_id`'s latest data summary, replacing any
+    /// earlier one.
+    pub fn upsert_data_summary(
+        &mut self,
+        study_id: &str,
+        device_id: u64,
+        summary: &crate::coverage::DataSummary,
+        now_ms: i64,
+    ) -> Result<()> {
+        self.conn.execute(
+            "INSERT INTO data_summaries (device_id, study_id, payload_json, received_ms)
+             VALUES (?1, ?2, ?3, ?4)
+             ON CONFLICT (device_id) DO UPDATE
+             SET payload_json = excluded.payload_json, received_ms = excluded.received_ms",
+            params![device_id as i64, study_id, to_json(summary), now_ms],
+        )?;
+        Ok(())
+    }
+
+    /// The study's latest data summaries: device id, summary, when received.
+    pub fn data_summaries(
+        &self,
+        study_id: &str,
+    ) -> Result<Vec<(u64, crate::coverage::DataSummary, i64)>> {
+        let mut stmt = self.conn.prepare(
+            "SELECT device_id, payload_json, received_ms FROM data_summaries
+             WHERE study_id = ?1 ORDER BY device_id",
+        )?;
+        let rows = stmt.query_map([study_id], |r| {
+            Ok((
+                r.get::<_, i64>(0)?,
+                r.get::<_, String>(1)?,
+                r.get::<_, i64>(2)?,
+            ))
+        })?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (device_id, payload, received_ms) = row?;
+            let summary = serde_json::from_str(&payload).map_err(|e| {
+                AggregatorError::Corrupt(format!("data summary of device {device_id}: {e}"))
+            })?;
+            out.push((device_id as u64, summary, received_ms));
+        }
+        Ok(out)
     }
 
     /// Stores a validated flag packet (one episode) and returns its id and
@@ -1308,6 +1378,49 @@ mod tests {
             Store::open(&path).unwrap().schema_version().unwrap(),
             SCHEMA_VERSION
         );
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+
+    #[test]
+    fn a_version_6_database_gains_data_summaries_and_a_summary_replaces_the_last() {
+        use crate::coverage::{DataSummary, SignalCoverage};
+        let dir = std::env::temp_dir().join(format!("plimsoll-v6-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = dir.join("v6.db");
+        let _ = std::fs::remove_file(&path);
+        {
+            // A version-6 database: today's schema without the version-7 table.
+            let store = Store::open(&path).unwrap();
+            store
+                .conn()
+                .execute_batch(
+                    "DROP TABLE data_summaries; UPDATE schema_version SET version = 6;
+                     INSERT INTO studies (study_id, config_json, created_ms) VALUES ('s', '{}', 0);
+                     INSERT INTO devices (study_id, label, signals_json, enrolled_ms)
+                       VALUES ('s', 'p-1', '[\"steps\"]', 0);",
+                )
+                .unwrap();
+        }
+        let mut store = Store::open(&path).unwrap();
+        assert_eq!(store.schema_version().unwrap(), SCHEMA_VERSION);
+        assert_eq!(store.devices("s").unwrap().len(), 1, "rows kept");
+        assert!(store.data_summaries("s").unwrap().is_empty());
+        let day = |s: &str| s.parse().unwrap();
+        let mut summary = DataSummary {
+            first_day: day("2024-01-01"),
+            last_day: day("2024-01-10"),
+            signals: vec![SignalCoverage {
+                signal: "steps".into(),
+                days_with_data: 9,
+                last_day: Some(day("2024-01-10")),
+            }],
+        };
+        store.upsert_data_summary("s", 1, &summary, 5).unwrap();
+        summary.last_day = day("2024-01-20");
+        summary.signals[0].days_with_data = 18;
+        store.upsert_data_summary("s", 1, &summary, 9).unwrap();
+        assert_eq!(store.data_summaries("s").unwrap(), vec![(1, summary, 9)]);
+        drop(store);
         std::fs::remove_dir_all(&dir).unwrap();
     }
 

@@ -243,6 +243,33 @@ fn band_from_pb(field: &str, b: Option<pb::PopulationBand>) -> Result<Population
     })
 }
 
+/// Decodes a data summary: dates parsed (an empty signal `last_day` is none).
+/// The consistency checks are [`crate::coverage::DataSummary::validate`]'s.
+pub fn data_summary_from_pb(
+    r: &pb::SubmitDataSummaryRequest,
+) -> Result<crate::coverage::DataSummary> {
+    let mut signals = Vec::with_capacity(r.signals.len());
+    for (i, c) in r.signals.iter().enumerate() {
+        signals.push(crate::coverage::SignalCoverage {
+            signal: c.signal.clone(),
+            days_with_data: c.days_with_data,
+            last_day: if c.last_day.is_empty() {
+                None
+            } else {
+                Some(date_from_pb(
+                    &format!("signals[{i}].last_day"),
+                    &c.last_day,
+                )?)
+            },
+        });
+    }
+    Ok(crate::coverage::DataSummary {
+        first_day: date_from_pb("first_day", &r.first_day)?,
+        last_day: date_from_pb("last_day", &r.last_day)?,
+        signals,
+    })
+}
+
 /// Decodes a flag packet: dates parsed, enums known. The numeric and window
 /// checks are [`FlagPacket::validate`]'s.
 pub fn flag_packet_from_pb(p: Option<pb::FlagPacket>) -> Result<FlagPacket> {

@@ -219,13 +219,26 @@ async fn operator_commands_take_effect_on_a_running_aggregator() {
     let line = listing.lines().find(|l| l.contains("p-1")).unwrap();
     assert!(line.contains("revoked"), "{listing}");
     // Status reads the store beside the running aggregator: the revoked
-    // device no longer counts, round 1 is still open.
+    // device is counted as such, round 1 is still open, no device has sent
+    // a data summary or an episode.
     let (ok, status, _) = run(&db, &["status"]);
     assert!(ok);
     assert!(
-        status.contains(&format!(
-            "{STUDY}: 1 devices, 0/2 rounds, prior version 0, open round 1"
-        )),
+        status.contains(&format!("{STUDY}: 2 participants enrolled (1 revoked);")),
+        "{status}"
+    );
+    assert!(
+        status.contains("  training: 0/2 rounds, prior version 0, round 1 open"),
+        "{status}"
+    );
+    assert!(
+        status.contains("  data: no device has sent a data summary yet"),
+        "{status}"
+    );
+    assert!(
+        status.contains(
+            "  episodes: 0 received; review backlog 0 not yet reviewed, 0 grew after review"
+        ),
         "{status}"
     );
     // Training is not over, so neither calibration stage has begun (they open when the last

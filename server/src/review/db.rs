@@ -100,6 +100,10 @@ pub struct StudyOverview {
     pub priors: Vec<PriorVersion>,
     pub flags_total: usize,
     pub flags_new: usize,
+    /// The lead's view: every participant, the review backlog, episodes per week.
+    pub participants: Vec<ParticipantRow>,
+    pub backlog: Backlog,
+    pub weekly: Vec<(chrono::NaiveDate, std::collections::BTreeMap<String, usize>)>,
 }
 
 /// One row of the queue: one episode.
@@ -201,6 +205,9 @@ pub fn overview(store: &Store, study_id: &str) -> Result<Option<StudyOverview>> 
         priors: store.priors(study_id)?,
         flags_total: flags_total as usize,
         flags_new: flags_new as usize,
+        participants: participants(store, study_id)?,
+        backlog: backlog(store, study_id)?,
+        weekly: episodes_by_week(store, study_id)?,
         config,
     }))
 }
@@ -437,4 +444,161 @@ pub fn record_action(
         params![packet_id as i64, reviewer, action.as_str(), note, now_ms],
     )?;
     Ok(())
+}
+
+/// One participant as the study's lead sees them.
+#[derive(Debug, Clone)]
+pub struct ParticipantRow {
+    pub device_id: u64,
+    pub label: String,
+    pub signals: Vec<String>,
+    pub consent_share_flags: bool,
+    pub revoked: bool,
+    /// The device's latest data summary and when it arrived (server time);
+    /// `None` until the device has sent one.
+    pub summary: Option<(crate::coverage::DataSummary, i64)>,
+    /// Episodes the device sent, and of those not yet reviewed.
+    pub episodes: usize,
+    pub episodes_new: usize,
+}
+
+/// The study's review backlog.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Backlog {
+    /// Episodes without any review action.
+    pub new: usize,
+    /// When the oldest of those first arrived (server time).
+    pub oldest_new_ms: Option<i64>,
+    /// Reviewed episodes that grew after their latest action.
+    pub updated_since_review: usize,
+}
+
+/// Every enrolled participant of `study_id`, in enrolment order, with their
+/// data summary and episode counts.
+pub fn participants(store: &Store, study_id: &str) -> Result<Vec<ParticipantRow>> {
+    let mut summaries: std::collections::HashMap<u64, (crate::coverage::DataSummary, i64)> = store
+        .data_summaries(study_id)?
+        .into_iter()
+        .map(|(id, s, at)| (id, (s, at)))
+        .collect();
+    let mut counts: std::collections::HashMap<u64, (usize, usize)> =
+        std::collections::HashMap::new();
+    for entry in queue_with_devices(store, study_id)? {
+        let c = counts.entry(entry.0).or_default();
+        c.0 += 1;
+        c.1 += usize::from(entry.1.status == ReviewStatus::New);
+    }
+    Ok(store
+        .devices(study_id)?
+        .into_iter()
+        .map(|d| {
+            let (episodes, episodes_new) = counts.get(&d.device_id).copied().unwrap_or_default();
+            ParticipantRow {
+                summary: summaries.remove(&d.device_id),
+                device_id: d.device_id,
+                label: d.label,
+                signals: d.signals,
+                consent_share_flags: d.consent_share_flags,
+                revoked: d.revoked,
+                episodes,
+                episodes_new,
+            }
+        })
+        .collect())
+}
+
+/// The study's episodes with the device each came from.
+fn queue_with_devices(store: &Store, study_id: &str) -> Result<Vec<(u64, QueueEntry)>> {
+    let sql = format!(
+        "SELECT {}, p.device_id
+         FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
+         WHERE p.study_id = ?1
+         ORDER BY p.flag_date DESC, p.packet_id DESC",
+        queue_columns()
+    );
+    let mut stmt = store.conn().prepare(&sql)?;
+    let rows = stmt.query_map([study_id], |r| {
+        let device = r.get::<_, i64>(7)? as u64;
+        Ok(queue_entry(r)?.map(|e| (device, e)))
+    })?;
+    let mut out = Vec::new();
+    for row in rows {
+        out.push(row??);
+    }
+    Ok(out)
+}
+
+/// One participant of `study_id` by label with every episode they sent
+/// (newest peak first), or `None` when no such participant is enrolled.
+pub fn participant(
+    store: &Store,
+    study_id: &str,
+    label: &str,
+) -> Result<Option<(ParticipantRow, Vec<QueueEntry>)>> {
+    let Some(row) = participants(store, study_id)?
+        .into_iter()
+        .find(|p| p.label == label)
+    else {
+        return Ok(None);
+    };
+    let episodes = queue_with_devices(store, study_id)?
+        .into_iter()
+        .filter(|(device, _)| *device == row.device_id)
+        .map(|(_, e)| e)
+        .collect();
+    Ok(Some((row, episodes)))
+}
+
+/// The study's review backlog.
+pub fn backlog(store: &Store, study_id: &str) -> Result<Backlog> {
+    let mut b = Backlog::default();
+    let sql = format!(
+        "SELECT {LATEST_ACTION_MS}, COALESCE(p.updated_ms, p.received_ms), p.received_ms, p.revisions
+         FROM flag_packets p WHERE p.study_id = ?1"
+    );
+    let mut stmt = store.conn().prepare(&sql)?;
+    let rows = stmt.query_map([study_id], |r| {
+        Ok((
+            r.get::<_, Option<i64>>(0)?,
+            r.get::<_, i64>(1)?,
+            r.get::<_, i64>(2)?,
+            r.get::<_, i64>(3)?,
+        ))
+    })?;
+    for row in rows {
+        let (latest_action_ms, updated_ms, received_ms, revisions) = row?;
+        match latest_action_ms {
+            None => {
+                b.new += 1;
+                b.oldest_new_ms = Some(b.oldest_new_ms.map_or(received_ms, |o| o.min(received_ms)));
+            }
+            // The same rule as the queue's "updated since review".
+            Some(at) if at <= updated_ms && revisions > 1 => b.updated_since_review += 1,
+            Some(_) => {}
+        }
+    }
+    Ok(b)
+}
+
+/// Episodes per ISO week (the Monday of the week their first day falls in)
+/// and involved signal, weeks oldest first; an episode counts once under
+/// each signal it involves.
+pub fn episodes_by_week(
+    store: &Store,
+    study_id: &str,
+) -> Result<Vec<(chrono::NaiveDate, std::collections::BTreeMap<String, usize>)>> {
+    use chrono::Datelike;
+    let mut weeks: std::collections::BTreeMap<
+        chrono::NaiveDate,
+        std::collections::BTreeMap<String, usize>,
+    > = std::collections::BTreeMap::new();
+    for (_, e) in queue_with_devices(store, study_id)? {
+        let monday =
+            e.start - chrono::Days::new(u64::from(e.start.weekday().num_days_from_monday()));
+        let week = weeks.entry(monday).or_default();
+        for (signal, _) in &e.involved {
+            *week.entry(signal.clone()).or_default() += 1;
+        }
+    }
+    Ok(weeks.into_iter().collect())
 }

@@ -246,6 +246,10 @@ pub fn router(state: Arc<ReviewState>) -> Router {
         .route("/logout", post(logout))
         .route("/study/{study_id}", get(study_overview))
         .route("/study/{study_id}/flags", get(study_queue))
+        .route(
+            "/study/{study_id}/participant/{label}",
+            get(participant_page),
+        )
         .route("/flag/{packet_id}", get(flag_detail))
         .route("/flag/{packet_id}/action", post(flag_action))
         .fallback(|| async {
@@ -436,7 +440,38 @@ async fn study_overview(
         return not_found(&session);
     }
     match state.with_store(move |s| db::overview(s, &study_id)).await {
-        Ok(Some(o)) => html(StatusCode::OK, pages::overview(&session, &o)),
+        Ok(Some(o)) => html(StatusCode::OK, pages::overview(&session, &o, now_ms())),
+        Ok(None) => not_found(&session),
+        Err(r) => r,
+    }
+}
+
+async fn participant_page(
+    State(state): State<Arc<ReviewState>>,
+    headers: HeaderMap,
+    UrlPath((study_id, label)): UrlPath<(String, String)>,
+) -> Response {
+    let session = match require_session(&state, &headers).await {
+        Ok(s) => s,
+        Err(r) => return r,
+    };
+    if !session.may_see(&study_id) {
+        return not_found(&session);
+    }
+    let found = state
+        .with_store(move |s| {
+            let Some(config) = s.studies()?.into_iter().find(|c| c.study_id == study_id) else {
+                return Ok(None);
+            };
+            Ok(db::participant(s, &study_id, &label)?
+                .map(|(row, episodes)| (config, row, episodes)))
+        })
+        .await;
+    match found {
+        Ok(Some((config, row, episodes))) => html(
+            StatusCode::OK,
+            pages::participant(&session, &config, &row, &episodes),
+        ),
         Ok(None) => not_found(&session),
         Err(r) => r,
     }

@@ -1,5 +1,6 @@
-//! The review pages: login, studies, study overview, the episode queue and
-//! one episode.
+//! The review pages: login, studies, study overview (with the lead's view:
+//! participants, data completeness, review backlog, episodes per week), one
+//! participant, the episode queue and one episode.
 
 use std::fmt::Write;
 
@@ -7,7 +8,10 @@ use chrono::NaiveDate;
 
 use super::accounts::Session;
 use super::charts::{ConvergenceChart, SeriesChart, fmt_num, marker, palette};
-use super::db::{FlagRecord, QueueEntry, QueueFilter, ReviewAction, ReviewStatus, StudyOverview};
+use super::db::{
+    Backlog, FlagRecord, ParticipantRow, QueueEntry, QueueFilter, ReviewAction, ReviewStatus,
+    StudyOverview,
+};
 use super::html::{esc, page};
 use crate::packets::{DayStatus, FlagLevel, FlagPacket, PatternDirection, SignalWindow};
 use crate::presentation::{label_of, plain_prior, unit_of};
@@ -113,7 +117,7 @@ pub fn studies(session: &Session, titles: &[(String, String)]) -> String {
     page("Your studies", Some(session), &[], &body)
 }
 
-pub fn overview(session: &Session, o: &StudyOverview) -> String {
+pub fn overview(session: &Session, o: &StudyOverview, now_ms: i64) -> String {
     let id = &o.config.study_id;
     let latest = o.priors.last();
     let mut body = String::new();
@@ -125,7 +129,7 @@ pub fn overview(session: &Session, o: &StudyOverview) -> String {
 <div><dt>Sharing flags (consented)</dt><dd>{}</dd></div>
 <div><dt>Rounds run</dt><dd>{} of {}</dd></div>
 <div><dt>Shared prior version</dt><dd>{}</dd></div>
-</dl>"#,
+</dl>{}"#,
         esc(id),
         esc(id),
         o.flags_total,
@@ -134,7 +138,8 @@ pub fn overview(session: &Session, o: &StudyOverview) -> String {
         o.devices_consenting,
         o.rounds_completed,
         o.config.rounds,
-        latest.map_or(0, |p| p.version)
+        latest.map_or(0, |p| p.version),
+        lead_view(o, now_ms)
     );
     body.push_str(r#"<h2>Shared prior, in plain units</h2>
 <p class="muted">What the study learned about the population, without any participant's data leaving their device: the typical level, how much people differ from each other, and how much one person's days vary.</p>
@@ -301,28 +306,7 @@ pub fn queue(
     if entries.is_empty() {
         body.push_str("<p>No episodes match these filters.</p>");
     } else {
-        body.push_str(r#"<table id="queue"><caption>Episodes</caption><thead><tr><th scope="col">Level</th><th scope="col">Episode</th><th scope="col">Participant</th><th scope="col">Signals and direction</th><th scope="col">Pattern</th><th scope="col" class="num">Peak score (day)</th><th scope="col">Status</th></tr></thead><tbody>"#);
-        for e in entries {
-            let updated = if e.updated_since_review {
-                r#" <span class="badge status-new">Updated since review</span>"#
-            } else {
-                ""
-            };
-            let _ = write!(
-                body,
-                r#"<tr><td>{}</td><td><a href="/flag/{}">{}</a></td><td>{}</td><td>{}</td><td>{}</td><td class="num">{} ({})</td><td>{}{updated}</td></tr>"#,
-                level_badge(e.level),
-                e.packet_id,
-                esc(&span_text(e.start, e.end, e.ongoing)),
-                esc(&e.participant),
-                esc(&involved_text(&e.involved)),
-                esc(direction_text(e.direction)),
-                fmt_num(e.score, 2),
-                esc(&e.date),
-                status_badge(e.status)
-            );
-        }
-        body.push_str("</tbody></table>");
+        body.push_str(&episode_table("queue", "Episodes", study_id, entries, true));
     }
     let heading = format!("Episode queue — {title}");
     page(
@@ -332,6 +316,293 @@ pub fn queue(
             ("Studies", "/"),
             (title, &format!("/study/{study_id}")),
             ("Episode queue", ""),
+        ],
+        &body,
+    )
+}
+
+/// A table of episodes, one row each; the participant column (a link to
+/// their page) only when `with_participant`.
+fn episode_table(
+    id: &str,
+    caption: &str,
+    study_id: &str,
+    entries: &[QueueEntry],
+    with_participant: bool,
+) -> String {
+    let mut t = format!(
+        r#"<table id="{id}"><caption>{}</caption><thead><tr><th scope="col">Level</th><th scope="col">Episode</th>{}<th scope="col">Signals and direction</th><th scope="col">Pattern</th><th scope="col" class="num">Peak score (day)</th><th scope="col">Status</th></tr></thead><tbody>"#,
+        esc(caption),
+        if with_participant {
+            r#"<th scope="col">Participant</th>"#
+        } else {
+            ""
+        }
+    );
+    for e in entries {
+        let updated = if e.updated_since_review {
+            r#" <span class="badge status-new">Updated since review</span>"#
+        } else {
+            ""
+        };
+        let who = if with_participant {
+            format!("<td>{}</td>", participant_link(study_id, &e.participant))
+        } else {
+            String::new()
+        };
+        let _ = write!(
+            t,
+            r#"<tr><td>{}</td><td><a href="/flag/{}">{}</a></td>{who}<td>{}</td><td>{}</td><td class="num">{} ({})</td><td>{}{updated}</td></tr>"#,
+            level_badge(e.level),
+            e.packet_id,
+            esc(&span_text(e.start, e.end, e.ongoing)),
+            esc(&involved_text(&e.involved)),
+            esc(direction_text(e.direction)),
+            fmt_num(e.score, 2),
+            esc(&e.date),
+            status_badge(e.status)
+        );
+    }
+    t.push_str("</tbody></table>");
+    t
+}
+
+/// The path of a participant's page.
+pub fn participant_path(study_id: &str, label: &str) -> String {
+    // Labels match [A-Za-z0-9_-] (checked at enrolment), so they need no escaping in a path.
+    format!("/study/{study_id}/participant/{label}")
+}
+
+/// A participant id linked to their page.
+fn participant_link(study_id: &str, label: &str) -> String {
+    format!(
+        r#"<a class="participant" href="{}">{}</a>"#,
+        esc(&participant_path(study_id, label)),
+        esc(label)
+    )
+}
+
+/// A share as a whole percentage ("93%"), the one rounding the pages use for shares.
+fn percent(share: f64) -> String {
+    format!("{:.0}%", share * 100.0)
+}
+
+/// How long ago `then_ms` was, in the largest whole unit ("3 days", "5 hours", "under a minute").
+pub fn age_text(then_ms: i64, now_ms: i64) -> String {
+    let minutes = (now_ms - then_ms).max(0) / 60_000;
+    let (n, unit) = if minutes >= 2 * 24 * 60 {
+        (minutes / (24 * 60), "day")
+    } else if minutes >= 120 {
+        (minutes / 60, "hour")
+    } else if minutes >= 1 {
+        (minutes, "minute")
+    } else {
+        return "under a minute".into();
+    };
+    format!("{n} {unit}{}", if n == 1 { "" } else { "s" })
+}
+
+fn backlog_text(b: &Backlog, now_ms: i64) -> String {
+    let waiting = match b.oldest_new_ms {
+        Some(at) if b.new > 0 => format!(
+            ", the oldest waiting {} (first received {})",
+            age_text(at, now_ms),
+            utc(at)
+        ),
+        _ => String::new(),
+    };
+    format!(
+        "{} episode{} not yet reviewed{waiting}; {} reviewed episode{} grew after the latest action.",
+        b.new,
+        if b.new == 1 { "" } else { "s" },
+        b.updated_since_review,
+        if b.updated_since_review == 1 { "" } else { "s" },
+    )
+}
+
+/// One participant's completeness cells, one per study signal.
+fn completeness_cells(row: &ParticipantRow, signals: &[String]) -> String {
+    let mut out = String::new();
+    for s in signals {
+        let cell = match &row.summary {
+            _ if !row.signals.contains(s) => "not enrolled".to_owned(),
+            None => "–".to_owned(),
+            Some((summary, _)) => summary.completeness(s).map_or("–".into(), percent),
+        };
+        let _ = write!(out, r#"<td class="num">{}</td>"#, esc(&cell));
+    }
+    out
+}
+
+/// The research lead's part of the overview: consent, backlog, every
+/// participant's data completeness and episodes, and episodes per week.
+fn lead_view(o: &StudyOverview, now_ms: i64) -> String {
+    let id = &o.config.study_id;
+    let signals: Vec<String> = o.config.signals.iter().map(|s| s.signal.clone()).collect();
+    let withheld = o
+        .participants
+        .iter()
+        .filter(|p| !p.consent_share_flags)
+        .count();
+    let revoked = o.participants.iter().filter(|p| p.revoked).count();
+    let mut body = format!(
+        r#"<h2>Review backlog</h2><p id="backlog">{}</p>
+<h2>Participants</h2>
+<p class="muted">Consent to share flags for review: {} given, {} withheld ({} device{} revoked). Completeness is the share of days from a participant's first to last day that carry a value, from the summary each device sends (counts and dates only, never a value). Dates are the participants' local calendar days.</p>"#,
+        esc(&backlog_text(&o.backlog, now_ms)),
+        o.devices_consenting,
+        withheld,
+        revoked,
+        if revoked == 1 { "" } else { "s" },
+    );
+    if o.participants.is_empty() {
+        body.push_str("<p>No participant has enrolled yet.</p>");
+    } else {
+        body.push_str(r#"<table id="participants"><caption>Participants: data completeness and episodes</caption><thead><tr><th scope="col">Participant</th><th scope="col">Flags shared</th><th scope="col" class="num">Days in series</th><th scope="col">Last data day</th>"#);
+        for s in &signals {
+            let _ = write!(
+                body,
+                r#"<th scope="col" class="num">{}</th>"#,
+                esc(&label_of(s))
+            );
+        }
+        body.push_str(
+            r#"<th scope="col" class="num">Episodes (not reviewed)</th></tr></thead><tbody>"#,
+        );
+        for p in &o.participants {
+            let shared = match (p.revoked, p.consent_share_flags) {
+                (true, _) => "revoked",
+                (false, true) => "yes",
+                (false, false) => "no (withheld)",
+            };
+            let (span, last) = p.summary.as_ref().map_or_else(
+                || ("no summary yet".to_owned(), "–".to_owned()),
+                |(s, _)| {
+                    (
+                        s.span_days().to_string(),
+                        s.last_data_day().map_or("–".into(), |d| d.to_string()),
+                    )
+                },
+            );
+            let _ = write!(
+                body,
+                r#"<tr><th scope="row">{}</th><td>{shared}</td><td class="num">{}</td><td>{}</td>{}<td class="num">{} ({})</td></tr>"#,
+                participant_link(id, &p.label),
+                esc(&span),
+                esc(&last),
+                completeness_cells(p, &signals),
+                p.episodes,
+                p.episodes_new,
+            );
+        }
+        body.push_str("</tbody></table>");
+    }
+    body.push_str("<h2>Episodes by week and signal</h2>");
+    if o.weekly.is_empty() {
+        body.push_str("<p>No episode has been received.</p>");
+    } else {
+        let flagged: Vec<&String> = signals
+            .iter()
+            .filter(|s| o.weekly.iter().any(|(_, w)| w.contains_key(*s)))
+            .collect();
+        body.push_str(r#"<p class="muted">An episode counts in the week its first day falls in (weeks start on Monday), once under each signal it involves.</p><table id="weekly"><caption>Episodes per week</caption><thead><tr><th scope="col">Week of</th>"#);
+        for s in &flagged {
+            let _ = write!(
+                body,
+                r#"<th scope="col" class="num">{}</th>"#,
+                esc(&label_of(s))
+            );
+        }
+        body.push_str("</tr></thead><tbody>");
+        for (monday, counts) in &o.weekly {
+            let _ = write!(body, r#"<tr><th scope="row">{monday}</th>"#);
+            for s in &flagged {
+                let _ = write!(
+                    body,
+                    r#"<td class="num">{}</td>"#,
+                    counts.get(*s).copied().unwrap_or(0)
+                );
+            }
+            body.push_str("</tr>");
+        }
+        body.push_str("</tbody></table>");
+    }
+    body
+}
+
+/// One participant: enrolment, data completeness per signal, every episode.
+pub fn participant(
+    session: &Session,
+    config: &crate::study::StudyConfig,
+    row: &ParticipantRow,
+    episodes: &[QueueEntry],
+) -> String {
+    let id = &config.study_id;
+    let mut body = format!(
+        r#"<dl class="facts">
+<div><dt>Participant</dt><dd>{}</dd></div>
+<div><dt>Flags shared for review</dt><dd>{}</dd></div>
+<div><dt>Device</dt><dd>{}{}</dd></div>
+</dl>"#,
+        esc(&row.label),
+        if row.consent_share_flags {
+            "yes"
+        } else {
+            "no (withheld)"
+        },
+        row.device_id,
+        if row.revoked { " (revoked)" } else { "" },
+    );
+    body.push_str("<h2>Data completeness</h2>");
+    match &row.summary {
+        None => body.push_str("<p>This participant's device has not sent a data summary yet.</p>"),
+        Some((s, received)) => {
+            let _ = write!(
+                body,
+                r#"<p class="muted">Series from {} to {} ({} days, the participant's local calendar); summary received {}.</p>
+<table id="coverage"><caption>Days with a value, per signal</caption><thead><tr><th scope="col">Signal</th><th scope="col" class="num">Days with data</th><th scope="col" class="num">Completeness</th><th scope="col">Last data day</th></tr></thead><tbody>"#,
+                s.first_day,
+                s.last_day,
+                s.span_days(),
+                utc(*received),
+            );
+            for c in &s.signals {
+                let _ = write!(
+                    body,
+                    r#"<tr><th scope="row">{}</th><td class="num">{}</td><td class="num">{}</td><td>{}</td></tr>"#,
+                    esc(&label_of(&c.signal)),
+                    c.days_with_data,
+                    percent(f64::from(c.days_with_data) / f64::from(s.span_days())),
+                    c.last_day.map_or("–".into(), |d| d.to_string()),
+                );
+            }
+            body.push_str("</tbody></table>");
+        }
+    }
+    body.push_str("<h2>Episodes</h2>");
+    if episodes.is_empty() {
+        body.push_str(if row.consent_share_flags {
+            "<p>No episode has been received from this participant.</p>"
+        } else {
+            "<p>No episode is received from this participant: they did not consent to share flags.</p>"
+        });
+    } else {
+        body.push_str(&episode_table(
+            "episodes",
+            "All episodes, latest peak first",
+            id,
+            episodes,
+            false,
+        ));
+    }
+    let heading = format!("Participant {}", row.label);
+    page(
+        &heading,
+        Some(session),
+        &[
+            ("Studies", "/"),
+            (&config.title, &format!("/study/{id}")),
+            (&heading, ""),
         ],
         &body,
     )
@@ -573,7 +844,7 @@ pub fn flag(
         level_badge(p.level),
         status_badge(record.status()),
         esc(p.kind.label()),
-        esc(&record.participant),
+        participant_link(&record.study_id, &record.participant),
         esc(&span_text(p.first_day, p.last_day, p.episode.ongoing)),
         esc(&format!(
             "{} ({})",
