@@ -74,6 +74,17 @@ pub fn unit_of(signal: &str) -> &'static str {
     }
 }
 
+/// The smallest value a signal can take, where one exists: counts, durations,
+/// rates and HRV cannot go below zero; a skin-temperature *deviation* can.
+/// The models are Gaussian on the measured scale, so their bands can reach
+/// below it; displays cut bands there and say so.
+pub fn floor_of(signal: &str) -> Option<f64> {
+    match unit_of(signal) {
+        "bpm" | "ms" | "h" | "breaths/min" | "steps" => Some(0.0),
+        _ => None,
+    }
+}
+
 /// Plain-language name of a signal column for display.
 pub fn label_of(signal: &str) -> String {
     match signal {
@@ -90,6 +101,20 @@ pub fn label_of(signal: &str) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn only_the_temperature_deviation_may_go_below_zero() {
+        for s in [
+            "resting_hr_bpm",
+            "hrv_rmssd_ms",
+            "sleep_h",
+            "steps",
+            "resp_rate_brpm",
+        ] {
+            assert_eq!(floor_of(s), Some(0.0), "{s}");
+        }
+        assert_eq!(floor_of("skin_temp_delta_c"), None);
+    }
 
     #[test]
     fn reads_plain_units_from_names() {

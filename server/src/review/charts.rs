@@ -7,7 +7,7 @@
 
 use std::fmt::Write;
 
-use chrono::NaiveDate;
+use chrono::{Datelike, NaiveDate};
 
 use super::html::esc;
 use crate::packets::{DayStatus, SignalWindow, WindowDay};
@@ -202,6 +202,9 @@ pub struct SeriesChart<'a> {
     /// The flagged stretch to shade, if this chart shows a flagged signal.
     pub flagged: Option<(NaiveDate, NaiveDate)>,
     pub height: f64,
+    /// The smallest possible value of the signal ([`crate::presentation::floor_of`]):
+    /// bands are drawn cut there.
+    pub floor: Option<f64>,
 }
 
 impl SeriesChart<'_> {
@@ -256,17 +259,35 @@ impl SeriesChart<'_> {
             fmt_num(p.hi95, dec),
             self.unit
         );
+        if let Some(floor) = self.floor {
+            let below = p.lo95 < floor || self.window.days.iter().any(|d| d.lo95 < floor);
+            if below {
+                let _ = write!(
+                    s,
+                    " Bands are drawn cut at {} {}, the smallest possible value: the model is \
+                     Gaussian on the measured scale and puts a little probability below it (the \
+                     table gives the model's numbers).",
+                    fmt_num(floor, 0),
+                    self.unit
+                );
+            }
+        }
         s
+    }
+
+    /// A band edge as drawn: cut at the signal's floor.
+    fn cut(&self, v: f64) -> f64 {
+        self.floor.map_or(v, |f| v.max(f))
     }
 
     pub fn svg(&self) -> String {
         let n_days = (self.window_end - self.window_start).num_days() as f64 + 1.0;
         let idx = |d: NaiveDate| (d - self.window_start).num_days() as f64 + 0.5;
         let p = &self.window.population;
-        let mut lo = p.lo95;
+        let mut lo = self.cut(p.lo95);
         let mut hi = p.hi95;
         for d in &self.window.days {
-            lo = lo.min(d.lo95).min(d.observed);
+            lo = lo.min(self.cut(d.lo95)).min(d.observed);
             hi = hi.max(d.hi95).max(d.observed);
         }
         let f = Frame::new(760.0, self.height, (0.0, n_days), (lo, hi));
@@ -283,14 +304,21 @@ impl SeriesChart<'_> {
         if let Some((a, b)) = self.flagged {
             let x0 = f.x(idx(a) - 0.5);
             let x1 = f.x(idx(b) + 0.5);
+            // The label ("episode", as in the legend) starts inside the stretch; where that
+            // would run past the plot's right edge it ends there instead.
+            const LABEL_W: f64 = 48.0;
+            let (label_x, anchor) = if x0 + 3.0 + LABEL_W > f.left + f.plot_w {
+                (f.left + f.plot_w - 3.0, "end")
+            } else {
+                (x0 + 3.0, "start")
+            };
             let _ = write!(
                 out,
-                r#"<rect x="{x0:.1}" y="{:.1}" width="{:.1}" height="{:.1}" fill="{}" fill-opacity="0.16"/><text x="{:.1}" y="{:.1}" class="tick flag-label">flagged</text>"#,
+                r#"<rect x="{x0:.1}" y="{:.1}" width="{:.1}" height="{:.1}" fill="{}" fill-opacity="0.16"/><text x="{label_x:.1}" y="{:.1}" class="tick flag-label" text-anchor="{anchor}">episode</text>"#,
                 f.top,
                 (x1 - x0).max(2.0),
                 f.plot_h,
                 palette::ORANGE,
-                x0 + 3.0,
                 f.top + 12.0
             );
         }
@@ -320,12 +348,12 @@ impl SeriesChart<'_> {
                 let mut pts = String::new();
                 for d in run {
                     let (x0, x1) = (f.x(idx(d.date) - 0.5), f.x(idx(d.date) + 0.5));
-                    let y = f.y(hi_of(d));
+                    let y = f.y(self.cut(hi_of(d)));
                     let _ = write!(pts, "{x0:.1},{y:.1} {x1:.1},{y:.1} ");
                 }
                 for d in run.iter().rev() {
                     let (x0, x1) = (f.x(idx(d.date) - 0.5), f.x(idx(d.date) + 0.5));
-                    let y = f.y(lo_of(d));
+                    let y = f.y(self.cut(lo_of(d)));
                     let _ = write!(pts, "{x1:.1},{y:.1} {x0:.1},{y:.1} ");
                 }
                 let _ = write!(
@@ -349,7 +377,7 @@ impl SeriesChart<'_> {
         }
 
         for (v, dash) in [(p.lo95, "7 4"), (p.hi95, "7 4"), (p.mean, "2 4")] {
-            let y = f.y(v);
+            let y = f.y(self.cut(v));
             let _ = write!(
                 out,
                 r#"<line x1="{:.1}" x2="{:.1}" y1="{y:.1}" y2="{y:.1}" stroke="{}" stroke-width="1.6" stroke-dasharray="{dash}"/>"#,
@@ -397,17 +425,25 @@ impl SeriesChart<'_> {
             }
         }
 
-        // Date labels: every 7th day from the start, and the last day.
+        // Date labels every 7th day from the start; the first label and any
+        // label in a new year carry the year.
         let mut day = self.window_start;
+        let mut year = None;
         while day <= self.window_end {
             let x = f.x(idx(day));
+            let label = if year == Some(day.year()) {
+                day.format("%d %b").to_string()
+            } else {
+                year = Some(day.year());
+                day.format("%d %b %Y").to_string()
+            };
             let _ = write!(
                 out,
                 r##"<line x1="{x:.1}" x2="{x:.1}" y1="{:.1}" y2="{:.1}" stroke="#8a877f"/><text x="{x:.1}" y="{:.1}" class="tick" text-anchor="middle">{}</text>"##,
                 f.bottom(),
                 f.bottom() + 4.0,
                 f.bottom() + 17.0,
-                day.format("%d %b")
+                label
             );
             day += chrono::Duration::days(7);
         }
@@ -541,6 +577,83 @@ mod tests {
         assert_eq!(fmt_num(-0.0, 2), "0.00");
         assert_eq!(fmt_num(-1.5, 1), "-1.5");
         assert_eq!(fmt_p(1e-6), "< 0.001");
+    }
+
+    /// A steps window over the turn of a year whose bands reach below zero,
+    /// flagged on its last day.
+    fn steps_chart_svg() -> (String, String) {
+        use crate::packets::{DayStatus, PopulationBand, WindowDay};
+        let start: NaiveDate = "2024-12-20".parse().unwrap();
+        let days = (0..20)
+            .map(|i| WindowDay {
+                date: start + chrono::Days::new(i),
+                observed: 3000.0 + 100.0 * i as f64,
+                mean: 2500.0,
+                sd: 1500.0,
+                lo50: 1500.0,
+                hi50: 3500.0,
+                lo95: -440.0,
+                hi95: 5440.0,
+                z: 0.3,
+                tail_p: 0.4,
+                conditioned: true,
+                status: if i >= 17 {
+                    DayStatus::Flagged
+                } else {
+                    DayStatus::Normal
+                },
+            })
+            .collect();
+        let window = SignalWindow {
+            signal: "steps".into(),
+            population: PopulationBand {
+                mean: 6000.0,
+                lo50: 3000.0,
+                hi50: 9000.0,
+                lo95: -25.0,
+                hi95: 12000.0,
+            },
+            days,
+        };
+        let end = start + chrono::Days::new(19);
+        let chart = SeriesChart {
+            id: "c",
+            title: "Daily steps",
+            unit: "steps",
+            window: &window,
+            window_start: start,
+            window_end: end,
+            // One day of a 20-day window is narrower than the label.
+            flagged: Some((end, end)),
+            height: 220.0,
+            floor: crate::presentation::floor_of("steps"),
+        };
+        (chart.svg(), chart.description())
+    }
+
+    #[test]
+    fn the_episode_label_stays_inside_when_the_stretch_ends_the_window() {
+        let (svg, _) = steps_chart_svg();
+        let at = svg.find(">episode</text>").expect("episode label");
+        let tag = &svg[svg[..at].rfind("<text").unwrap()..at];
+        assert!(tag.contains(r#"text-anchor="end""#), "{tag}");
+    }
+
+    #[test]
+    fn axis_dates_carry_the_year_first_and_when_it_changes() {
+        let (svg, _) = steps_chart_svg();
+        // Ticks every 7 days from 20 Dec 2024: 20 Dec 2024, 27 Dec, 03 Jan 2025.
+        assert!(svg.contains(">20 Dec 2024</text>"), "first tick");
+        assert!(svg.contains(">27 Dec</text>"), "same year: no year");
+        assert!(svg.contains(">03 Jan 2025</text>"), "new year");
+    }
+
+    #[test]
+    fn bands_are_cut_at_the_floor_and_the_description_says_so() {
+        let (svg, description) = steps_chart_svg();
+        assert!(description.contains("cut at 0 steps"), "{description}");
+        // No tick label shows a negative step count.
+        assert!(!svg.contains(">-"), "a negative label in {svg}");
     }
 
     #[test]

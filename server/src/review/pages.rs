@@ -14,7 +14,7 @@ use super::db::{
 };
 use super::html::{esc, page};
 use crate::packets::{DayStatus, FlagLevel, FlagPacket, PatternDirection, SignalWindow};
-use crate::presentation::{label_of, plain_prior, unit_of};
+use crate::presentation::{floor_of, label_of, plain_prior, unit_of};
 
 /// A UTC timestamp for display.
 pub fn utc(ms: i64) -> String {
@@ -674,6 +674,13 @@ fn series_legend(with_flag: bool) -> String {
     ));
     out.push_str(&item(
         &format!(
+            r#"<line x1="1" x2="25" y1="7" y2="7" stroke="{}" stroke-width="1.6" stroke-dasharray="2 4"/>"#,
+            palette::REDDISH_PURPLE
+        ),
+        "population mean",
+    ));
+    out.push_str(&item(
+        &format!(
             r#"<rect x="9" y="4" width="8" height="6" fill="{}"/>"#,
             palette::GREY
         ),
@@ -749,6 +756,7 @@ fn chart_block(
         window_end: end,
         flagged,
         height,
+        floor: floor_of(&window.signal),
     };
     let mut out = String::from("<figure>");
     out.push_str(&chart.svg());
