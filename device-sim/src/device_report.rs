@@ -10,14 +10,13 @@ use std::fmt::Write as _;
 use std::io::Write as _;
 use std::path::Path;
 
-use chrono::NaiveDate;
-
 use crate::detect::DetectConfig;
 use crate::detect::calibration::StudyCalibration;
 use crate::episode_flags::{EpisodeDetection, EpisodeDirection, EpisodeFlag, detect_episodes};
 use crate::flags::FlagLevel;
 use crate::packets::{DayRow, PacketDayStatus};
 use crate::signal::Signal;
+use plimsoll_server::review::charts::{CHART_STYLE, SeriesChart, Stretch, series_legend};
 
 /// The caution shown wherever a flag is shown to a person: the one caution
 /// of [`plimsoll_proto::caution`], shared with the review pages.
@@ -185,136 +184,99 @@ fn escape(s: &str) -> String {
         .replace('"', "&quot;")
 }
 
-// Okabe & Ito (2008) colour-blind-safe palette.
-const BLUE: &str = "#0072B2";
-const VERMILION: &str = "#D55E00";
-const GREY: &str = "#555555";
+/// One signal's scored days as the review pages' chart takes them, with the
+/// population-only band of the shared prior.
+fn chart_window(
+    signal: Signal,
+    days: &[&DayRow],
+    prior: Option<&crate::prior::PriorParams>,
+) -> plimsoll_server::packets::SignalWindow {
+    use plimsoll_server::packets as sp;
+    let population = prior.map_or(
+        sp::PopulationBand {
+            mean: f64::NAN,
+            lo50: f64::NAN,
+            hi50: f64::NAN,
+            lo95: f64::NAN,
+            hi95: f64::NAN,
+        },
+        |p| {
+            let b = crate::packets::population_band(p);
+            sp::PopulationBand {
+                mean: b.mean,
+                lo50: b.lo50,
+                hi50: b.hi50,
+                lo95: b.lo95,
+                hi95: b.hi95,
+            }
+        },
+    );
+    sp::SignalWindow {
+        signal: signal.column().to_owned(),
+        population,
+        days: days
+            .iter()
+            .map(|d| sp::WindowDay {
+                date: d.date,
+                observed: d.observed,
+                mean: d.mean,
+                sd: d.sd,
+                lo50: d.lo50,
+                hi50: d.hi50,
+                lo95: d.lo95,
+                hi95: d.hi95,
+                z: d.z,
+                tail_p: d.tail_p,
+                conditioned: d.conditioned,
+                status: match d.status {
+                    PacketDayStatus::BuildingBaseline => sp::DayStatus::BuildingBaseline,
+                    PacketDayStatus::Normal => sp::DayStatus::Normal,
+                    PacketDayStatus::Flagged => sp::DayStatus::Flagged,
+                },
+            })
+            .collect(),
+    }
+}
 
-/// Inline SVG of one signal: bands, mean, observations; alarm days marked,
-/// alerted episodes shaded; missing days leave gaps.
-fn signal_svg(signal: Signal, days: &[&DayRow], spans: &[(NaiveDate, NaiveDate)]) -> String {
-    let (w, h, left, right, top, bottom) = (860.0, 220.0, 56.0, 12.0, 12.0, 28.0);
+/// One signal's chart, description and legend: the review pages' own chart
+/// (`plimsoll_server::review::charts`), so the report and the pages share
+/// one marker scheme and one legend.
+fn signal_figure(
+    i: usize,
+    signal: Signal,
+    days: &[&DayRow],
+    prior: Option<&crate::prior::PriorParams>,
+    episodes: &[Stretch],
+) -> String {
     let (Some(first), Some(last)) = (days.first(), days.last()) else {
         return String::new();
     };
-    let span = ((last.date - first.date).num_days().max(1)) as f64;
-    let lo = days
-        .iter()
-        .map(|d| d.lo95.min(d.observed))
-        .fold(f64::INFINITY, f64::min);
-    let hi = days
-        .iter()
-        .map(|d| d.hi95.max(d.observed))
-        .fold(f64::NEG_INFINITY, f64::max);
-    let pad = ((hi - lo) * 0.05).max(1e-9);
-    let (lo, hi) = (lo - pad, hi + pad);
-    let sx = |d: NaiveDate| left + (w - left - right) * ((d - first.date).num_days() as f64 / span);
-    let sy = |v: f64| top + (h - top - bottom) * (1.0 - (v - lo) / (hi - lo));
-    let mut s = String::new();
-    let _ = write!(
-        s,
-        r#"<svg viewBox="0 0 {w} {h}" role="img" aria-label="{} over time with expected bands; see the table below for the values" preserveAspectRatio="none">"#,
-        escape(signal.label())
-    );
-    // Runs of consecutive days: bands and the mean line break at missing days.
-    let mut runs: Vec<Vec<&DayRow>> = Vec::new();
-    for d in days
-        .iter()
-        .filter(|d| d.status != PacketDayStatus::BuildingBaseline)
-    {
-        match runs.last_mut() {
-            Some(run) if (d.date - run.last().expect("non-empty").date).num_days() <= 1 => {
-                run.push(d)
-            }
-            _ => runs.push(vec![d]),
-        }
-    }
-    for run in &runs {
-        for (wide, opacity) in [(true, 0.18), (false, 0.35)] {
-            let bounds = |d: &DayRow| {
-                if wide {
-                    (d.lo95, d.hi95)
-                } else {
-                    (d.lo50, d.hi50)
-                }
-            };
-            let mut pts: Vec<String> = run
-                .iter()
-                .map(|d| format!("{:.1},{:.1}", sx(d.date), sy(bounds(d).1)))
-                .collect();
-            pts.extend(
-                run.iter()
-                    .rev()
-                    .map(|d| format!("{:.1},{:.1}", sx(d.date), sy(bounds(d).0))),
-            );
-            let _ = write!(
-                s,
-                r#"<polygon points="{}" fill="{BLUE}" fill-opacity="{opacity}"/>"#,
-                pts.join(" ")
-            );
-        }
-        let line: Vec<String> = run
-            .iter()
-            .map(|d| format!("{:.1},{:.1}", sx(d.date), sy(d.mean)))
-            .collect();
-        let _ = write!(
-            s,
-            r#"<polyline points="{}" fill="none" stroke="{BLUE}" stroke-width="1.5"/>"#,
-            line.join(" ")
-        );
-    }
-    for (from, to) in spans {
-        let (x0, x1) = (sx(*from), sx(*to));
-        let _ = write!(
-            s,
-            r#"<rect x="{x0:.1}" y="{top}" width="{:.1}" height="{:.1}" fill="{VERMILION}" fill-opacity="0.12" stroke="{VERMILION}" stroke-dasharray="3 2"/>"#,
-            (x1 - x0).max(1.5),
-            h - bottom - top
-        );
-    }
-    for d in days {
-        let (x, y) = (sx(d.date), sy(d.observed));
-        if d.status == PacketDayStatus::Flagged {
-            let _ = write!(
-                s,
-                r#"<rect x="{:.1}" y="{:.1}" width="7" height="7" fill="{VERMILION}"><title>{} {:.2}</title></rect>"#,
-                x - 3.5,
-                y - 3.5,
-                d.date,
-                d.observed
-            );
-        } else {
-            let fill = if d.conditioned { GREY } else { "none" };
-            let _ = write!(
-                s,
-                r#"<circle cx="{x:.1}" cy="{y:.1}" r="2.6" fill="{fill}" stroke="{GREY}"><title>{} {:.2}</title></circle>"#,
-                d.date, d.observed
-            );
-        }
-    }
-    let _ = write!(
-        s,
-        r#"<text x="4" y="{:.1}" font-size="11">{:.1}</text><text x="4" y="{:.1}" font-size="11">{:.1}</text>"#,
-        top + 10.0,
-        hi,
-        h - bottom,
-        lo
-    );
-    let _ = write!(
-        s,
-        r#"<text x="{left}" y="{:.1}" font-size="11">{}</text><text x="{:.1}" y="{:.1}" font-size="11" text-anchor="end">{}</text>"#,
-        h - 8.0,
-        first.date,
-        w - right,
-        h - 8.0,
-        last.date
-    );
-    s.push_str("</svg>");
-    s
+    let window = chart_window(signal, days, prior);
+    let chart = SeriesChart {
+        id: &format!("chart-{i}"),
+        title: signal.label(),
+        unit: signal.unit(),
+        window: &window,
+        window_start: first.date,
+        window_end: last.date,
+        flagged: episodes,
+        height: 260.0,
+        floor: plimsoll_server::presentation::floor_of(signal.column()),
+    };
+    format!(
+        "<figure>{}<figcaption>{}</figcaption>{}</figure>",
+        chart.svg(),
+        escape(&chart.description()),
+        series_legend(!episodes.is_empty())
+    )
 }
 
 /// The self-contained HTML report of one participant.
-pub fn render_report_html(participant: &str, detection: &EpisodeDetection) -> String {
+pub fn render_report_html(
+    participant: &str,
+    detection: &EpisodeDetection,
+    priors: &[crate::prior::PriorParams],
+) -> String {
     let mut signals: Vec<Signal> = detection.rows.iter().map(|d| d.signal).collect();
     signals.sort_unstable();
     signals.dedup();
@@ -356,8 +318,18 @@ pub fn render_report_html(participant: &str, detection: &EpisodeDetection) -> St
             if mirrors == 1 { "" } else { "s" }
         );
     }
-    let spans: Vec<(NaiveDate, NaiveDate)> = alerted.iter().map(|e| (e.start, e.end)).collect();
-    for signal in signals {
+    let episodes: Vec<Stretch> = alerted
+        .iter()
+        .map(|e| Stretch {
+            start: e.start,
+            end: e.end,
+            level: match e.level {
+                FlagLevel::Alert => plimsoll_server::packets::FlagLevel::Alert,
+                FlagLevel::Watch => plimsoll_server::packets::FlagLevel::Watch,
+            },
+        })
+        .collect();
+    for (i, signal) in signals.into_iter().enumerate() {
         let days: Vec<&DayRow> = detection
             .rows
             .iter()
@@ -369,17 +341,9 @@ pub fn render_report_html(participant: &str, detection: &EpisodeDetection) -> St
             escape(signal.label()),
             escape(signal.unit())
         );
-        body.push_str("<figure>");
-        body.push_str(&signal_svg(signal, &days, &spans));
-        let _ = write!(
-            body,
-            "<figcaption>Dots: observed days (hollow: kept out of the baseline while unusual). Squares: alarm days this signal pushed towards the pattern. \
-Shaded: flagged episodes. Line: expected value. Gaps: no data. {} days built the baseline and carry no band.</figcaption>",
-            days.iter()
-                .filter(|d| d.status == PacketDayStatus::BuildingBaseline)
-                .count()
-        );
-        body.push_str("</figure><details><summary>Values as a table</summary><table><thead><tr><th>Date</th><th>Observed</th><th>Expected</th><th>95% band</th><th>Status</th></tr></thead><tbody>");
+        let prior = priors.iter().find(|p| p.signal == signal);
+        body.push_str(&signal_figure(i, signal, &days, prior, &episodes));
+        body.push_str("<details><summary>Values as a table</summary><table><thead><tr><th>Date</th><th>Observed</th><th>Expected</th><th>95% band</th><th>Status</th></tr></thead><tbody>");
         for d in &days {
             let _ = write!(
                 body,
@@ -403,7 +367,8 @@ body{{font-family:system-ui,sans-serif;margin:0 auto;max-width:920px;padding:1re
 h1{{font-size:1.35rem;margin:.2rem 0 1rem}} h2{{font-size:1.1rem;margin-top:1.6rem;border-bottom:1px solid #d8d3c8}}
 .caution{{background:#fff4d6;border-left:6px solid #E69F00;padding:.7rem .9rem;margin:.5rem 0 1rem}}
 table{{border-collapse:collapse;width:100%;font-size:.9rem}} td,th{{border-bottom:1px solid #e4e0d6;padding:.25rem .4rem;text-align:left}}
-svg{{width:100%;height:auto;background:#fff;border:1px solid #e4e0d6}} figcaption{{font-size:.85rem;color:#444}}
+figure{{margin:.5rem 0}} figcaption{{font-size:.85rem;color:#444}}
+{chart_style}
 summary:focus,a:focus{{outline:3px solid #0072B2;outline-offset:2px}}
 </style></head><body>
 <h1>Daily measures of participant {p}</h1>
@@ -412,7 +377,8 @@ summary:focus,a:focus{{outline:3px solid #0072B2;outline-offset:2px}}
 </body></html>
 "#,
         p = escape(participant),
-        caution = escape(CAUTION)
+        caution = escape(CAUTION),
+        chart_style = CHART_STYLE
     )
 }
 
@@ -461,7 +427,7 @@ pub fn detect_and_write(
         "report.html",
         std::fs::write(
             out_dir.join("report.html"),
-            render_report_html(&series.participant, &detection),
+            render_report_html(&series.participant, &detection, priors),
         ),
     )?;
     Ok(detection)
@@ -469,6 +435,8 @@ pub fn detect_and_write(
 
 #[cfg(test)]
 mod tests {
+    use chrono::NaiveDate;
+
     use super::*;
 
     #[test]

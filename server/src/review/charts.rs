@@ -10,7 +10,7 @@ use std::fmt::Write;
 use chrono::{Datelike, NaiveDate};
 
 use super::html::esc;
-use crate::packets::{DayStatus, SignalWindow, WindowDay};
+use crate::packets::{DayStatus, FlagLevel, SignalWindow, WindowDay};
 
 /// Okabe–Ito colours.
 pub mod palette {
@@ -130,10 +130,13 @@ impl Frame {
 
     /// Opening tag, accessible name and description, plot background,
     /// horizontal grid lines with labels.
+    ///
+    /// No `xmlns`: the SVG is always inline in HTML, whose parser puts it in
+    /// the SVG namespace, and the pages and report carry no URL at all.
     fn open(&self, out: &mut String, id: &str, title: &str, desc: &str, unit: &str) {
         let _ = write!(
             out,
-            r#"<svg class="chart" viewBox="0 0 {w} {h}" width="100%" role="img" aria-labelledby="{id}-t {id}-d" xmlns="http://www.w3.org/2000/svg"><title id="{id}-t">{title}</title><desc id="{id}-d">{desc}</desc>"#,
+            r#"<svg class="chart" viewBox="0 0 {w} {h}" width="100%" role="img" aria-labelledby="{id}-t {id}-d"><title id="{id}-t">{title}</title><desc id="{id}-d">{desc}</desc>"#,
             w = self.width,
             h = self.height,
             title = esc(title),
@@ -187,6 +190,18 @@ fn runs(days: &[WindowDay]) -> Vec<&[WindowDay]> {
     out
 }
 
+/// An episode's span on a chart, with its level.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Stretch {
+    pub start: NaiveDate,
+    pub end: NaiveDate,
+    pub level: FlagLevel,
+}
+
+/// Style rules the charts and their legend need, shared by the review pages
+/// and the device's `report.html`.
+pub const CHART_STYLE: &str = include_str!("chart.css");
+
 /// A day-series chart: observed values, personalised mean with 50% and 95%
 /// bands (steps, one per day; breaks where a day has no measurement),
 /// missing days marked on the axis, the flagged stretch shaded, flagged days
@@ -199,8 +214,9 @@ pub struct SeriesChart<'a> {
     pub window: &'a SignalWindow,
     pub window_start: NaiveDate,
     pub window_end: NaiveDate,
-    /// The flagged stretch to shade, if this chart shows a flagged signal.
-    pub flagged: Option<(NaiveDate, NaiveDate)>,
+    /// Episodes to shade, each with its level (Alert darker and solid-edged,
+    /// Watch lighter and dash-edged, each labelled with its level).
+    pub flagged: &'a [Stretch],
     pub height: f64,
     /// The smallest possible value of the signal ([`crate::presentation::floor_of`]):
     /// bands are drawn cut there.
@@ -236,8 +252,14 @@ impl SeriesChart<'_> {
             days.len(),
             missing
         );
-        if let Some((a, b)) = self.flagged {
-            let _ = write!(s, " Flagged stretch {a} to {b}.");
+        for e in self.flagged {
+            let _ = write!(
+                s,
+                " {} episode {} to {}.",
+                level_text(e.level),
+                e.start,
+                e.end
+            );
         }
         if let Some(last) = days.last() {
             let _ = write!(
@@ -301,25 +323,31 @@ impl SeriesChart<'_> {
             self.unit,
         );
 
-        if let Some((a, b)) = self.flagged {
-            let x0 = f.x(idx(a) - 0.5);
-            let x1 = f.x(idx(b) + 0.5);
-            // The label ("episode", as in the legend) starts inside the stretch; where that
+        for e in self.flagged {
+            let x0 = f.x(idx(e.start.max(self.window_start)) - 0.5);
+            let x1 = f.x(idx(e.end.min(self.window_end)) + 0.5);
+            if x1 <= x0 {
+                continue;
+            }
+            // The label (the level, as in the legend) starts inside the stretch; where that
             // would run past the plot's right edge it ends there instead.
-            const LABEL_W: f64 = 48.0;
+            const LABEL_W: f64 = 40.0;
             let (label_x, anchor) = if x0 + 3.0 + LABEL_W > f.left + f.plot_w {
                 (f.left + f.plot_w - 3.0, "end")
             } else {
                 (x0 + 3.0, "start")
             };
+            let (opacity, dash) = stretch_look(e.level);
             let _ = write!(
                 out,
-                r#"<rect x="{x0:.1}" y="{:.1}" width="{:.1}" height="{:.1}" fill="{}" fill-opacity="0.16"/><text x="{label_x:.1}" y="{:.1}" class="tick flag-label" text-anchor="{anchor}">episode</text>"#,
+                r#"<rect x="{x0:.1}" y="{:.1}" width="{:.1}" height="{:.1}" fill="{}" fill-opacity="{opacity}" stroke="{}" stroke-dasharray="{dash}"/><text x="{label_x:.1}" y="{:.1}" class="tick flag-label" text-anchor="{anchor}">{}</text>"#,
                 f.top,
                 (x1 - x0).max(2.0),
                 f.plot_h,
                 palette::ORANGE,
-                f.top + 12.0
+                palette::ORANGE,
+                f.top + 12.0,
+                level_text(e.level)
             );
         }
 
@@ -425,8 +453,10 @@ impl SeriesChart<'_> {
             }
         }
 
-        // Date labels every 7th day from the start; the first label and any
-        // label in a new year carry the year.
+        // Date labels every whole number of weeks from the start, at most
+        // about ten of them; the first label and any label in a new year
+        // carry the year.
+        let step_days = 7 * (n_days / 70.0).ceil().max(1.0) as i64;
         let mut day = self.window_start;
         let mut year = None;
         while day <= self.window_end {
@@ -445,7 +475,7 @@ impl SeriesChart<'_> {
                 f.bottom() + 17.0,
                 label
             );
-            day += chrono::Duration::days(7);
+            day += chrono::Duration::days(step_days);
         }
         out.push_str("</svg>");
         out
@@ -558,6 +588,109 @@ impl ConvergenceChart<'_> {
     }
 }
 
+fn level_text(level: FlagLevel) -> &'static str {
+    match level {
+        FlagLevel::Alert => "Alert",
+        FlagLevel::Watch => "Watch",
+    }
+}
+
+/// Fill opacity and edge dashes of an episode's shading: Alert darker with a
+/// solid edge, Watch lighter with a dashed one (told apart without colour).
+fn stretch_look(level: FlagLevel) -> (f64, &'static str) {
+    match level {
+        FlagLevel::Alert => (0.24, "none"),
+        FlagLevel::Watch => (0.09, "4 3"),
+    }
+}
+
+/// The legend of [`SeriesChart`], the one marker scheme of every day-series
+/// chart; the episode entries only when `with_flag`.
+pub fn series_legend(with_flag: bool) -> String {
+    let mut out = String::from(r#"<ul class="legend" aria-hidden="true">"#);
+    let item = |swatch: &str, text: &str| {
+        format!(r#"<li><svg width="26" height="14" viewBox="0 0 26 14">{swatch}</svg>{text}</li>"#)
+    };
+    out.push_str(&item(
+        &format!(
+            r#"<circle cx="13" cy="7" r="3.2" fill="{}"/>"#,
+            palette::BLACK
+        ),
+        "measured value",
+    ));
+    out.push_str(&item(
+        &format!(
+            r##"<circle cx="13" cy="7" r="3.2" fill="#fff" stroke="{}" stroke-width="1.2"/>"##,
+            palette::BLACK
+        ),
+        "measured, baseline still building",
+    ));
+    if with_flag {
+        out.push_str(&item(
+            &format!(
+                r#"<path d="M13 1 L19 7 L13 13 L7 7 Z" fill="{}" stroke="{}"/>"#,
+                palette::VERMILLION,
+                palette::BLACK
+            ),
+            "alarm day",
+        ));
+        for level in [FlagLevel::Alert, FlagLevel::Watch] {
+            let (opacity, dash) = stretch_look(level);
+            out.push_str(&item(
+                &format!(
+                    r#"<rect x="1" y="1" width="24" height="12" fill="{o}" fill-opacity="{opacity}" stroke="{o}" stroke-dasharray="{dash}"/>"#,
+                    o = palette::ORANGE
+                ),
+                &format!("{} episode", level_text(level)),
+            ));
+        }
+    }
+    out.push_str(&item(
+        &format!(
+            r#"<line x1="1" x2="25" y1="7" y2="7" stroke="{}" stroke-width="2"/>"#,
+            palette::BLUE
+        ),
+        "expected (personal)",
+    ));
+    out.push_str(&item(
+        &format!(
+            r#"<rect x="1" y="2" width="24" height="10" fill="{}" fill-opacity="0.6"/>"#,
+            palette::BLUE
+        ),
+        "personal 50% band",
+    ));
+    out.push_str(&item(
+        &format!(
+            r#"<rect x="1" y="2" width="24" height="10" fill="{}" fill-opacity="0.35"/>"#,
+            palette::SKY_BLUE
+        ),
+        "personal 95% band",
+    ));
+    out.push_str(&item(
+        &format!(
+            r#"<line x1="1" x2="25" y1="7" y2="7" stroke="{}" stroke-width="1.6" stroke-dasharray="7 4"/>"#,
+            palette::REDDISH_PURPLE
+        ),
+        "population-only 95% band",
+    ));
+    out.push_str(&item(
+        &format!(
+            r#"<line x1="1" x2="25" y1="7" y2="7" stroke="{}" stroke-width="1.6" stroke-dasharray="2 4"/>"#,
+            palette::REDDISH_PURPLE
+        ),
+        "population mean",
+    ));
+    out.push_str(&item(
+        &format!(
+            r#"<rect x="9" y="4" width="8" height="6" fill="{}"/>"#,
+            palette::GREY
+        ),
+        "no measurement that day",
+    ));
+    out.push_str("</ul>");
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -624,7 +757,11 @@ mod tests {
             window_start: start,
             window_end: end,
             // One day of a 20-day window is narrower than the label.
-            flagged: Some((end, end)),
+            flagged: &[Stretch {
+                start: end,
+                end,
+                level: FlagLevel::Alert,
+            }],
             height: 220.0,
             floor: crate::presentation::floor_of("steps"),
         };
@@ -634,7 +771,7 @@ mod tests {
     #[test]
     fn the_episode_label_stays_inside_when_the_stretch_ends_the_window() {
         let (svg, _) = steps_chart_svg();
-        let at = svg.find(">episode</text>").expect("episode label");
+        let at = svg.find(">Alert</text>").expect("episode label");
         let tag = &svg[svg[..at].rfind("<text").unwrap()..at];
         assert!(tag.contains(r#"text-anchor="end""#), "{tag}");
     }

@@ -5,6 +5,7 @@
 use std::fmt::Write;
 
 use super::accounts::Session;
+use super::charts::CHART_STYLE;
 
 /// The style sheet, inlined in every page.
 pub const STYLE: &str = include_str!("style.css");
@@ -55,7 +56,7 @@ pub fn page(title: &str, session: Option<&Session>, crumbs: &[(&str, &str)], bod
 <meta charset="utf-8">
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <title>{title} · Plimsoll review</title>
-<style>{STYLE}</style>
+<style>{STYLE}{CHART_STYLE}</style>
 </head>
 <body>
 <a class="skip" href="#main">Skip to content</a>

@@ -7,7 +7,9 @@ use std::fmt::Write;
 use chrono::NaiveDate;
 
 use super::accounts::Session;
-use super::charts::{ConvergenceChart, SeriesChart, fmt_num, marker, palette};
+use super::charts::{
+    ConvergenceChart, SeriesChart, Stretch, fmt_num, marker, palette, series_legend,
+};
 use super::db::{
     Backlog, FlagRecord, ParticipantRow, QueueEntry, QueueFilter, ReviewAction, ReviewStatus,
     StudyOverview,
@@ -608,88 +610,6 @@ pub fn participant(
     )
 }
 
-fn series_legend(with_flag: bool) -> String {
-    let mut out = String::from(r#"<ul class="legend" aria-hidden="true">"#);
-    let item = |swatch: &str, text: &str| {
-        format!(r#"<li><svg width="26" height="14" viewBox="0 0 26 14">{swatch}</svg>{text}</li>"#)
-    };
-    out.push_str(&item(
-        &format!(
-            r#"<circle cx="13" cy="7" r="3.2" fill="{}"/>"#,
-            palette::BLACK
-        ),
-        "measured value",
-    ));
-    out.push_str(&item(
-        &format!(
-            r##"<circle cx="13" cy="7" r="3.2" fill="#fff" stroke="{}" stroke-width="1.2"/>"##,
-            palette::BLACK
-        ),
-        "measured, baseline still building",
-    ));
-    if with_flag {
-        out.push_str(&item(
-            &format!(
-                r#"<path d="M13 1 L19 7 L13 13 L7 7 Z" fill="{}" stroke="{}"/>"#,
-                palette::VERMILLION,
-                palette::BLACK
-            ),
-            "alarm day",
-        ));
-        out.push_str(&item(
-            &format!(
-                r#"<rect x="1" y="1" width="24" height="12" fill="{}" fill-opacity="0.25"/>"#,
-                palette::ORANGE
-            ),
-            "episode",
-        ));
-    }
-    out.push_str(&item(
-        &format!(
-            r#"<line x1="1" x2="25" y1="7" y2="7" stroke="{}" stroke-width="2"/>"#,
-            palette::BLUE
-        ),
-        "expected (personal)",
-    ));
-    out.push_str(&item(
-        &format!(
-            r#"<rect x="1" y="2" width="24" height="10" fill="{}" fill-opacity="0.6"/>"#,
-            palette::BLUE
-        ),
-        "personal 50% band",
-    ));
-    out.push_str(&item(
-        &format!(
-            r#"<rect x="1" y="2" width="24" height="10" fill="{}" fill-opacity="0.35"/>"#,
-            palette::SKY_BLUE
-        ),
-        "personal 95% band",
-    ));
-    out.push_str(&item(
-        &format!(
-            r#"<line x1="1" x2="25" y1="7" y2="7" stroke="{}" stroke-width="1.6" stroke-dasharray="7 4"/>"#,
-            palette::REDDISH_PURPLE
-        ),
-        "population-only 95% band",
-    ));
-    out.push_str(&item(
-        &format!(
-            r#"<line x1="1" x2="25" y1="7" y2="7" stroke="{}" stroke-width="1.6" stroke-dasharray="2 4"/>"#,
-            palette::REDDISH_PURPLE
-        ),
-        "population mean",
-    ));
-    out.push_str(&item(
-        &format!(
-            r#"<rect x="9" y="4" width="8" height="6" fill="{}"/>"#,
-            palette::GREY
-        ),
-        "no measurement that day",
-    ));
-    out.push_str("</ul>");
-    out
-}
-
 fn data_table(chart: &SeriesChart<'_>) -> String {
     let dec = chart.decimals();
     let u = chart.unit;
@@ -743,7 +663,7 @@ fn chart_block(
     window: &SignalWindow,
     start: NaiveDate,
     end: NaiveDate,
-    flagged: Option<(NaiveDate, NaiveDate)>,
+    flagged: &[Stretch],
     height: f64,
 ) -> String {
     let title = label_of(&window.signal);
@@ -764,7 +684,7 @@ fn chart_block(
         out,
         "<figcaption>{}</figcaption>{}{}</figure>",
         esc(&chart.description()),
-        series_legend(flagged.is_some()),
+        series_legend(!flagged.is_empty()),
         data_table(&chart)
     );
     out
@@ -870,7 +790,11 @@ pub fn flag(
         esc(&reason_numbers(record)),
         departures_table(p),
     );
-    let flagged_span = Some((p.first_day, p.last_day));
+    let flagged_span = [Stretch {
+        start: p.first_day,
+        end: p.last_day,
+        level: p.level,
+    }];
     let involved = p.involved_signals();
     let (main, others): (Vec<&SignalWindow>, Vec<&SignalWindow>) = if involved.is_empty() {
         (p.signals.iter().collect(), Vec::new())
@@ -908,7 +832,7 @@ pub fn flag(
             w,
             p.window_start,
             p.window_end,
-            flagged_span,
+            &flagged_span,
             300.0,
         ));
     }
@@ -921,7 +845,7 @@ pub fn flag(
                 w,
                 p.window_start,
                 p.window_end,
-                flagged_span,
+                &flagged_span,
                 200.0,
             ));
         }
