@@ -440,8 +440,8 @@ fn marker(shape: &str, x: f64, y: f64, colour: &str) -> String {
     }
 }
 
-/// SVG: sensitivity (y) against false alarms per participant-month (x), one
-/// line per method over the threshold sweep.
+/// SVG: sensitivity (y) against false alarm episodes per participant-month
+/// (x), one line per method over the threshold sweep.
 pub fn render_svg(report: &EvaluationReport) -> String {
     let caution_lines = wrap_words(CAUTION, 118);
     let caution_height = 13.0 * caution_lines.len() as f64;
@@ -480,7 +480,7 @@ pub fn render_svg(report: &EvaluationReport) -> String {
     );
     let _ = write!(
         s,
-        r#"<title id="t">Sensitivity against false alarms per participant-month</title>"#
+        r#"<title id="t">Sensitivity against false alarm episodes per participant-month</title>"#
     );
     let mut desc = String::from("Threshold sweep per method. ");
     for m in &report.methods {
@@ -535,7 +535,7 @@ pub fn render_svg(report: &EvaluationReport) -> String {
     );
     let _ = write!(
         s,
-        r#"<text x="{:.1}" y="{:.1}" text-anchor="middle">False alarm-days per participant-month outside target events (log scale)</text>"#,
+        r#"<text x="{:.1}" y="{:.1}" text-anchor="middle">False alarm episodes per participant-month (no alarm day in a target event; log scale)</text>"#,
         left + pw / 2.0,
         top + ph + 44.0
     );
