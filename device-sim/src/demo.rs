@@ -332,7 +332,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         run.history.last().map_or(0, |p| p.version)
     )?;
     // The unit sits with the signal's name, so every number column lines up;
-    // decimals suit the signal (steps whole, temperature in hundredths).
+    // values at the signal's precision, as in the flags' reasons.
     writeln!(
         out,
         "  {:<40} {:>10} {:>11} {:>14} {:>12} {:>9}",
@@ -343,12 +343,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         let signal: Signal = p.signal.parse()?;
         let prior = PriorParams::from_slice(signal, &p.values).context("prior vector")?;
         let s = prior.summary();
-        let dec = match signal {
-            Signal::Steps => 0,
-            Signal::Sleep | Signal::SkinTempDelta => 2,
-            _ => 1,
-        };
-        let v = |x: f64| grouped(x, dec);
+        let v = |x: f64| crate::flags::fmt_number(signal, x);
         writeln!(
             out,
             "  {:<40} {:>10} {:>11} {:>14.1} {:>12} {:>9}",
@@ -477,47 +472,13 @@ fn convergence_rows(n: usize) -> Vec<usize> {
     rows
 }
 
-/// `x` with `decimals` decimals and thousands separated by commas ("7,688").
-fn grouped(x: f64, decimals: usize) -> String {
-    let text = format!("{:.decimals$}", x.abs());
-    let (int, frac) = text
-        .split_once('.')
-        .map_or((text.as_str(), ""), |(i, f)| (i, f));
-    let mut out = String::new();
-    for (i, c) in int.chars().enumerate() {
-        if i > 0 && (int.len() - i) % 3 == 0 {
-            out.push(',');
-        }
-        out.push(c);
-    }
-    if !frac.is_empty() {
-        out.push('.');
-        out.push_str(frac);
-    }
-    // Never "-0": a value that rounds to zero is shown unsigned.
-    if x < 0.0 && out.bytes().any(|b| (b'1'..=b'9').contains(&b)) {
-        out.insert(0, '-');
-    }
-    out
-}
-
 #[cfg(test)]
 mod tests {
-    use super::{convergence_rows, grouped};
+    use super::convergence_rows;
 
     #[test]
     fn convergence_rows_keep_first_and_last() {
         assert_eq!(convergence_rows(3), vec![0, 1, 2]);
         assert_eq!(convergence_rows(80), vec![0, 1, 2, 3, 4, 9, 19, 39, 79]);
-    }
-
-    #[test]
-    fn thousands_are_grouped_and_minus_zero_is_not_shown() {
-        assert_eq!(grouped(7688.38, 0), "7,688");
-        assert_eq!(grouped(1234567.891, 1), "1,234,567.9");
-        assert_eq!(grouped(999.0, 0), "999");
-        assert_eq!(grouped(-2519.86, 0), "-2,520");
-        assert_eq!(grouped(-0.001, 2), "0.00");
-        assert_eq!(grouped(0.26, 2), "0.26");
     }
 }

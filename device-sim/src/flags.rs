@@ -93,6 +93,7 @@
 //! at k = 0.5, h = 4 and 5, checked in the tests). Rates are per observed day of a stream.
 
 use chrono::NaiveDate;
+use plimsoll_server::presentation::group_thousands;
 use serde::Serialize;
 use statrs::distribution::{ChiSquared, ContinuousCDF, Normal};
 
@@ -938,36 +939,11 @@ fn step_cusum<P>(
     (false, flag)
 }
 
-/// Decimal places used to show a value of a signal.
-fn decimals(signal: Signal) -> usize {
-    match signal {
-        Signal::RestingHr | Signal::HrvRmssd | Signal::RespRate => 1,
-        Signal::Sleep | Signal::SkinTempDelta => 2,
-        Signal::Steps => 0,
-    }
-}
-
-/// `1234567` → `"1,234,567"`.
-fn group_thousands(n: u64) -> String {
-    let digits = n.to_string();
-    let mut out = String::with_capacity(digits.len() + digits.len() / 3);
-    for (i, c) in digits.chars().enumerate() {
-        if i > 0 && (digits.len() - i).is_multiple_of(3) {
-            out.push(',');
-        }
-        out.push(c);
-    }
-    out
-}
-
-/// A value of a signal as a number, at the signal's precision (steps with thousands commas).
-fn fmt_number(signal: Signal, v: f64) -> String {
-    if signal == Signal::Steps {
-        let sign = if v < -0.5 { "-" } else { "" };
-        format!("{sign}{}", group_thousands(v.abs().round() as u64))
-    } else {
-        format!("{v:.*}", decimals(signal))
-    }
+/// A value of a signal as a number, at the signal's precision (steps with
+/// thousands commas): the review pages' own rule
+/// ([`plimsoll_server::presentation::fmt_signal_value`]).
+pub(crate) fn fmt_number(signal: Signal, v: f64) -> String {
+    plimsoll_server::presentation::fmt_signal_value(signal.column(), v)
 }
 
 /// A value of a signal with its unit, e.g. `74.2 bpm`.
@@ -1172,7 +1148,6 @@ mod tests {
 
     #[test]
     fn reasons_state_the_numbers() {
-        assert_eq!(group_thousands(1_234_567), "1,234,567");
         assert_eq!(one_in_days(1.0 / 2_034.0), "about 1 in 2,000 days");
         assert_eq!(one_in_days(0.2), "about 1 in 5 days");
         assert_eq!(one_in_days(0.0), "fewer than 1 in a million days");

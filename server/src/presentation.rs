@@ -85,6 +85,53 @@ pub fn floor_of(signal: &str) -> Option<f64> {
     }
 }
 
+/// Decimal places a value of a signal is shown with, everywhere a person
+/// reads one (review pages, device reports, reasons): whole steps, hours and
+/// degrees to hundredths, the rest to tenths.
+pub fn decimals_of(signal: &str) -> usize {
+    match unit_of(signal) {
+        "steps" => 0,
+        "h" | "°C" => 2,
+        _ => 1,
+    }
+}
+
+/// `1234567` → `"1,234,567"`.
+pub fn group_thousands(n: u64) -> String {
+    let digits = n.to_string();
+    let mut out = String::with_capacity(digits.len() + digits.len() / 3);
+    for (i, c) in digits.chars().enumerate() {
+        if i > 0 && (digits.len() - i).is_multiple_of(3) {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
+
+/// A value of a signal at its precision ([`decimals_of`]), thousands grouped
+/// when shown whole ("7,688"); never "-0"; "–" when not finite.
+pub fn fmt_signal_value(signal: &str, v: f64) -> String {
+    if !v.is_finite() {
+        return "–".into();
+    }
+    let decimals = decimals_of(signal);
+    let text = format!("{:.decimals$}", v.abs());
+    let (int, frac) = text.split_once('.').unwrap_or((&text, ""));
+    let mut out = match int.parse::<u64>() {
+        Ok(n) => group_thousands(n),
+        Err(_) => int.to_owned(),
+    };
+    if !frac.is_empty() {
+        out.push('.');
+        out.push_str(frac);
+    }
+    if v < 0.0 && out.bytes().any(|b| (b'1'..=b'9').contains(&b)) {
+        out.insert(0, '-');
+    }
+    out
+}
+
 /// Plain-language name of a signal column for display.
 pub fn label_of(signal: &str) -> String {
     match signal {
@@ -101,6 +148,20 @@ pub fn label_of(signal: &str) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn values_at_the_signals_precision_with_thousands_grouped() {
+        assert_eq!(group_thousands(1_234_567), "1,234,567");
+        assert_eq!(group_thousands(999), "999");
+        assert_eq!(fmt_signal_value("steps", 29481.6), "29,482");
+        assert_eq!(fmt_signal_value("steps", -2519.86), "-2,520");
+        assert_eq!(fmt_signal_value("hrv_rmssd_ms", 96.54), "96.5");
+        assert_eq!(fmt_signal_value("resting_hr_bpm", 1234.56), "1,234.6");
+        assert_eq!(fmt_signal_value("sleep_h", 6.987), "6.99");
+        assert_eq!(fmt_signal_value("skin_temp_delta_c", -0.001), "0.00");
+        assert_eq!(fmt_signal_value("skin_temp_delta_c", -0.26), "-0.26");
+        assert_eq!(fmt_signal_value("steps", f64::NAN), "–");
+    }
 
     #[test]
     fn only_the_temperature_deviation_may_go_below_zero() {

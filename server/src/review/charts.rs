@@ -233,15 +233,14 @@ impl SeriesChart<'_> {
             .collect()
     }
 
-    /// Decimals suited to this signal's values.
-    pub fn decimals(&self) -> usize {
-        let p = &self.window.population;
-        decimals_for(p.hi95 - p.lo95)
+    /// A value of this chart's signal as every page shows one
+    /// ([`crate::presentation::fmt_signal_value`]).
+    pub fn value(&self, v: f64) -> String {
+        crate::presentation::fmt_signal_value(&self.window.signal, v)
     }
 
     /// One-sentence summary for screen readers.
     pub fn description(&self) -> String {
-        let dec = self.decimals();
         let days = &self.window.days;
         let missing = self.missing_dates().len();
         let mut s = format!(
@@ -266,10 +265,10 @@ impl SeriesChart<'_> {
                 s,
                 " Last measurement {}: {} {u}, expected {} {u} (95% band {} to {}).",
                 last.date,
-                fmt_num(last.observed, dec),
-                fmt_num(last.mean, dec),
-                fmt_num(last.lo95, dec),
-                fmt_num(last.hi95, dec),
+                self.value(last.observed),
+                self.value(last.mean),
+                self.value(last.lo95),
+                self.value(last.hi95),
                 u = self.unit
             );
         }
@@ -277,8 +276,8 @@ impl SeriesChart<'_> {
         let _ = write!(
             s,
             " Population-only 95% band {} to {} {}.",
-            fmt_num(p.lo95, dec),
-            fmt_num(p.hi95, dec),
+            self.value(p.lo95),
+            self.value(p.hi95),
             self.unit
         );
         if let Some(floor) = self.floor {
@@ -415,17 +414,16 @@ impl SeriesChart<'_> {
             );
         }
 
-        let dec = self.decimals();
         for d in &self.window.days {
             let (x, y) = (f.x(idx(d.date)), f.y(d.observed));
             let tip = format!(
                 "{}: {} {}, expected {} (95% {} to {}), z = {:.2}",
                 d.date,
-                fmt_num(d.observed, dec),
+                self.value(d.observed),
                 self.unit,
-                fmt_num(d.mean, dec),
-                fmt_num(d.lo95, dec),
-                fmt_num(d.hi95, dec),
+                self.value(d.mean),
+                self.value(d.lo95),
+                self.value(d.hi95),
                 d.z
             );
             if d.status == DayStatus::Flagged {

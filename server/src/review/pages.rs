@@ -16,7 +16,7 @@ use super::db::{
 };
 use super::html::{esc, page};
 use crate::packets::{DayStatus, FlagLevel, FlagPacket, PatternDirection, SignalWindow};
-use crate::presentation::{floor_of, label_of, plain_prior, unit_of};
+use crate::presentation::{floor_of, fmt_signal_value, label_of, plain_prior, unit_of};
 
 /// A UTC timestamp for display.
 pub fn utc(ms: i64) -> String {
@@ -154,9 +154,11 @@ pub fn overview(session: &Session, o: &StudyOverview, now_ms: i64) -> String {
             .unwrap_or(&layout.initial);
         let plain = plain_prior(layout, values);
         let unit = unit_of(&layout.signal);
-        let dec = super::charts::decimals_for(layout.reference_scale * 4.0);
         let v = |x: Option<f64>, unit: &str| {
-            x.map_or_else(|| "–".into(), |x| format!("{} {unit}", fmt_num(x, dec)))
+            x.map_or_else(
+                || "–".into(),
+                |x| format!("{} {unit}", fmt_signal_value(&layout.signal, x)),
+            )
         };
         let _ = write!(
             body,
@@ -611,7 +613,6 @@ pub fn participant(
 }
 
 fn data_table(chart: &SeriesChart<'_>) -> String {
-    let dec = chart.decimals();
     let u = chart.unit;
     let mut out = format!(
         r#"<details><summary>{} as a table</summary><table><caption>{} ({}), every day of the window</caption><thead><tr><th scope="col">Date</th><th scope="col" class="num">Measured</th><th scope="col" class="num">Expected</th><th scope="col" class="num">50% band</th><th scope="col" class="num">95% band</th><th scope="col" class="num">z</th><th scope="col">Day</th></tr></thead><tbody>"#,
@@ -631,12 +632,12 @@ fn data_table(chart: &SeriesChart<'_>) -> String {
                 let _ = write!(
                     out,
                     r#"<tr><th scope="row">{day}</th><td class="num">{}</td><td class="num">{}</td><td class="num">{} – {}</td><td class="num">{} – {}</td><td class="num">{:.2}</td><td>{status}{}</td></tr>"#,
-                    fmt_num(d.observed, dec),
-                    fmt_num(d.mean, dec),
-                    fmt_num(d.lo50, dec),
-                    fmt_num(d.hi50, dec),
-                    fmt_num(d.lo95, dec),
-                    fmt_num(d.hi95, dec),
+                    chart.value(d.observed),
+                    chart.value(d.mean),
+                    chart.value(d.lo50),
+                    chart.value(d.hi50),
+                    chart.value(d.lo95),
+                    chart.value(d.hi95),
                     d.z,
                     if d.conditioned {
                         ""
