@@ -11,6 +11,7 @@ mod federated;
 mod flag_packets;
 mod gp_reference;
 mod load_short;
+mod metrics;
 mod pooled;
 mod prospective;
 mod review_access;

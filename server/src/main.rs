@@ -29,8 +29,18 @@ struct Cli {
     /// SQLite database holding all studies, devices, rounds and priors.
     #[arg(long, global = true, default_value = "plimsoll-aggregator.db")]
     db: PathBuf,
+    /// Log lines as plain text or as one JSON object per line (for a log
+    /// collector).
+    #[arg(long, global = true, value_enum, default_value_t = LogFormat::Text)]
+    log_format: LogFormat,
     #[command(subcommand)]
     command: Command,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+enum LogFormat {
+    Text,
+    Json,
 }
 
 #[derive(Debug, Subcommand)]
@@ -46,6 +56,11 @@ enum Command {
         /// 127.0.0.1:8080.
         #[arg(long)]
         review_listen: Option<SocketAddr>,
+        /// Also serve operator metrics (OpenMetrics text, which Prometheus
+        /// scrapes) at GET /metrics on this address, e.g. 127.0.0.1:9464.
+        /// Plain HTTP: counts and latencies only, no participant data.
+        #[arg(long)]
+        metrics_listen: Option<SocketAddr>,
         /// Server certificate chain (PEM), e.g. from `dev-certificate`.
         #[arg(long, requires = "tls_key")]
         tls_cert: Option<PathBuf>,
@@ -186,15 +201,19 @@ fn reviewer_command(db: &std::path::Path, command: ReviewerCommand) -> anyhow::R
 
 #[tokio::main]
 async fn main() -> anyhow::Result<()> {
-    tracing_subscriber::fmt()
-        .with_writer(std::io::stderr)
-        // Colour codes only on a terminal: a redirected log stays plain text.
-        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
-        .with_env_filter(
-            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
-        )
-        .init();
     let cli = Cli::parse();
+    let filter =
+        tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into());
+    let log = tracing_subscriber::fmt()
+        .with_writer(std::io::stderr)
+        .with_env_filter(filter);
+    match cli.log_format {
+        LogFormat::Json => log.json().init(),
+        // Colour codes only on a terminal: a redirected log stays plain text.
+        LogFormat::Text => log
+            .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
+            .init(),
+    }
     let open = || -> anyhow::Result<Arc<Coordinator>> {
         Ok(Arc::new(Coordinator::open(&cli.db).with_context(|| {
             format!("opening database {}", cli.db.display())
@@ -207,6 +226,7 @@ async fn main() -> anyhow::Result<()> {
         Command::Serve {
             listen,
             review_listen,
+            metrics_listen,
             tls_cert,
             tls_key,
             insecure_plaintext,
@@ -248,7 +268,26 @@ async fn main() -> anyhow::Result<()> {
                 }
                 None => None,
             };
+            let metrics = match metrics_listen {
+                Some(addr) => {
+                    let listener = tokio::net::TcpListener::bind(addr)
+                        .await
+                        .with_context(|| format!("binding {addr}"))?;
+                    let running = plimsoll_server::metrics::serve_metrics(
+                        listener,
+                        server.metrics.clone(),
+                        &cli.db,
+                    )
+                    .await?;
+                    println!("metrics on http://{}/metrics", running.addr);
+                    Some(running)
+                }
+                None => None,
+            };
             tokio::signal::ctrl_c().await?;
+            if let Some(metrics) = metrics {
+                metrics.shutdown().await?;
+            }
             if let Some(review) = review {
                 review.shutdown().await?;
             }

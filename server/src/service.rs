@@ -357,6 +357,9 @@ pub async fn run_deadline_ticker(coordinator: Arc<Coordinator>, period: Duration
 #[derive(Debug)]
 pub struct RunningServer {
     pub addr: SocketAddr,
+    /// The calls this server answered, for a metrics listener
+    /// ([`crate::metrics::serve_metrics`]).
+    pub metrics: Arc<crate::metrics::Metrics>,
     shutdown: Option<tokio::sync::oneshot::Sender<()>>,
     task: tokio::task::JoinHandle<Result<(), tonic::transport::Error>>,
 }
@@ -406,6 +409,8 @@ pub async fn serve_with(
     if let Some(tls) = tls {
         builder = builder.tls_config(tls.grpc_config())?;
     }
+    let metrics = Arc::new(crate::metrics::Metrics::new());
+    let mut builder = builder.layer(crate::metrics::RpcMetricsLayer::new(metrics.clone()));
     let task = tokio::spawn(
         builder
             .add_service(health_service)
@@ -417,6 +422,7 @@ pub async fn serve_with(
     );
     tracing::info!(%addr, tls = tls.is_some(), "aggregator listening");
     Ok(RunningServer {
+        metrics,
         addr,
         shutdown: Some(tx),
         task,
