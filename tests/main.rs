@@ -14,6 +14,7 @@ mod load_short;
 mod metrics;
 mod pooled;
 mod prospective;
+mod python_device;
 mod review_access;
 mod review_browser;
 mod review_login_limits;

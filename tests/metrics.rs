@@ -22,7 +22,7 @@ const STUDY: &str = "metrics-study";
 const INSTALL_HINT: &str = "the Python reference tools are missing: run scripts/install-python-tools.sh (scripts/test does)";
 
 /// The test environment's Python, made by `scripts/install-python-tools.sh`.
-fn python_tools() -> PathBuf {
+pub fn python_tools() -> PathBuf {
     let python = std::env::var_os("PLIMSOLL_PYTHON_TOOLS")
         .map(PathBuf::from)
         .unwrap_or_else(|| {
