@@ -8,6 +8,7 @@ mod device_identity;
 mod episodes;
 mod evaluation;
 mod federated;
+mod fhir_export;
 mod flag_packets;
 mod gp_reference;
 mod load_short;

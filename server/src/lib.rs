@@ -14,6 +14,7 @@ pub mod aggregate;
 pub mod coverage;
 pub mod detection;
 pub mod error;
+pub mod fhir;
 pub mod metrics;
 pub mod packets;
 pub mod presentation;

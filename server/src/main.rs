@@ -111,6 +111,19 @@ enum Command {
     },
     /// Print each study's progress.
     Status,
+    /// Write reviewed episodes as FHIR R4 Bundles (JSON), one file per
+    /// episode: `episode-<id>.fhir.json` (see docs/fhir.md).
+    ExportFhir {
+        /// Study whose reviewed episodes (those with a review action) are written.
+        #[arg(long)]
+        study: String,
+        /// Only this episode (its id in the review pages), reviewed or not.
+        #[arg(long)]
+        episode: Option<u64>,
+        /// Folder to write into (created if missing).
+        #[arg(long, default_value = "fhir")]
+        out: PathBuf,
+    },
 }
 
 #[derive(Debug, Subcommand)]
@@ -333,6 +346,39 @@ async fn main() -> anyhow::Result<()> {
             }
         },
         Command::Reviewer { command } => reviewer_command(&cli.db, command)?,
+        Command::ExportFhir {
+            study,
+            episode,
+            out,
+        } => {
+            let store = store()?;
+            let ids: Vec<u64> = match episode {
+                Some(id) => vec![id],
+                None => plimsoll_server::review::db::queue(
+                    &store,
+                    &study,
+                    &plimsoll_server::review::db::QueueFilter::default(),
+                )?
+                .into_iter()
+                .filter(|e| e.status != plimsoll_server::review::db::ReviewStatus::New)
+                .map(|e| e.packet_id)
+                .collect(),
+            };
+            std::fs::create_dir_all(&out).with_context(|| format!("creating {}", out.display()))?;
+            for id in &ids {
+                let record = plimsoll_server::review::db::flag(&store, *id)?
+                    .filter(|r| r.study_id == study)
+                    .with_context(|| format!("no episode {id} in study `{study}`"))?;
+                let path = out.join(format!("episode-{id}.fhir.json"));
+                let bundle = plimsoll_server::fhir::episode_bundle(&record);
+                std::fs::write(&path, serde_json::to_string_pretty(&bundle)? + "\n")
+                    .with_context(|| format!("writing {}", path.display()))?;
+                println!("wrote {}", path.display());
+            }
+            if ids.is_empty() {
+                println!("no reviewed episode in study `{study}`: nothing written");
+            }
+        }
         Command::DevCertificate { out, hosts, days } => {
             let files = write_dev_certificate(&out, &hosts, days)?;
             println!(

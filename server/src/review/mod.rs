@@ -252,6 +252,7 @@ pub fn router(state: Arc<ReviewState>) -> Router {
         )
         .route("/flag/{packet_id}", get(flag_detail))
         .route("/flag/{packet_id}/action", post(flag_action))
+        .route("/flag/{packet_id}/fhir", get(flag_fhir))
         .fallback(|| async {
             html(
                 StatusCode::NOT_FOUND,
@@ -606,6 +607,40 @@ async fn flag_detail(
         StatusCode::OK,
     )
     .await
+}
+
+/// The episode as a FHIR R4 Bundle (JSON download; see [`crate::fhir`]).
+async fn flag_fhir(
+    State(state): State<Arc<ReviewState>>,
+    headers: HeaderMap,
+    UrlPath(packet_id): UrlPath<u64>,
+) -> Response {
+    let session = match require_session(&state, &headers).await {
+        Ok(s) => s,
+        Err(r) => return r,
+    };
+    match state.with_store(move |s| db::flag(s, packet_id)).await {
+        Ok(Some(record)) if session.may_see(&record.study_id) => {
+            let body = serde_json::to_string_pretty(&crate::fhir::episode_bundle(&record))
+                .expect("a JSON value serialises");
+            let mut r = (StatusCode::OK, body).into_response();
+            let h = r.headers_mut();
+            h.insert(
+                header::CONTENT_TYPE,
+                HeaderValue::from_static("application/fhir+json; fhirVersion=4.0"),
+            );
+            h.insert(
+                header::CONTENT_DISPOSITION,
+                HeaderValue::from_str(&format!(
+                    "attachment; filename=\"episode-{packet_id}.fhir.json\""
+                ))
+                .expect("ASCII header"),
+            );
+            secure(r)
+        }
+        Ok(_) => not_found(&session),
+        Err(r) => r,
+    }
 }
 
 async fn render_flag(

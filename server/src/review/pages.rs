@@ -26,6 +26,14 @@ pub fn utc(ms: i64) -> String {
     )
 }
 
+/// A timestamp as RFC 3339 in UTC with milliseconds (`2024-04-11T08:30:00.000Z`).
+pub fn rfc3339(ms: i64) -> String {
+    chrono::DateTime::from_timestamp_millis(ms).map_or_else(
+        || "1970-01-01T00:00:00.000Z".into(),
+        |t| t.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+    )
+}
+
 fn level_badge(level: FlagLevel) -> String {
     let (class, text) = match level {
         FlagLevel::Alert => ("level-alert", "Alert"),
@@ -905,6 +913,11 @@ pub fn flag(
         }
         body.push_str("</tbody></table>");
     }
+    let _ = write!(
+        body,
+        r#"<p><a id="fhir" href="/flag/{}/fhir" download>Download this episode as FHIR R4 (JSON)</a>: the window's daily values as Observations, the episode as a DetectedIssue with the caution, and the review actions as Provenance.</p>"#,
+        record.packet_id
+    );
     let title = format!(
         "{} — {}, episode {}",
         signal_name(p.signal.as_deref()),
