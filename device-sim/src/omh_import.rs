@@ -46,7 +46,8 @@
 //! A point that cannot be used is refused and reported ([`PointIssue`]: file, position — the
 //! line of a newline-delimited file, the index of an array — JSON pointer of the bad field, and
 //! reason); every good point is kept. A point a rule leaves out on purpose (a heart rate not at
-//! rest, HRV by another algorithm) is skipped and counted, not refused. Per point the value must
+//! rest, HRV by another algorithm, a repeat of a point with the same `header.id` and content) is
+//! skipped and counted, not refused; another point reusing a `header.id` is refused. Per point the value must
 //! be finite and within the plausible range of `docs/data-format.md` (sleep 0–24 h and steps
 //! 0–100000 per point as well as per day; absolute temperature 20–45 °C). When a day's sum or a
 //! night's deviation falls outside the range, every point of that day is refused.
@@ -55,7 +56,7 @@
 //! Plain files in, plain values out: no runtime, RPC or protobuf type. Rows are written by the
 //! cohort writer ([`cohort::DailyWriter`]), so the output reads back with the cohort reader.
 
-use std::collections::{BTreeMap, BTreeSet};
+use std::collections::{BTreeMap, BTreeSet, HashMap};
 use std::fmt;
 use std::path::{Path, PathBuf};
 
@@ -111,16 +112,20 @@ impl fmt::Display for PointIssue {
     /// `day.json [12] /body/heart_rate/unit: unknown unit `bpm`, expected `beats/min``, with
     /// `day.ndjson:3` for a line and the bare file name for a single-point file.
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        write!(f, "{}", self.file.display())?;
-        match self.position {
-            Position::Whole => {}
-            Position::Line(line) => write!(f, ":{line}")?,
-            Position::Index(index) => write!(f, " [{index}]")?,
-        }
+        write!(f, "{}", place(&self.file, self.position))?;
         if !self.pointer.is_empty() {
             write!(f, " {}", self.pointer)?;
         }
         write!(f, ": {}", self.reason)
+    }
+}
+
+/// `file.json`, `file.json:3` (a line) or `file.json [12]` (an array index).
+fn place(file: &Path, position: Position) -> String {
+    match position {
+        Position::Whole => file.display().to_string(),
+        Position::Line(line) => format!("{}:{line}", file.display()),
+        Position::Index(index) => format!("{} [{index}]", file.display()),
     }
 }
 
@@ -214,6 +219,18 @@ enum Reading {
 pub const SKIP_NOT_AT_REST: &str = "heart rate not at rest";
 /// Skip reason of an HRV point computed by another algorithm than RMSSD.
 pub const SKIP_NOT_RMSSD: &str = "heart rate variability not RMSSD";
+/// Skip reason of a data point repeated with the same `header.id` and content (an export read
+/// twice, overlapping exports).
+pub const SKIP_DUPLICATE: &str = "repeated data point (same header.id and content)";
+
+/// A hash of a data point's content, to tell a repeated point from a different one reusing its
+/// `header.id` (serde_json keeps object keys sorted, so equal points print equally).
+fn point_hash(point: &Value) -> u64 {
+    use std::hash::{Hash, Hasher};
+    let mut hasher = std::collections::hash_map::DefaultHasher::new();
+    point.to_string().hash(&mut hasher);
+    hasher.finish()
+}
 
 /// How a day's points combine.
 fn is_summed(signal: Signal) -> bool {
@@ -231,11 +248,18 @@ fn is_overnight(signal: Signal) -> bool {
 /// Reads the inputs, maps every data point, and writes `daily.csv` (unless nothing is usable).
 pub fn import_omh(options: &ImportOptions) -> Result<ImportReport, ImportError> {
     let files = input_files(&options.inputs)?;
+    if !options.overwrite && options.out.exists() {
+        return Err(ImportError::OutputExists {
+            path: options.out.clone(),
+        });
+    }
     let mut refused = Vec::new();
     let mut skipped: BTreeMap<&'static str, usize> = BTreeMap::new();
     let mut user_ids = BTreeSet::new();
     let mut measures: Vec<(usize, Position, Measure)> = Vec::new();
     let mut points_read = 0;
+    // header.id → where it was first seen and a hash of that point.
+    let mut seen: HashMap<String, (usize, Position, u64)> = HashMap::new();
     for (file_index, path) in files.iter().enumerate() {
         let bytes = std::fs::read(path).map_err(|source| ImportError::Io {
             path: path.clone(),
@@ -257,6 +281,29 @@ pub fn import_omh(options: &ImportOptions) -> Result<ImportReport, ImportError> 
                     continue;
                 }
             };
+            if let Some(id) = point.pointer("/header/id").and_then(Value::as_str) {
+                let hash = point_hash(&point);
+                match seen.get(id) {
+                    None => {
+                        seen.insert(id.to_owned(), (file_index, position, hash));
+                    }
+                    Some(&(_, _, first)) if first == hash => {
+                        *skipped.entry(SKIP_DUPLICATE).or_default() += 1;
+                        continue;
+                    }
+                    Some(&(first_file, first_position, _)) => {
+                        refused.push(issue(refuse(
+                            "/header/id",
+                            format!(
+                                "header.id `{}` already used by {} with different content",
+                                cohort::echo(id),
+                                place(&files[first_file], first_position)
+                            ),
+                        )));
+                        continue;
+                    }
+                }
+            }
             let (user_id, reading) = interpret(&point);
             if let Some(id) = user_id {
                 user_ids.insert(id);
@@ -384,16 +431,13 @@ fn split_points(text: &str) -> Vec<(Position, Result<Value, String>)> {
         Ok(value) => return vec![(Position::Whole, Ok(value))],
         Err(e) => e,
     };
-    // Newline-delimited when there are several non-blank lines and the first is JSON by itself;
-    // otherwise the file is one broken JSON text, reported once.
-    let mut lines = text
-        .split('\n')
-        .enumerate()
-        .filter(|(_, l)| !l.trim().is_empty());
-    let first_is_json = lines
-        .next()
-        .is_some_and(|(_, l)| serde_json::from_str::<Value>(l).is_ok());
-    if !(first_is_json && lines.next().is_some()) {
+    // Newline-delimited when there are several non-blank lines and one of them is a JSON object
+    // by itself (a line of a pretty-printed object never is); otherwise the file is one broken
+    // JSON text, reported once.
+    let non_blank = || text.split('\n').filter(|l| !l.trim().is_empty());
+    let has_object_line =
+        non_blank().any(|l| serde_json::from_str::<Value>(l).is_ok_and(|v| v.is_object()));
+    if !(has_object_line && non_blank().nth(1).is_some()) {
         return vec![(Position::Whole, Err(format!("not JSON: {whole_error}")))];
     }
     text.split('\n')
@@ -784,11 +828,6 @@ fn write_days(
     participant: &str,
     days: &BTreeMap<Signal, BTreeMap<NaiveDate, Day>>,
 ) -> Result<usize, ImportError> {
-    if !options.overwrite && options.out.exists() {
-        return Err(ImportError::OutputExists {
-            path: options.out.clone(),
-        });
-    }
     if let Some(parent) = options.out.parent().filter(|p| !p.as_os_str().is_empty()) {
         std::fs::create_dir_all(parent).map_err(|e| CohortError::Io {
             path: parent.to_owned(),

@@ -5,10 +5,11 @@
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
+use std::sync::atomic::{AtomicUsize, Ordering};
 
 use plimsoll_device::cohort::{BadRowPolicy, NaiveDate, ParticipantSeries, read_cohort};
 use plimsoll_device::omh_import::{
-    ImportError, ImportOptions, ImportReport, SKIP_NOT_AT_REST, import_omh,
+    ImportError, ImportOptions, ImportReport, SKIP_DUPLICATE, SKIP_NOT_AT_REST, import_omh,
 };
 use plimsoll_device::signal::Signal;
 use serde_json::{Value, json};
@@ -18,8 +19,10 @@ const BIN: &str = env!("CARGO_BIN_EXE_plimsoll");
 /// A data point: header as in `schema/omh/header-1.0.json` (`schema_id` with namespace, name,
 /// version; `creation_date_time`; `user_id`), body as given.
 fn point(name: &str, version: &str, user_id: Option<&str>, body: Value) -> Value {
+    static NEXT_ID: AtomicUsize = AtomicUsize::new(1);
+    let n = NEXT_ID.fetch_add(1, Ordering::Relaxed);
     let mut header = json!({
-        "id": "0d3b9f43-8a63-4a4c-9a5e-1f1d6a1e2b01",
+        "id": format!("0d3b9f43-8a63-4a4c-9a5e-{n:012}"),
         "schema_id": {"namespace": "omh", "name": name, "version": version},
         "creation_date_time": "2024-03-04T09:00:00+01:00",
     });
@@ -418,6 +421,68 @@ fn refused_points_name_file_position_field_and_reason_and_good_points_stay() {
     close(value(&series, Signal::RestingHr, "2024-03-02"), 61.0, 1e-9);
     close(value(&series, Signal::RespRate, "2024-03-02"), 15.0, 1e-9);
     assert!(!series.values.contains_key(&Signal::Sleep));
+}
+
+#[test]
+fn a_repeated_data_point_is_counted_once_and_a_reused_id_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let first = dir.path().join("export-1.json");
+    let second = dir.path().join("export-2.json");
+    let walk = steps(
+        5000.0,
+        interval("2024-03-02T08:00:00+01:00", "2024-03-02T20:00:00+01:00"),
+    );
+    let mut reused = steps(
+        700.0,
+        interval("2024-03-02T20:00:00+01:00", "2024-03-02T22:00:00+01:00"),
+    );
+    reused["header"]["id"] = walk["header"]["id"].clone();
+    write_array(&first, std::slice::from_ref(&walk));
+    // The second export overlaps the first: the same point again, and another under its id.
+    write_array(&second, &[walk, reused]);
+    let out = dir.path().join("c/daily.csv");
+    let report = import(&[&first, &second], None, &out);
+    assert_eq!(report.skipped.get(SKIP_DUPLICATE), Some(&1));
+    assert_eq!(report.refused.len(), 1, "{:?}", report.refused);
+    let issue = report.refused[0].to_string();
+    let expected = format!(
+        "{} [1] /header/id: header.id `{}` already used by {} [0]",
+        second.display(),
+        report_id(&first),
+        first.display()
+    );
+    assert!(issue.starts_with(&expected), "{issue}");
+    close(
+        value(&read_back(&out), Signal::Steps, "2024-03-02"),
+        5000.0,
+        0.0,
+    );
+}
+
+fn report_id(file: &Path) -> String {
+    let points: Value = serde_json::from_str(&std::fs::read_to_string(file).unwrap()).unwrap();
+    points[0]["header"]["id"].as_str().unwrap().to_owned()
+}
+
+#[test]
+fn newline_delimited_lines_stand_alone_even_when_the_first_is_broken() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("lines.json");
+    let good = heart_rate(59.0, "at rest", at("2024-03-02T07:00:00+01:00"));
+    std::fs::write(&input, format!("{{\"header\": {{\n\n{good}\n")).unwrap();
+    let out = dir.path().join("c/daily.csv");
+    let report = import(&[&input], None, &out);
+    assert_eq!((report.points_read, report.points_used), (2, 1));
+    let issue = report.refused[0].to_string();
+    assert!(
+        issue.starts_with(&format!("{}:1: line is not JSON", input.display())),
+        "{issue}"
+    );
+    close(
+        value(&read_back(&out), Signal::RestingHr, "2024-03-02"),
+        59.0,
+        1e-9,
+    );
 }
 
 #[test]
