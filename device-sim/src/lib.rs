@@ -16,6 +16,8 @@
 //! - [`device_report`]: what a device writes about its participant (CSV, JSON, HTML).
 //! - [`evaluate`]: detection methods compared against ground-truth events.
 //! - [`cohort`]: the shared CSV format (reader, writer) and the simulator.
+//! - [`omh_import`]: open mHealth (IEEE 1752.1) JSON data points of one participant to
+//!   `daily.csv`.
 //! - [`client`], [`wire`]: the gRPC side of a device.
 //! - [`demo`]: the end-to-end demo.
 //! - [`scheduler`]: federated training of a large in-process cohort with a bounded pool of
@@ -32,6 +34,7 @@ pub mod evaluate;
 pub mod flags;
 pub mod gp;
 pub mod gp_ss;
+pub mod omh_import;
 pub mod packets;
 pub mod participate;
 pub mod personal;

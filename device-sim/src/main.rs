@@ -17,6 +17,7 @@ use plimsoll_device::evaluate::run::{
     DEFAULT_BUDGET_PER_MONTH, DEFAULT_LOCAL_FIT_DAYS, DEFAULT_TARGET_KIND, EvaluationSettings,
 };
 use plimsoll_device::flags::FlagLevel;
+use plimsoll_device::omh_import::{ImportOptions, ImportReport, import_omh};
 use plimsoll_device::participate::{ParticipateOptions, run_participate};
 use plimsoll_device::signal::Signal;
 use plimsoll_server::{LocalTraining, StudyConfig};
@@ -211,6 +212,34 @@ enum Command {
         /// and copies the bad rows to <out>/quarantine/; `abort` stops at the first.
         #[arg(long, value_enum, default_value_t = OnBadRow::Quarantine)]
         on_bad_row: OnBadRow,
+    },
+    /// Convert one participant's open mHealth (IEEE 1752.1) JSON data points into daily.csv.
+    ///
+    /// Reads heart-rate (at rest only; others are skipped), heart-rate-variability (RMSSD;
+    /// others are skipped), sleep-duration, body-temperature, step-count and respiratory-rate
+    /// data points. A day is the date of the timestamp in its own offset; sleep, HRV, skin
+    /// temperature and respiratory rate belong to the day of waking (the interval's end). Steps
+    /// and sleep are summed per day, the rest averaged. skin_temp_delta_c is each night's mean
+    /// temperature minus the reference: the median of the participant's nightly temperatures
+    /// over all imported nights. Refused data points are listed with file, position ([index]
+    /// in an array, :line in newline-delimited JSON), JSON pointer and reason; good points are
+    /// kept. Exits non-zero when nothing usable was read or an input cannot be read. See
+    /// docs/data-format.md.
+    ImportOmh {
+        /// Files or folders of data points (a folder: every *.json in it, in name order). A
+        /// file holds one data point, a JSON array of them, or one per line.
+        #[arg(required = true)]
+        inputs: Vec<PathBuf>,
+        /// Participant label, [A-Za-z0-9_-]{1,64}; default: the data points' header.user_id
+        /// (refused when neither is known or they disagree).
+        #[arg(long)]
+        participant: Option<String>,
+        /// The daily.csv to write.
+        #[arg(long, default_value = "daily.csv")]
+        out: PathBuf,
+        /// Replace --out if it exists.
+        #[arg(long)]
+        force: bool,
     },
 }
 
@@ -501,6 +530,24 @@ async fn main() -> anyhow::Result<()> {
             })
             .await
         }
+        Command::ImportOmh {
+            inputs,
+            participant,
+            out,
+            force,
+        } => {
+            let report = import_omh(&ImportOptions {
+                inputs,
+                participant,
+                out,
+                overwrite: force,
+            })?;
+            print_import_report(&report);
+            if report.written.is_none() {
+                anyhow::bail!("nothing usable was read; no daily.csv written");
+            }
+            Ok(())
+        }
     }
 }
 
@@ -625,5 +672,51 @@ fn print_summary(s: &SimulationSummary, out: &std::path::Path) {
     println!("Missing-data rate per signal (share of participant-days without a value):");
     for (signal, rate) in &s.missing_rate {
         println!("  {:<20} {:>5.1}%", signal.column(), 100.0 * rate);
+    }
+}
+
+/// Largest number of refused points listed one by one.
+const MAX_LISTED_ISSUES: usize = 50;
+
+fn print_import_report(r: &ImportReport) {
+    println!(
+        "{} read from {}: {} used, {} skipped, {} refused",
+        counted(r.points_read, "data point", "data points"),
+        counted(r.files, "file", "files"),
+        r.points_used,
+        r.points_skipped(),
+        r.refused.len()
+    );
+    for (reason, n) in &r.skipped {
+        println!("  skipped: {n} × {reason}");
+    }
+    if !r.refused.is_empty() {
+        println!("Refused:");
+        for issue in r.refused.iter().take(MAX_LISTED_ISSUES) {
+            println!("  {issue}");
+        }
+        if r.refused.len() > MAX_LISTED_ISSUES {
+            println!("  … and {} more", r.refused.len() - MAX_LISTED_ISSUES);
+        }
+    }
+    if let Some((reference, nights)) = r.skin_temp_reference {
+        println!(
+            "Skin temperature reference: {reference:.2} °C (median of {})",
+            counted(nights, "night", "nights")
+        );
+    }
+    if let Some(out) = &r.written {
+        let per_signal: Vec<String> = r
+            .days_per_signal
+            .iter()
+            .map(|(signal, n)| format!("{} {n}", signal.column()))
+            .collect();
+        println!(
+            "Wrote {} for participant {}: {} ({})",
+            out.display(),
+            r.participant,
+            counted(r.days_written, "day", "days"),
+            per_signal.join(", ")
+        );
     }
 }

@@ -40,7 +40,7 @@ mod simulate;
 mod writer;
 
 pub use reader::{
-    Groups, read_cohort, read_daily, read_events, read_participants, write_quarantine,
+    Groups, echo, read_cohort, read_daily, read_events, read_participants, write_quarantine,
 };
 pub use scenario::{
     ArtifactModel, CycleModel, GroupLevel, GroupSpec, IllnessModel, MissingModel, PerSignal,
