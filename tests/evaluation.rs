@@ -190,6 +190,56 @@ async fn evaluate_command_end_to_end() {
         );
     }
 
+    // Disparities: for every group column of participants.csv, each method has one entry per
+    // matched level with a threshold, its levels' figures and their spread (checked here
+    // against the levels listed beside it); the CSV holds one row per column level.
+    let group_columns: std::collections::BTreeSet<String> = methods[0]["subgroups"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|g| g["column"].as_str().unwrap().to_owned())
+        .filter(|c| c != "all" && c != "days_since_start")
+        .collect();
+    assert!(
+        !group_columns.is_empty(),
+        "the simulated cohort has group columns"
+    );
+    let mut csv_rows = 0;
+    for m in methods {
+        for d in m["disparities"].as_array().unwrap() {
+            assert!(group_columns.contains(d["column"].as_str().unwrap()), "{d}");
+            let levels = d["levels"].as_array().unwrap();
+            csv_rows += levels.len();
+            let sens: Vec<f64> = levels
+                .iter()
+                .filter_map(|l| l["sensitivity"].as_f64())
+                .collect();
+            if sens.len() >= 2 {
+                let spread = sens.iter().copied().fold(f64::MIN, f64::max)
+                    - sens.iter().copied().fold(f64::MAX, f64::min);
+                assert!((d["sensitivity_disparity"].as_f64().unwrap() - spread).abs() < 1e-12);
+            }
+        }
+        let columns: std::collections::BTreeSet<&str> = m["disparities"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|d| d["column"].as_str().unwrap())
+            .collect();
+        assert_eq!(
+            columns.len(),
+            group_columns.len(),
+            "every group column, {}",
+            m["method"]
+        );
+    }
+    let disparity_csv = std::fs::read_to_string(&outcome.disparity_csv).unwrap();
+    assert_eq!(
+        disparity_csv.lines().count(),
+        csv_rows + 1,
+        "header plus one row per level"
+    );
+
     // SVG: one polyline per method.
     let svg = std::fs::read_to_string(&outcome.svg).unwrap();
     assert!(svg.starts_with("<svg"));

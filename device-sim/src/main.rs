@@ -613,6 +613,7 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
     println!("Outputs:");
     println!("  table (CSV):   {}", outcome.csv.display());
     println!("  matched (CSV): {}", outcome.matched_csv.display());
+    println!("  disparity (CSV): {}", outcome.disparity_csv.display());
     println!("  report (JSON): {}", outcome.json.display());
     println!("  curves (SVG):  {}", outcome.svg.display());
     println!("  shared prior:  {}", outcome.prior.display());

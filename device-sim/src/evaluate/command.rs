@@ -16,7 +16,9 @@ use indicatif::{ProgressBar, ProgressStyle};
 use plimsoll_server::{LocalTraining, Optimizer, StudyConfig};
 
 use super::prior_file::{read_prior_file, write_prior_file};
-use super::report::{EvaluationReport, render_svg, write_csv, write_json, write_matched_csv};
+use super::report::{
+    EvaluationReport, render_svg, write_csv, write_disparity_csv, write_json, write_matched_csv,
+};
 use super::run::{EvaluationSettings, evaluate_cohort};
 use crate::client::MIN_DAYS_TO_ENROLL;
 use crate::cohort::{BadRowPolicy, Cohort, QuarantineFile, read_cohort, write_quarantine_files};
@@ -55,6 +57,7 @@ pub struct EvaluationOutcome {
     pub report: EvaluationReport,
     pub csv: PathBuf,
     pub matched_csv: PathBuf,
+    pub disparity_csv: PathBuf,
     pub json: PathBuf,
     pub svg: PathBuf,
     pub prior: PathBuf,
@@ -186,6 +189,9 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
     let matched_csv = opts.out_dir.join("evaluation-matched.csv");
     write_matched_csv(&report, &matched_csv)
         .with_context(|| format!("writing {}", matched_csv.display()))?;
+    let disparity_csv = opts.out_dir.join("evaluation-disparity.csv");
+    write_disparity_csv(&report, &disparity_csv)
+        .with_context(|| format!("writing {}", disparity_csv.display()))?;
     let svg = opts.out_dir.join("evaluation.svg");
     write_csv(&report, &csv).with_context(|| format!("writing {}", csv.display()))?;
     write_json(&report, &json).with_context(|| format!("writing {}", json.display()))?;
@@ -195,6 +201,7 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
         report,
         csv,
         matched_csv,
+        disparity_csv,
         json,
         svg,
         prior: prior_path,

@@ -43,6 +43,9 @@ pub struct MethodSummary {
     pub curve: Vec<CurvePoint>,
     /// Sensitivity at matched false alarm episode rates (`settings.matched_levels`).
     pub matched: Vec<MatchedPoint>,
+    /// Per group column and matched level: each level's figures at the whole cohort's
+    /// threshold and their disparity (max − min).
+    pub disparities: Vec<crate::evaluate::sweep::GroupDisparity>,
     /// Area under sensitivity against false alarm episodes per participant-month, 0 to 1,
     /// divided by 1 (see `docs/evaluation.md`).
     pub partial_auc_to_1: Option<f64>,
@@ -187,6 +190,7 @@ impl MethodSummary {
                 .collect(),
             curve,
             matched: Vec::new(),
+            disparities: Vec::new(),
             partial_auc_to_1: None,
             alert_threshold: Calibrated {
                 threshold: f64::NAN,
@@ -277,6 +281,7 @@ pub fn render_table(report: &EvaluationReport) -> String {
         s.push('\n');
     }
     s.push_str(&render_matched(report));
+    s.push_str(&render_disparities(report));
     s.push_str("Rows above: at each method's calibrated Alert threshold. FAep/mo: false alarm episodes per\n");
     s.push_str("participant-month (episodes with no alarm day in a target event); FAd/mo: false alarm-days. Lead: median days from\n");
     s.push_str("event start / symptom onset to the first alarm (negative = before). cover 95: share of event-free\n");
@@ -320,6 +325,84 @@ pub fn render_matched(report: &EvaluationReport) -> String {
     }
     s.push('\n');
     s
+}
+
+/// The disparity table: per group column, each method's spread of sensitivity and of false
+/// alarm episodes across the column's levels at each matched level.
+pub fn render_disparities(report: &EvaluationReport) -> String {
+    let mut s = String::new();
+    let mut columns: Vec<&str> = report
+        .methods
+        .iter()
+        .flat_map(|m| m.disparities.iter().map(|d| d.column.as_str()))
+        .collect();
+    columns.sort_unstable();
+    columns.dedup();
+    for column in columns {
+        let _ = writeln!(
+            s,
+            "Disparity across `{column}` at matched false alarm episodes (sensitivity max − min, points / false alarm episodes max ÷ min)"
+        );
+        let _ = write!(s, "{:<15}", "method");
+        for l in &report.settings.matched_levels {
+            let _ = write!(s, " {:>16}", format!("at {l}"));
+        }
+        s.push('\n');
+        for m in &report.methods {
+            let _ = write!(s, "{:<15}", m.method);
+            for l in &report.settings.matched_levels {
+                let cell = m
+                    .disparities
+                    .iter()
+                    .find(|d| d.column == column && d.matched_level == *l)
+                    .map_or_else(
+                        || "–".to_owned(),
+                        |d| {
+                            format!(
+                                "{} / {}",
+                                opt(d.sensitivity_disparity.map(|x| 100.0 * x), 1),
+                                d.false_alarm_ratio
+                                    .map_or_else(|| "–".to_owned(), |r| format!("{r:.2}×"))
+                            )
+                        },
+                    );
+                let _ = write!(s, " {cell:>16}");
+            }
+            s.push('\n');
+        }
+        s.push('\n');
+    }
+    s
+}
+
+/// CSV of the disparities: one row per method, group column, matched level and column level.
+pub fn write_disparity_csv(report: &EvaluationReport, path: &Path) -> std::io::Result<()> {
+    let mut s = String::from(
+        "method,group_column,false_alarm_episodes_per_participant_month,threshold,group_level,participants,sensitivity,achieved_false_alarm_episodes,sensitivity_disparity,false_alarm_disparity,false_alarm_ratio\n",
+    );
+    let f = |v: Option<f64>| v.map(|x| format!("{x:.6}")).unwrap_or_default();
+    for m in &report.methods {
+        for d in &m.disparities {
+            for p in &d.levels {
+                let _ = writeln!(
+                    s,
+                    "{},{},{},{:.6},{},{},{},{},{},{},{}",
+                    m.method,
+                    csv_field(&d.column),
+                    d.matched_level,
+                    d.threshold,
+                    csv_field(&p.level),
+                    p.participants,
+                    f(p.sensitivity),
+                    f(p.false_alarm_episodes_per_participant_month),
+                    f(d.sensitivity_disparity),
+                    f(d.false_alarm_disparity),
+                    f(d.false_alarm_ratio)
+                );
+            }
+        }
+    }
+    std::fs::write(path, s)
 }
 
 /// CSV of the matched table: one row per method and level.
@@ -381,7 +464,7 @@ false_alarms_per_participant_month,false_alarm_episodes_per_participant_month,me
 }
 
 fn csv_field(v: &str) -> String {
-    if v.contains([',', '"', '\n']) {
+    if v.contains([',', '"', '\n', '\r']) {
         format!("\"{}\"", v.replace('"', "\"\""))
     } else {
         v.to_owned()

@@ -305,6 +305,16 @@ pub fn evaluate_cohort(
         let curve = sweep.curve();
         let matched = sweep.matched(&sweep::MATCHED_LEVELS);
         let pauc = sweep::partial_auc(&curve, 1.0);
+        let group_values: Vec<&BTreeMap<String, String>> = scored
+            .iter()
+            .map(|s| {
+                cohort
+                    .groups
+                    .get(&cohort.participants[s.index].participant)
+                    .unwrap_or(&no_groups)
+            })
+            .collect();
+        let disparities = sweep::disparities(&truths, &group_values, gap, &matched);
 
         let mut acc = Accumulator::with_periods(periods.clone());
         for s in &scored {
@@ -325,6 +335,7 @@ pub fn evaluate_cohort(
             curve,
         );
         summary.matched = matched;
+        summary.disparities = disparities;
         summary.partial_auc_to_1 = pauc;
         summary.alert_threshold = alert;
         summary.watch_threshold = watch;

@@ -83,6 +83,102 @@ pub fn matched(truths: &[Truth<'_>], rule: Grouping, levels: &[f64]) -> Vec<Matc
     Sweep::new(truths, rule).matched(levels)
 }
 
+/// One level of a group column at a matched threshold.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct GroupPoint {
+    pub level: String,
+    pub participants: usize,
+    pub sensitivity: Option<f64>,
+    pub false_alarm_episodes_per_participant_month: Option<f64>,
+}
+
+/// How far a group column's levels lie apart when the whole cohort's threshold for one matched
+/// level is applied to each of them.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct GroupDisparity {
+    /// Group column of `participants.csv`.
+    pub column: String,
+    /// The matched level (false alarm episodes per participant-month over the whole cohort).
+    pub matched_level: f64,
+    /// The whole cohort's threshold at that level.
+    pub threshold: f64,
+    /// Every level of the column, in name order.
+    pub levels: Vec<GroupPoint>,
+    /// Highest minus lowest sensitivity across the levels that have target events.
+    pub sensitivity_disparity: Option<f64>,
+    /// Highest minus lowest false alarm episode rate across the levels.
+    pub false_alarm_disparity: Option<f64>,
+    /// Highest over lowest false alarm episode rate (`null` when the lowest is 0).
+    pub false_alarm_ratio: Option<f64>,
+}
+
+/// The spread of `values` (max − min), `None` with fewer than two.
+fn spread(values: &[f64]) -> Option<f64> {
+    let max = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let min = values.iter().copied().fold(f64::INFINITY, f64::min);
+    (values.len() >= 2).then_some(max - min)
+}
+
+/// For each group column and each matched point with a threshold: every level's sensitivity
+/// and false alarm episode rate at that (whole-cohort) threshold, and their disparities.
+/// `groups[i]` holds participant `truths[i]`'s group values; a participant without a value in a
+/// column is left out of that column.
+pub fn disparities(
+    truths: &[Truth<'_>],
+    groups: &[&std::collections::BTreeMap<String, String>],
+    rule: Grouping,
+    matched: &[MatchedPoint],
+) -> Vec<GroupDisparity> {
+    use std::collections::BTreeMap;
+    let mut columns: BTreeMap<&str, BTreeMap<&str, Vec<Truth<'_>>>> = BTreeMap::new();
+    for (t, g) in truths.iter().zip(groups) {
+        for (column, level) in g.iter() {
+            columns
+                .entry(column.as_str())
+                .or_default()
+                .entry(level.as_str())
+                .or_default()
+                .push(t.clone());
+        }
+    }
+    let mut out = Vec::new();
+    for (column, levels) in &columns {
+        for m in matched {
+            let Some(h) = m.threshold else { continue };
+            let points: Vec<GroupPoint> = levels
+                .iter()
+                .map(|(level, members)| {
+                    let p = at_threshold(members, h, rule);
+                    GroupPoint {
+                        level: (*level).to_owned(),
+                        participants: members.len(),
+                        sensitivity: p.sensitivity,
+                        false_alarm_episodes_per_participant_month: p
+                            .false_alarm_episodes_per_participant_month,
+                    }
+                })
+                .collect();
+            let sens: Vec<f64> = points.iter().filter_map(|p| p.sensitivity).collect();
+            let fa: Vec<f64> = points
+                .iter()
+                .filter_map(|p| p.false_alarm_episodes_per_participant_month)
+                .collect();
+            let fa_min = fa.iter().copied().fold(f64::INFINITY, f64::min);
+            let fa_max = fa.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+            out.push(GroupDisparity {
+                column: (*column).to_owned(),
+                matched_level: m.false_alarm_episodes_per_participant_month,
+                threshold: h,
+                sensitivity_disparity: spread(&sens),
+                false_alarm_disparity: spread(&fa),
+                false_alarm_ratio: (fa.len() >= 2 && fa_min > 0.0).then(|| fa_max / fa_min),
+                levels: points,
+            });
+        }
+    }
+    out
+}
+
 /// One participant as the sweep reads it: day numbers instead of dates, each day's target
 /// membership worked out once, and only the days that can alarm at a threshold of the sweep.
 #[derive(Debug)]
@@ -397,4 +493,104 @@ pub fn partial_auc(curve: &[CurvePoint], max_fa: f64) -> Option<f64> {
     }
     area += y0 * (max_fa - x0);
     Some(area / max_fa)
+}
+
+#[cfg(test)]
+mod tests {
+    use std::collections::BTreeMap;
+
+    use super::*;
+
+    fn day(d: u32) -> NaiveDate {
+        NaiveDate::from_ymd_opt(2024, 1, d).unwrap()
+    }
+
+    /// 30 scored days, score 0 except `high` days at 3.
+    fn days(high: &[u32]) -> Vec<Compact> {
+        (1..=30)
+            .map(|d| Compact {
+                date: day(d),
+                score: if high.contains(&d) { 3.0 } else { 0.0 },
+                window_days: 1,
+            })
+            .collect()
+    }
+
+    #[test]
+    fn disparities_of_a_hand_worked_cohort() {
+        let event = |who: &str| Event {
+            participant: who.into(),
+            kind: "acute_illness".into(),
+            start: day(9),
+            end: day(11),
+            symptom_onset: None,
+        };
+        let (ea, eb) = (event("a"), event("b"));
+        let (ta, tb) = ([&ea], [&eb]);
+        // a (sensor x): alarm on day 10, inside its illness: detected, no false alarm.
+        // b (sensor y): no alarm in its illness, one alarm on day 20: missed, one false episode.
+        // c (no sensor recorded): left out of the column.
+        let (da, db, dc) = (days(&[10]), days(&[20]), days(&[5]));
+        let truths = [
+            Truth {
+                first_date: Some(day(1)),
+                days: &da,
+                targets: &ta,
+            },
+            Truth {
+                first_date: Some(day(1)),
+                days: &db,
+                targets: &tb,
+            },
+            Truth {
+                first_date: Some(day(1)),
+                days: &dc,
+                targets: &[],
+            },
+        ];
+        let group = |v: Option<&str>| {
+            v.map(|v| BTreeMap::from([("sensor".to_owned(), v.to_owned())]))
+                .unwrap_or_default()
+        };
+        let (ga, gb, gc) = (group(Some("x")), group(Some("y")), group(None));
+        let matched = [MatchedPoint {
+            false_alarm_episodes_per_participant_month: 0.3,
+            threshold: Some(2.0),
+            achieved_false_alarm_episodes: None,
+            sensitivity: None,
+            median_lead_from_start_days: None,
+        }];
+        let rule = Grouping {
+            merge_gap_days: 3,
+            max_episode_days: 14,
+        };
+        let d = disparities(&truths, &[&ga, &gb, &gc], rule, &matched);
+        assert_eq!(d.len(), 1);
+        let d = &d[0];
+        assert_eq!((d.column.as_str(), d.threshold), ("sensor", 2.0));
+        assert_eq!(
+            d.levels.iter().map(|p| p.participants).sum::<usize>(),
+            2,
+            "c left out"
+        );
+        assert_eq!(d.levels[0].sensitivity, Some(1.0));
+        assert_eq!(d.levels[1].sensitivity, Some(0.0));
+        // b: 1 false episode over 27 days outside its illness, per month of 30.4375 days.
+        let fa_b = 1.0 / (27.0 / 30.4375);
+        assert_eq!(
+            d.levels[0].false_alarm_episodes_per_participant_month,
+            Some(0.0)
+        );
+        assert!(
+            (d.levels[1]
+                .false_alarm_episodes_per_participant_month
+                .unwrap()
+                - fa_b)
+                .abs()
+                < 1e-12
+        );
+        assert_eq!(d.sensitivity_disparity, Some(1.0));
+        assert!((d.false_alarm_disparity.unwrap() - fa_b).abs() < 1e-12);
+        assert_eq!(d.false_alarm_ratio, None, "the lowest rate is 0");
+    }
 }
