@@ -473,8 +473,8 @@ pub struct Backlog {
     pub updated_since_review: usize,
 }
 
-/// Every enrolled participant of `study_id`, in enrolment order, with their
-/// data summary and episode counts.
+/// Every enrolled participant of `study_id`, by label, with their data
+/// summary and episode counts.
 pub fn participants(store: &Store, study_id: &str) -> Result<Vec<ParticipantRow>> {
     let mut summaries: std::collections::HashMap<u64, (crate::coverage::DataSummary, i64)> = store
         .data_summaries(study_id)?
@@ -488,8 +488,9 @@ pub fn participants(store: &Store, study_id: &str) -> Result<Vec<ParticipantRow>
         c.0 += 1;
         c.1 += usize::from(entry.1.status == ReviewStatus::New);
     }
-    Ok(store
-        .devices(study_id)?
+    let mut devices = store.devices(study_id)?;
+    devices.sort_by(|a, b| a.label.cmp(&b.label));
+    Ok(devices
         .into_iter()
         .map(|d| {
             let (episodes, episodes_new) = counts.get(&d.device_id).copied().unwrap_or_default();

@@ -498,7 +498,7 @@ fn lead_view(o: &StudyOverview, now_ms: i64) -> String {
             );
             let _ = write!(
                 body,
-                r#"<tr><th scope="row">{}</th><td>{shared}</td><td class="num">{}</td><td>{}</td>{}<td class="num">{} ({})</td></tr>"#,
+                r#"<tr><th scope="row">{}</th><td>{shared}</td><td class="num">{}</td><td class="date">{}</td>{}<td class="num">{} ({})</td></tr>"#,
                 participant_link(id, &p.label),
                 esc(&span),
                 esc(&last),
