@@ -49,6 +49,7 @@ fn options(cohort: &Path, out: &Path, prior: Option<PathBuf>) -> EvaluateOptions
         settings,
         progress: false,
         bad_rows: plimsoll_device::cohort::BadRowPolicy::Quarantine,
+        groups: Default::default(),
     }
 }
 

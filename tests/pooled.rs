@@ -9,7 +9,7 @@ use std::sync::Arc;
 use plimsoll_device::cohort::{self, BadRowPolicy, Cohort, Scenario, SimulateOptions};
 use plimsoll_device::demo::cohort_signals;
 use plimsoll_device::scheduler::{
-    Channels, PhaseBars, PoolOptions, enroll_all, run_federated_pooled, train_enrolled,
+    Channels, Declared, PhaseBars, PoolOptions, enroll_all, run_federated_pooled, train_enrolled,
 };
 use plimsoll_server::Coordinator;
 use plimsoll_server::service::now_ms;
@@ -99,7 +99,16 @@ async fn a_revoked_device_is_dropped_and_the_others_finish() {
     };
     let channels = Channels::connect(server.addr, pool.connections).unwrap();
     let members: Vec<usize> = (0..n).collect();
-    let enrolment = enroll_all(&channels, "revoked", &code, &cohort, &members, &pool, None)
+    let enrolment = enroll_all(
+        &channels,
+        "revoked",
+        &code,
+        &cohort,
+        &members,
+        &Declared::default(),
+        &pool,
+        None,
+    )
         .await
         .unwrap();
     assert_eq!(enrolment.devices.len(), n);
@@ -196,6 +205,8 @@ fn a_study_cannot_be_started_early_below_its_quorum_or_twice() {
                     consent_share_flags: false,
                     enrollment_code: &code,
                     device_secret: &secret.repeat(32),
+                    sensor_model: "",
+                    group_label: "",
                 },
                 now_ms(),
             )

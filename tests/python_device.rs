@@ -37,6 +37,8 @@ async fn rust_device(address: AggregatorAddress, code: String, label: &str, days
             signals: vec!["resting_hr_bpm".into(), "hrv_rmssd_ms".into()],
             sharing: FlagSharing::Withheld,
             device_secret: &secret,
+            sensor_model: "",
+            group_label: "",
         },
     )
     .await

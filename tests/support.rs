@@ -32,6 +32,8 @@ pub fn study_config(id: &str, signals: &[Signal], devices: u32, rounds: u32) -> 
         alert_budget_per_participant_month:
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
         review_level: plimsoll_server::packets::FlagLevel::Alert,
+        sensor_models: None,
+        subgroups: None,
     }
 }
 
@@ -100,6 +102,8 @@ impl TestServer {
                 signals: signals.iter().map(|s| (*s).to_owned()).collect(),
                 sharing,
                 device_secret: secret,
+                sensor_model: "",
+                group_label: "",
             },
         )
         .await

@@ -85,6 +85,8 @@ async fn devices_train_over_grpc_with_tls_and_untrusted_clients_get_nothing() {
             signals: vec!["resting_hr_bpm".into()],
             sharing: FlagSharing::Withheld,
             device_secret: &secret,
+            sensor_model: "",
+            group_label: "",
         },
     )
     .await

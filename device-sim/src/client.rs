@@ -65,6 +65,10 @@ pub struct DeviceOptions {
     /// The device's secret from an earlier run (enrolling again with it is
     /// a retry that returns the same device id); `None` draws a new one.
     pub device_secret: Option<String>,
+    /// The device's sensor model, declared at enrolment when the study lists models.
+    pub sensor_model: Option<String>,
+    /// The participant's level of the study's group column, declared at enrolment.
+    pub group_label: Option<String>,
 }
 
 /// The participant's choice, recorded at enrolment, about sharing flag
@@ -107,6 +111,10 @@ pub struct EnrollmentRequest<'a> {
     /// The device's secret ([`new_device_secret`]); the same secret makes a
     /// repeated enrolment a retry.
     pub device_secret: &'a str,
+    /// The device's sensor model, when the study lists models (empty otherwise).
+    pub sensor_model: &'a str,
+    /// The participant's level of the study's group column (empty when it has none).
+    pub group_label: &'a str,
 }
 
 impl std::fmt::Debug for EnrollmentRequest<'_> {
@@ -117,6 +125,8 @@ impl std::fmt::Debug for EnrollmentRequest<'_> {
             .field("participant", &self.participant)
             .field("signals", &self.signals)
             .field("sharing", &self.sharing)
+            .field("sensor_model", &self.sensor_model)
+            .field("group_label", &self.group_label)
             .finish_non_exhaustive()
     }
 }
@@ -135,6 +145,8 @@ pub async fn enroll(
         consent_share_flags: e.sharing.consented(),
         enrollment_code: e.enrollment_code.to_owned(),
         device_secret: e.device_secret.to_owned(),
+        sensor_model: e.sensor_model.to_owned(),
+        group_label: e.group_label.to_owned(),
     };
     let device_id = retry(&Backoff::default(), seed_of(e.participant), || {
         let mut c = client.clone();
@@ -457,6 +469,8 @@ pub async fn run_device_with(
             signals: local.iter().map(|(s, _)| s.column().to_owned()).collect(),
             sharing,
             device_secret: &secret,
+            sensor_model: opts.sensor_model.as_deref().unwrap_or_default(),
+            group_label: opts.group_label.as_deref().unwrap_or_default(),
         },
     )
     .await?;

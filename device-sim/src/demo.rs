@@ -114,6 +114,8 @@ fn demo_config(opts: &DemoOptions, title: String, signals: &[Signal], n: u32) ->
         alert_budget_per_participant_month:
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
         review_level: plimsoll_server::packets::FlagLevel::Alert,
+        sensor_models: None,
+        subgroups: None,
     }
 }
 
@@ -206,6 +208,8 @@ pub async fn run_federated_with(
             wait_ms: 5_000,
             seed: 0x5eed_0000 + i as u64,
             device_secret: None,
+            sensor_model: None,
+            group_label: None,
         };
         tasks.spawn(run_device_with(
             channel.clone(),

@@ -11,7 +11,7 @@ use plimsoll_device::cohort::{
 };
 use plimsoll_device::demo::{DemoOptions, initial_layouts, run_demo};
 use plimsoll_device::device_report::{CAUTION, counted};
-use plimsoll_device::evaluate::command::{EvaluateOptions, run_evaluation};
+use plimsoll_device::evaluate::command::{EvaluateOptions, GroupOptions, run_evaluation};
 use plimsoll_device::evaluate::report::render_table;
 use plimsoll_device::evaluate::run::{
     DEFAULT_BUDGET_PER_MONTH, DEFAULT_LOCAL_FIT_DAYS, DEFAULT_TARGET_KIND, EvaluationSettings,
@@ -20,6 +20,7 @@ use plimsoll_device::flags::FlagLevel;
 use plimsoll_device::omh_import::{ImportOptions, ImportReport, import_omh};
 use plimsoll_device::participate::{ParticipateOptions, run_participate};
 use plimsoll_device::signal::Signal;
+use plimsoll_server::aggregate::AggregationRule;
 use plimsoll_server::{LocalTraining, StudyConfig};
 
 #[derive(Debug, Parser)]
@@ -159,6 +160,12 @@ enum Command {
         /// clinical reviewers (recorded at enrolment; default: nothing shared).
         #[arg(long)]
         share_flags: bool,
+        /// The device's sensor model, when the study lists models (`GetStudy` names them).
+        #[arg(long)]
+        sensor_model: Option<String>,
+        /// The participant's level of the study's group column, when it has one.
+        #[arg(long)]
+        group_label: Option<String>,
         /// Allow http:// to a host that is not loopback.
         #[arg(long)]
         insecure_plaintext: bool,
@@ -212,6 +219,29 @@ enum Command {
         /// and copies the bad rows to <out>/quarantine/; `abort` stops at the first.
         #[arg(long, value_enum, default_value_t = OnBadRow::Quarantine)]
         on_bad_row: OnBadRow,
+        /// participants.csv column naming each participant's sensor model: learn a
+        /// sensor-aware prior (per-model mean offset and measurement noise, pooled for a
+        /// model with fewer than 10 devices).
+        #[arg(long)]
+        sensor_column: Option<String>,
+        /// participants.csv column whose level each device reports at enrolment (used by
+        /// --aggregation group-rank:λ).
+        #[arg(long)]
+        group_column: Option<String>,
+        /// How each round's updates are combined: `fedavg`, `group-rank:λ` (group-loss-ranked
+        /// reweighting over --group-column) or `q-fedavg:q`.
+        #[arg(long, value_parser = parse_rule, default_value = "fedavg")]
+        aggregation: AggregationRule,
+        /// Calibrate each method's alarm threshold per level of this participants.csv column
+        /// (levels with fewer than 10 participants use the whole cohort's).
+        #[arg(long)]
+        calibrate_per_group: Option<String>,
+        /// Learn the prior once per aggregation setting (FedAvg; with --sensor-column the
+        /// sensor-aware prior; group-rank with --group-column; q-FedAvg) and compare the
+        /// federated method's sensitivity and subgroup disparities; writes
+        /// evaluation-aggregation.csv and .json instead of the usual outputs.
+        #[arg(long)]
+        compare_aggregation: bool,
     },
     /// Convert one participant's open mHealth (IEEE 1752.1) JSON data points into daily.csv.
     ///
@@ -294,6 +324,35 @@ fn read_enrollment_code() -> anyhow::Result<String> {
 }
 
 /// Parses a positive number of episodes per participant-month, e.g. `0.3`.
+/// `--aggregation`: `fedavg`, `group-rank:λ` or `q-fedavg:q`.
+fn parse_rule(text: &str) -> Result<AggregationRule, String> {
+    let (name, value) = text.split_once(':').unwrap_or((text, ""));
+    let number = |what: &str| -> Result<f64, String> {
+        value
+            .trim()
+            .parse::<f64>()
+            .map_err(|e| format!("`{text}`: expected {name}:{what} with a number, e.g. {name}:1 ({e})"))
+    };
+    let rule = match name.trim() {
+        "fedavg" if value.is_empty() => AggregationRule::Fedavg,
+        "group-rank" => AggregationRule::GroupRank {
+            lambda: number("λ")?,
+        },
+        "q-fedavg" => AggregationRule::QFedavg { q: number("q")? },
+        _ => {
+            return Err(format!(
+                "`{text}`: expected fedavg, group-rank:λ or q-fedavg:q"
+            ));
+        }
+    };
+    plimsoll_server::aggregate::Aggregation {
+        rule,
+        clip_norm: None,
+    }
+    .validate()?;
+    Ok(rule)
+}
+
 fn parse_budget(text: &str) -> Result<f64, String> {
     let v: f64 = text.trim().parse().map_err(|e| {
         format!("expected episodes per participant-month such as 0.3, got `{text}`: {e}")
@@ -317,6 +376,9 @@ struct EvaluateArgs {
     alarm_level: AlarmLevel,
     detector: Option<PathBuf>,
     on_bad_row: OnBadRow,
+    groups: GroupOptions,
+    calibrate_per_group: Option<String>,
+    compare_aggregation: bool,
 }
 
 #[tokio::main]
@@ -368,6 +430,8 @@ async fn main() -> anyhow::Result<()> {
                     AlarmLevel::Alert => plimsoll_server::packets::FlagLevel::Alert,
                     AlarmLevel::Watch => plimsoll_server::packets::FlagLevel::Watch,
                 },
+                sensor_models: None,
+                subgroups: None,
             };
             config
                 .validate()
@@ -399,6 +463,8 @@ async fn main() -> anyhow::Result<()> {
             data,
             out,
             share_flags,
+            sensor_model,
+            group_label,
             insecure_plaintext,
             on_bad_row,
         } => {
@@ -421,6 +487,8 @@ async fn main() -> anyhow::Result<()> {
                 } else {
                     FlagSharing::Withheld
                 },
+                sensor_model,
+                group_label,
                 bad_rows: on_bad_row.into(),
             };
             let report = run_participate(&opts).await?;
@@ -514,6 +582,11 @@ async fn main() -> anyhow::Result<()> {
             alarm_level,
             detector,
             on_bad_row,
+            sensor_column,
+            group_column,
+            aggregation,
+            calibrate_per_group,
+            compare_aggregation,
         } => {
             evaluate(EvaluateArgs {
                 cohort,
@@ -527,6 +600,13 @@ async fn main() -> anyhow::Result<()> {
                 alarm_level,
                 detector,
                 on_bad_row,
+                groups: GroupOptions {
+                    sensor_column,
+                    group_column,
+                    rule: aggregation,
+                },
+                calibrate_per_group,
+                compare_aggregation,
             })
             .await
         }
@@ -555,7 +635,7 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
     let t0 = std::time::Instant::now();
     let mut settings = EvaluationSettings::new("");
     settings.budget_per_month = args.false_alarm_budget;
-    settings.target_kinds = args.target_kinds;
+    settings.target_kinds = args.target_kinds.clone();
     settings.local_fit_days = args.local_fit_days;
     if let Some(path) = &args.detector {
         settings.detect = plimsoll_device::detect::DetectConfig::from_toml_file(path)?;
@@ -564,6 +644,16 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
         AlarmLevel::Alert => FlagLevel::Alert,
         AlarmLevel::Watch => FlagLevel::Watch,
     };
+    settings.calibrate_column = args.calibrate_per_group.clone();
+    if args.groups.rule.needs_groups() && args.groups.group_column.is_none() {
+        anyhow::bail!(
+            "--aggregation {}: needs --group-column (the participants.csv column whose level each device reports)",
+            args.groups.rule.label()
+        );
+    }
+    if args.compare_aggregation {
+        return compare(args, settings).await;
+    }
     let outcome = run_evaluation(&EvaluateOptions {
         cohort_dir: args.cohort,
         out_dir: args.out,
@@ -573,6 +663,7 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
         settings,
         progress: true,
         bad_rows: args.on_bad_row.into(),
+        groups: args.groups,
     })
     .await?;
     if !outcome.issues.is_empty() {
@@ -632,6 +723,52 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
         outcome.detection.as_secs_f64(),
         t0.elapsed().as_secs_f64()
     );
+    Ok(())
+}
+
+/// `plimsoll evaluate --compare-aggregation`.
+async fn compare(args: EvaluateArgs, settings: EvaluationSettings) -> anyhow::Result<()> {
+    use plimsoll_device::evaluate::compare::{
+        compare_aggregation, comparison_settings, render_comparison,
+    };
+    let t0 = std::time::Instant::now();
+    let cohort = plimsoll_device::cohort::read_cohort(&args.cohort, args.on_bad_row.into())
+        .with_context(|| format!("reading the cohort in {}", args.cohort.display()))?;
+    if !cohort.issues.is_empty() {
+        println!(
+            "{} input issues (rows quarantined; run without --compare-aggregation to list them)",
+            cohort.issues.len()
+        );
+    }
+    std::fs::create_dir_all(&args.out)
+        .with_context(|| format!("creating the output folder {}", args.out.display()))?;
+    let name = args.cohort.file_name().map_or_else(
+        || args.cohort.display().to_string(),
+        |n| n.to_string_lossy().into_owned(),
+    );
+    let compared = comparison_settings(
+        args.groups.sensor_column.as_deref(),
+        args.groups.group_column.as_deref(),
+    );
+    let result = compare_aggregation(
+        &std::sync::Arc::new(cohort),
+        &name,
+        args.rounds,
+        &settings,
+        &compared,
+        &args.out,
+        true,
+    )
+    .await?;
+    println!();
+    println!("{}", plimsoll_proto::caution::TEXT);
+    println!();
+    print!("{}", render_comparison(&result));
+    println!();
+    println!("Outputs:");
+    println!("  comparison (CSV):  {}", result.csv.display());
+    println!("  comparison (JSON): {}", result.json.display());
+    println!("Total {:.1} s.", t0.elapsed().as_secs_f64());
     Ok(())
 }
 

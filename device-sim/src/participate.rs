@@ -36,6 +36,10 @@ pub struct ParticipateOptions {
     pub data: PathBuf,
     pub out_dir: PathBuf,
     pub sharing: FlagSharing,
+    /// The device's sensor model, when the study lists models.
+    pub sensor_model: Option<String>,
+    /// The participant's level of the study's group column, when it has one.
+    pub group_label: Option<String>,
     /// Abort on the first bad row of `data`, or quarantine bad rows (copied
     /// to `out_dir/quarantine/`) and go on.
     pub bad_rows: BadRowPolicy,
@@ -122,6 +126,8 @@ pub async fn run_participate(opts: &ParticipateOptions) -> anyhow::Result<Device
         wait_ms: 10_000,
         seed: rand::random(),
         device_secret: Some(secret),
+        sensor_model: opts.sensor_model.clone(),
+        group_label: opts.group_label.clone(),
     };
     let cpu = Arc::new(Semaphore::new(
         std::thread::available_parallelism().map_or(1, |n| n.get()),

@@ -110,6 +110,40 @@ pub struct DroppedDevice {
     pub reason: String,
 }
 
+/// Which of a cohort's group columns (`participants.csv`) simulated devices declare at
+/// enrolment: the study's sensor-model column and its group column.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct Declared {
+    pub sensor_column: Option<String>,
+    pub group_column: Option<String>,
+}
+
+impl Declared {
+    /// The columns `config` asks devices for.
+    pub fn from_config(config: &StudyConfig) -> Declared {
+        Declared {
+            sensor_column: config
+                .sensor_models
+                .as_ref()
+                .and_then(|m| m.column.clone()),
+            group_column: config.subgroups.as_ref().map(|g| g.column.clone()),
+        }
+    }
+
+    /// `participant`'s sensor model and group level (empty when the column is not asked for
+    /// or the participant has no value in it; the aggregator then refuses the enrolment if
+    /// the study needs one).
+    pub fn values(&self, cohort: &Cohort, participant: &str) -> (String, String) {
+        let of = |column: &Option<String>| {
+            column
+                .as_ref()
+                .and_then(|c| cohort.groups.get(participant)?.get(c).cloned())
+                .unwrap_or_default()
+        };
+        (of(&self.sensor_column), of(&self.group_column))
+    }
+}
+
 /// Outcome of [`enroll_all`].
 #[derive(Debug, Default)]
 pub struct Enrolment {
@@ -130,6 +164,7 @@ pub async fn enroll_all(
     enrollment_code: &str,
     cohort: &Arc<Cohort>,
     members: &[usize],
+    declared: &Declared,
     pool: &PoolOptions,
     progress: Option<&ProgressBar>,
 ) -> anyhow::Result<Enrolment> {
@@ -146,6 +181,8 @@ pub async fn enroll_all(
                 study_id.to_owned(),
                 enrollment_code.to_owned(),
             );
+            let (sensor_model, group_label) =
+                declared.values(&cohort, &cohort.participants[index].participant);
             tasks.spawn(async move {
                 let series = &cohort.participants[index];
                 let signals: Vec<String> = local_training_series(series)
@@ -169,6 +206,8 @@ pub async fn enroll_all(
                             signals,
                             sharing: FlagSharing::Withheld,
                             device_secret: &secret,
+                            sensor_model: &sensor_model,
+                            group_label: &group_label,
                         },
                     )
                     .await
@@ -443,6 +482,7 @@ pub async fn run_federated_pooled(
         Coordinator::open(db_path).with_context(|| format!("opening {}", db_path.display()))?,
     );
     let study_id = config.study_id.clone();
+    let declared = Declared::from_config(&config);
     let enrollment_code = coordinator
         .create_study(config, plimsoll_server::service::now_ms())
         .with_context(|| format!("creating study `{study_id}`"))?;
@@ -458,6 +498,7 @@ pub async fn run_federated_pooled(
         &enrollment_code,
         cohort,
         members,
+        &declared,
         pool,
         bars.enrolment.as_ref(),
     )

@@ -103,6 +103,8 @@ async fn two_devices_take_part_over_tls_and_resume() {
                 alert_budget_per_participant_month:
                     plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
                 review_level: plimsoll_server::packets::FlagLevel::Alert,
+                sensor_models: None,
+                subgroups: None,
             },
             now_ms(),
         )

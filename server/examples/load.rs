@@ -173,6 +173,8 @@ async fn run(
             alert_budget_per_participant_month:
                 plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
             review_level: plimsoll_server::packets::FlagLevel::Alert,
+            sensor_models: None,
+            subgroups: None,
         },
         now_ms(),
     )?;

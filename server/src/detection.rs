@@ -276,6 +276,8 @@ pub struct StageView {
     pub completed_ms: Option<i64>,
     /// The published sum, once complete.
     pub sum: Option<DetectionStats>,
+    /// When `sum` is over the calling device's group only: its label and device count.
+    pub group: Option<(String, u32)>,
 }
 
 /// Result of an accepted submission.

@@ -17,6 +17,7 @@ use tokio::sync::watch;
 
 use plimsoll_proto::auth::{DeviceCredential, check_secret};
 
+use crate::aggregate::UpdateInput;
 use crate::detection::{DetectionStage, DetectionStats, StageView, StatsOutcome};
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
@@ -24,8 +25,8 @@ use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code
 use crate::store::StoredEpisode;
 use crate::store::{CompletedStage, Store, StoredOpenRound};
 use crate::study::{
-    Contribution, PriorVersion, SignalParams, SignalUpdate, StudyConfig, StudyStatus,
-    SubmitOutcome, Work, valid_id,
+    Contribution, PriorVersion, SensorTerms, SignalParams, SignalUpdate, StudyConfig,
+    StudyStatus, SubmitOutcome, Work, valid_id,
 };
 
 /// Suggested pause before a device asks again when it has nothing to do.
@@ -39,6 +40,10 @@ struct Device {
     /// refused (the refusal itself reads the database, so a revocation made
     /// by another process counts at once; this flag follows it).
     revoked: bool,
+    /// The sensor model declared at enrolment (studies with sensor models).
+    sensor_model: Option<String>,
+    /// The level of the study's group column reported at enrolment.
+    group: Option<String>,
 }
 
 #[derive(Debug)]
@@ -98,6 +103,10 @@ pub struct Enrollment<'a> {
     pub enrollment_code: &'a str,
     /// The secret the device drew (64 lower-case hex characters).
     pub device_secret: &'a str,
+    /// The device's sensor model (empty: none declared).
+    pub sensor_model: &'a str,
+    /// The participant's level of the study's group column (empty: none reported).
+    pub group_label: &'a str,
 }
 
 impl std::fmt::Debug for Enrollment<'_> {
@@ -108,6 +117,8 @@ impl std::fmt::Debug for Enrollment<'_> {
             .field("label", &self.label)
             .field("signals", &self.signals)
             .field("consent_share_flags", &self.consent_share_flags)
+            .field("sensor_model", &self.sensor_model)
+            .field("group_label", &self.group_label)
             .finish_non_exhaustive()
     }
 }
@@ -208,6 +219,8 @@ impl Coordinator {
                         signals: d.signals,
                         consent_share_flags: d.consent_share_flags,
                         revoked: d.revoked,
+                        sensor_model: d.sensor_model,
+                        group: d.group,
                     },
                 );
             }
@@ -300,6 +313,7 @@ impl Coordinator {
                 .collect(),
             contributions: Vec::new(),
             created_unix_ms: now_ms,
+            sensor_terms: Vec::new(),
         };
         let code = new_enrollment_code();
         state
@@ -451,6 +465,8 @@ impl Coordinator {
             consent_share_flags,
             enrollment_code,
             device_secret,
+            sensor_model,
+            group_label,
         } = request;
         self.check_enrollment_code(study_id, enrollment_code)?;
         if !valid_id(label) {
@@ -484,6 +500,18 @@ impl Coordinator {
             }
         }
         check_secret(device_secret).map_err(|e| AggregatorError::invalid("device_secret", e))?;
+        let sensor_model = check_declared(
+            "sensor_model",
+            sensor_model,
+            rt.config.sensor_models.as_ref().map(|m| &m.models[..]),
+            "sensor models",
+        )?;
+        let group = check_declared(
+            "group_label",
+            group_label,
+            rt.config.subgroups.as_ref().map(|g| &g.levels[..]),
+            "group levels",
+        )?;
         let credential_hash = secret_hash(device_secret);
         if let Some(&id) = rt.labels.get(label) {
             let identity = store
@@ -506,6 +534,20 @@ impl Coordinator {
                 None => store.claim_device_credential(id, &credential_hash)?,
             }
             let device = rt.devices.get_mut(&id).expect("labels and devices agree");
+            for (field, declared, stored) in [
+                ("sensor_model", &sensor_model, &device.sensor_model),
+                ("group_label", &group, &device.group),
+            ] {
+                if declared != stored {
+                    return Err(AggregatorError::invalid(
+                        field,
+                        format!(
+                            "`{label}` was enrolled with {}; it is fixed at the first enrolment",
+                            stored.as_deref().map_or("none".to_owned(), |s| format!("`{s}`"))
+                        ),
+                    ));
+                }
+            }
             if device.consent_share_flags != consent_share_flags {
                 store.set_consent(id, consent_share_flags)?;
                 device.consent_share_flags = consent_share_flags;
@@ -518,6 +560,8 @@ impl Coordinator {
             signals,
             consent_share_flags,
             &credential_hash,
+            sensor_model.as_deref(),
+            group.as_deref(),
             now_ms,
         )?;
         rt.labels.insert(label.to_owned(), id);
@@ -527,6 +571,8 @@ impl Coordinator {
                 signals: signals.to_vec(),
                 consent_share_flags,
                 revoked: false,
+                sensor_model,
+                group,
             },
         );
         let opened = maybe_open_round(store, rt, now_ms, None)?;
@@ -598,10 +644,9 @@ impl Coordinator {
         }
         let shared = rt
             .latest
-            .params
-            .iter()
+            .params_for(device.sensor_model.as_deref())
+            .into_iter()
             .filter(|p| device.signals.contains(&p.signal))
-            .cloned()
             .collect();
         Ok(Work::Task {
             round_id: open.round_id,
@@ -764,6 +809,26 @@ impl Coordinator {
         }
     }
 
+    /// [`Coordinator::prior`] as device `device_id` uses it: its sensor model's terms in
+    /// `params` where the version has them. Returns the prior and the model whose terms it
+    /// carries (`None`: pooled).
+    pub fn prior_for_device(
+        &self,
+        study_id: &str,
+        version: Option<u32>,
+        device_id: u64,
+    ) -> Result<(PriorVersion, Option<String>)> {
+        let mut prior = self.prior(study_id, version)?;
+        let state = self.lock();
+        let model = study(&state.studies, study_id)?
+            .devices
+            .get(&device_id)
+            .and_then(|d| d.sensor_model.clone())
+            .filter(|m| prior.has_terms(m));
+        prior.params = prior.params_for(model.as_deref());
+        Ok((prior, model))
+    }
+
     /// Every published prior, oldest first (for convergence reports).
     pub fn prior_history(&self, study_id: &str) -> Result<Vec<PriorVersion>> {
         let state = self.lock();
@@ -875,7 +940,7 @@ impl Coordinator {
         let mut submitters = store.detection_submitters(study_id, stage)?;
         submitters.insert(device_id);
         let completed = due_completion(store, rt, stage, &submitters, now_ms)?
-            .then(|| summed(store, study_id, stage, Some((device_id, stats)), now_ms))
+            .then(|| summed(store, rt, stage, Some((device_id, stats)), now_ms))
             .transpose()?;
         store.put_detection_stats(study_id, device_id, stats, completed.as_ref(), now_ms)?;
         let stage_complete = completed.is_some();
@@ -907,6 +972,21 @@ impl Coordinator {
         let devices_expected = rt.active_devices() as u32;
         if let Some(done) = store.completed_stage(study_id, stage)? {
             let submitters = store.detection_submitters(study_id, stage)?;
+            let min_group = rt
+                .config
+                .subgroups
+                .as_ref()
+                .map_or(u32::MAX, |g| g.min_devices_per_group);
+            let own_group = rt
+                .devices
+                .get(&device_id)
+                .and_then(|d| d.group.as_ref())
+                .and_then(|g| done.group_sums.get(g).map(|s| (g, s)))
+                .filter(|(_, (n, _))| *n >= min_group);
+            let (sum, group) = match own_group {
+                Some((g, (n, sum))) => (sum.clone(), Some((g.clone(), *n))),
+                None => (done.sum, None),
+            };
             return Ok(StageView {
                 stage,
                 open: false,
@@ -916,7 +996,8 @@ impl Coordinator {
                 device_submitted: submitters.contains(&device_id),
                 deadline_ms: stage_deadline_ms(store, rt, stage)?,
                 completed_ms: Some(done.completed_ms),
-                sum: Some(done.sum),
+                sum: Some(sum),
+                group,
             });
         }
         let deadline_ms = stage_deadline_ms(store, rt, stage)?;
@@ -931,6 +1012,7 @@ impl Coordinator {
             deadline_ms,
             completed_ms: None,
             sum: None,
+            group: None,
         })
     }
 
@@ -1029,31 +1111,48 @@ fn due_completion(
 
 /// The element-by-element sum of a stage's stored submissions, with
 /// `pending` (a device's submission not stored yet) in place of that
-/// device's stored one.
+/// device's stored one; for the histogram stage of a study that calibrates
+/// per group, also the sum per level of its group column.
 fn summed(
     store: &Store,
-    study_id: &str,
+    rt: &StudyRuntime,
     stage: DetectionStage,
     pending: Option<(u64, &DetectionStats)>,
     now_ms: i64,
 ) -> Result<CompletedStage> {
+    let per_group = stage == DetectionStage::EpisodeHistogram
+        && rt
+            .config
+            .subgroups
+            .as_ref()
+            .is_some_and(|g| g.calibrate_per_group);
     let mut sum = DetectionStats::zero(stage);
     let mut n_devices = 0u32;
-    for (device, stats) in store.detection_submissions(study_id, stage)? {
-        if pending.is_some_and(|(d, _)| d == device) {
-            continue;
-        }
-        sum.add(&stats);
-        n_devices += 1;
-    }
-    if let Some((_, stats)) = pending {
+    let mut group_sums: BTreeMap<String, (u32, DetectionStats)> = BTreeMap::new();
+    let stored = store.detection_submissions(&rt.config.study_id, stage)?;
+    let all = stored
+        .iter()
+        .filter(|(d, _)| !pending.is_some_and(|(p, _)| p == *d))
+        .map(|(d, s)| (*d, s))
+        .chain(pending);
+    for (device, stats) in all {
         sum.add(stats);
         n_devices += 1;
+        if per_group
+            && let Some(g) = rt.devices.get(&device).and_then(|d| d.group.as_ref())
+        {
+            let entry = group_sums
+                .entry(g.clone())
+                .or_insert_with(|| (0, DetectionStats::zero(stage)));
+            entry.0 += 1;
+            entry.1.add(stats);
+        }
     }
     Ok(CompletedStage {
         completed_ms: now_ms,
         n_devices,
         sum,
+        group_sums,
     })
 }
 
@@ -1072,7 +1171,7 @@ fn complete_stage_if_due(
     if !due_completion(store, rt, stage, &submitters, now_ms)? {
         return Ok(false);
     }
-    let completed = summed(store, &study_id, stage, None, now_ms)?;
+    let completed = summed(store, rt, stage, None, now_ms)?;
     store.complete_stage(&study_id, &completed)?;
     rt.detection_complete[stage.index()] = true;
     tracing::info!(study = %study_id, stage = stage.as_str(), devices = completed.n_devices, "calibration stage complete");
@@ -1282,6 +1381,33 @@ fn maybe_open_round(
     Ok(true)
 }
 
+/// A declared sensor model or group level: `None` when empty and the study asks for none;
+/// refused when the study asks for one and it is missing or not in `allowed`, or when the
+/// study asks for none and one is sent.
+fn check_declared(
+    field: &str,
+    value: &str,
+    allowed: Option<&[String]>,
+    what: &str,
+) -> Result<Option<String>> {
+    match (value.is_empty(), allowed) {
+        (true, None) => Ok(None),
+        (false, None) => Err(AggregatorError::invalid(
+            field,
+            format!("`{value}`: the study collects no {what}; leave it empty"),
+        )),
+        (true, Some(list)) => Err(AggregatorError::invalid(
+            field,
+            format!("missing; the study's {what} are {}", list.join(", ")),
+        )),
+        (false, Some(list)) if list.iter().any(|v| v == value) => Ok(Some(value.to_owned())),
+        (false, Some(list)) => Err(AggregatorError::invalid(
+            field,
+            format!("`{value}` is not one of the study's {what} ({})", list.join(", ")),
+        )),
+    }
+}
+
 /// Seeded random choice of `max(quorum, ceil(fraction × n))` devices.
 fn select_members(config: &StudyConfig, enrolled: Vec<u64>, round_id: u64) -> Vec<u64> {
     let n = enrolled.len();
@@ -1304,17 +1430,72 @@ fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<
     let open = rt.open.as_ref().expect("close_round needs an open round");
     let mut params = Vec::with_capacity(rt.latest.params.len());
     let mut contributions = Vec::new();
+    let mut sensor_terms = Vec::new();
     for current in &rt.latest.params {
-        let entries: Vec<&SignalUpdate> = open
+        let entries: Vec<(u64, &SignalUpdate)> = open
             .submissions
-            .values()
-            .flat_map(|ups| ups.iter().filter(|u| u.signal == current.signal))
-            .collect();
-        let weighted: Vec<(&[f64], u32)> = entries
             .iter()
-            .map(|u| (u.values.as_slice(), u.n_days))
+            .flat_map(|(&id, ups)| {
+                ups.iter()
+                    .filter(|u| u.signal == current.signal)
+                    .map(move |u| (id, u))
+            })
             .collect();
-        match rt.config.aggregation.combine(&current.values, &weighted) {
+        let device = |id: u64| rt.devices.get(&id);
+        let inputs: Vec<UpdateInput<'_>> = entries
+            .iter()
+            .map(|&(id, u)| UpdateInput {
+                values: &u.values,
+                n_days: u.n_days,
+                loss: u.local_loss,
+                group: device(id).and_then(|d| d.group.as_deref()),
+            })
+            .collect();
+        let combined = rt.config.aggregation.combine(
+            &current.values,
+            &inputs,
+            rt.config.training.learning_rate,
+        );
+        let pooled = combined.as_ref().unwrap_or(&current.values);
+        // Sensor models with enough enrolled devices keep terms of their own.
+        let coords = rt.config.sensor_coordinates(&current.signal);
+        if let Some(sm) = &rt.config.sensor_models {
+            for model in &sm.models {
+                let of_model = |d: &Device| d.sensor_model.as_deref() == Some(model.as_str());
+                let enrolled = rt
+                    .devices
+                    .values()
+                    .filter(|d| !d.revoked && of_model(d) && d.signals.contains(&current.signal))
+                    .count();
+                if enrolled < sm.min_devices as usize {
+                    continue;
+                }
+                let model_updates: Vec<(&[f64], u32)> = entries
+                    .iter()
+                    .filter(|(id, _)| device(*id).is_some_and(of_model))
+                    .map(|(_, u)| (u.values.as_slice(), u.n_days))
+                    .collect();
+                let previous = rt
+                    .latest
+                    .sensor_terms
+                    .iter()
+                    .find(|t| &t.sensor_model == model && t.signal == current.signal)
+                    .map_or(&current.values, |t| &t.values);
+                sensor_terms.push(SensorTerms {
+                    sensor_model: model.clone(),
+                    signal: current.signal.clone(),
+                    values: crate::aggregate::sensor_terms(
+                        pooled,
+                        &coords,
+                        &model_updates,
+                        previous,
+                    ),
+                    n_devices: model_updates.len() as u32,
+                });
+            }
+        }
+        let entries: Vec<&SignalUpdate> = entries.into_iter().map(|(_, u)| u).collect();
+        match combined {
             Some(values) => {
                 let n_days: u64 = entries.iter().map(|u| u64::from(u.n_days)).sum();
                 let loss = entries
@@ -1342,6 +1523,7 @@ fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<
         params,
         contributions,
         created_unix_ms: now_ms,
+        sensor_terms,
     };
     store.close_round(&rt.config.study_id, open.round_id, &prior, now_ms)?;
     tracing::info!(

@@ -168,6 +168,8 @@ impl Aggregator for AggregatorService {
                     consent_share_flags: r.consent_share_flags,
                     enrollment_code: &r.enrollment_code,
                     device_secret: &r.device_secret,
+                    sensor_model: &r.sensor_model,
+                    group_label: &r.group_label,
                 },
                 now_ms(),
             )
@@ -235,12 +237,16 @@ impl Aggregator for AggregatorService {
         let r = req.into_inner();
         let version = (r.version != 0).then_some(r.version);
         let study_id = r.study_id.clone();
-        let prior = blocking("GetPrior", move || {
+        let (prior, model) = blocking("GetPrior", move || {
             c.authenticate(&study_id, None, &cred)?;
-            c.prior(&study_id, version)
+            c.prior_for_device(&study_id, version, cred.device_id)
         })
         .await?;
-        Ok(Response::new(wire::prior_to_pb(&r.study_id, &prior)))
+        Ok(Response::new(wire::prior_to_pb(
+            &r.study_id,
+            &prior,
+            model.as_deref(),
+        )))
     }
 
     async fn submit_flag_packet(

@@ -24,6 +24,7 @@
 //! [`crate::review::limits`]). Opening an older database migrates it in one
 //! transaction.
 
+use std::collections::BTreeMap;
 use std::path::Path;
 
 use rusqlite::{Connection, OptionalExtension, params};
@@ -33,7 +34,7 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::study::{PriorVersion, SignalUpdate, StudyConfig};
 
-const SCHEMA_VERSION: i64 = 7;
+const SCHEMA_VERSION: i64 = 8;
 
 /// Version 1: federated training.
 const SCHEMA_V1: &str = "
@@ -179,6 +180,9 @@ pub struct CompletedStage {
     pub completed_ms: i64,
     pub n_devices: u32,
     pub sum: DetectionStats,
+    /// Per level of the study's group column, the devices and sum of that group's
+    /// submissions (histogram stage of a study that calibrates per group; empty otherwise).
+    pub group_sums: BTreeMap<String, (u32, DetectionStats)>,
 }
 
 /// Version 4 → 5: flag packets become episodes, one row per episode.
@@ -252,6 +256,16 @@ CREATE INDEX data_summaries_by_study ON data_summaries (study_id);
 UPDATE schema_version SET version = 7;
 ";
 
+/// Version 8: a device's sensor model and group level (declared at enrolment), a prior's
+/// per-sensor-model terms, and a completed histogram stage's sums per group.
+const MIGRATE_SUBGROUPS: &str = "
+ALTER TABLE devices ADD COLUMN sensor_model TEXT;
+ALTER TABLE devices ADD COLUMN group_label TEXT;
+ALTER TABLE priors ADD COLUMN sensor_terms_json TEXT NOT NULL DEFAULT '[]';
+ALTER TABLE detection_stages ADD COLUMN group_sums_json TEXT NOT NULL DEFAULT '{}';
+UPDATE schema_version SET version = 8;
+";
+
 /// A stored episode: its id (the same for every version) and how many
 /// versions were received.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -282,6 +296,10 @@ pub struct StoredDevice {
     pub consent_share_flags: bool,
     /// True once the device was revoked.
     pub revoked: bool,
+    /// Declared sensor model, if the study collects one.
+    pub sensor_model: Option<String>,
+    /// Level of the study's group column, if it collects one.
+    pub group: Option<String>,
 }
 
 /// The round that was open when the state was last written.
@@ -341,51 +359,64 @@ impl Store {
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
                 tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
+                tx.execute_batch(MIGRATE_SUBGROUPS)?;
             }
             Some(1) => {
-                tracing::info!("migrating the aggregator database from schema 1 to 7");
+                tracing::info!("migrating the aggregator database from schema 1 to 8");
                 tx.execute_batch(MIGRATE_V1_TO_V2)?;
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
                 tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
+                tx.execute_batch(MIGRATE_SUBGROUPS)?;
             }
             Some(2) => {
-                tracing::info!("migrating the aggregator database from schema 2 to 7");
+                tracing::info!("migrating the aggregator database from schema 2 to 8");
                 tx.execute_batch(MIGRATE_V2_TO_V3)?;
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
                 tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
+                tx.execute_batch(MIGRATE_SUBGROUPS)?;
             }
             Some(3) => {
-                tracing::info!("migrating the aggregator database from schema 3 to 7");
+                tracing::info!("migrating the aggregator database from schema 3 to 8");
                 tx.execute_batch(MIGRATE_V3_TO_V4)?;
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
                 tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
+                tx.execute_batch(MIGRATE_SUBGROUPS)?;
             }
             Some(4) => {
                 tracing::info!(
-                    "migrating the aggregator database from schema 4 to 7 (episodes, login record, data summaries)"
+                    "migrating the aggregator database from schema 4 to 8 (episodes, login record, data summaries, sensor models and groups)"
                 );
                 tx.execute_batch(MIGRATE_EPISODES)?;
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
                 tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
+                tx.execute_batch(MIGRATE_SUBGROUPS)?;
             }
             Some(5) => {
                 tracing::info!(
-                    "migrating the aggregator database from schema 5 to 7 (login record, data summaries)"
+                    "migrating the aggregator database from schema 5 to 8 (login record, data summaries, sensor models and groups)"
                 );
                 tx.execute_batch(MIGRATE_LOGIN_EVENTS)?;
                 tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
+                tx.execute_batch(MIGRATE_SUBGROUPS)?;
             }
             Some(6) => {
                 tracing::info!(
-                    "migrating the aggregator database from schema 6 to 7 (data summaries)"
+                    "migrating the aggregator database from schema 6 to 8 (data summaries, sensor models and groups)"
                 );
                 tx.execute_batch(MIGRATE_DATA_SUMMARIES)?;
+                tx.execute_batch(MIGRATE_SUBGROUPS)?;
+            }
+            Some(7) => {
+                tracing::info!(
+                    "migrating the aggregator database from schema 7 to 8 (sensor models and groups)"
+                );
+                tx.execute_batch(MIGRATE_SUBGROUPS)?;
             }
             Some(SCHEMA_VERSION) => {}
             Some(other) => {
@@ -485,7 +516,8 @@ impl Store {
 
     pub fn devices(&self, study_id: &str) -> Result<Vec<StoredDevice>> {
         let mut stmt = self.conn.prepare(
-            "SELECT device_id, label, signals_json, consent_share_flags, revoked_ms
+            "SELECT device_id, label, signals_json, consent_share_flags, revoked_ms,
+                    sensor_model, group_label
              FROM devices WHERE study_id = ?1 ORDER BY device_id",
         )?;
         let rows = stmt.query_map([study_id], |r| {
@@ -495,11 +527,13 @@ impl Store {
                 r.get::<_, String>(2)?,
                 r.get::<_, bool>(3)?,
                 r.get::<_, Option<i64>>(4)?,
+                r.get::<_, Option<String>>(5)?,
+                r.get::<_, Option<String>>(6)?,
             ))
         })?;
         let mut out = Vec::new();
         for row in rows {
-            let (id, label, json, consent_share_flags, revoked_ms) = row?;
+            let (id, label, json, consent_share_flags, revoked_ms, sensor_model, group) = row?;
             let signals = serde_json::from_str(&json)
                 .map_err(|e| corrupt(&format!("device {id} signals"), e))?;
             out.push(StoredDevice {
@@ -508,6 +542,8 @@ impl Store {
                 signals,
                 consent_share_flags,
                 revoked: revoked_ms.is_some(),
+                sensor_model,
+                group,
             });
         }
         Ok(out)
@@ -542,19 +578,23 @@ impl Store {
         signals: &[String],
         consent_share_flags: bool,
         credential_hash: &str,
+        sensor_model: Option<&str>,
+        group: Option<&str>,
         now_ms: i64,
     ) -> Result<u64> {
         self.conn.execute(
             "INSERT INTO devices (study_id, label, signals_json, enrolled_ms,
-                                  consent_share_flags, credential_hash)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+                                  consent_share_flags, credential_hash, sensor_model, group_label)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
             params![
                 study_id,
                 label,
                 to_json(&signals),
                 now_ms,
                 consent_share_flags,
-                credential_hash
+                credential_hash,
+                sensor_model,
+                group
             ],
         )?;
         Ok(self.conn.last_insert_rowid() as u64)
@@ -793,7 +833,7 @@ impl Store {
     /// All published priors of a study, oldest first.
     pub fn priors(&self, study_id: &str) -> Result<Vec<PriorVersion>> {
         let mut stmt = self.conn.prepare(
-            "SELECT version, round_id, params_json, contributions_json, created_ms
+            "SELECT version, round_id, params_json, contributions_json, created_ms, sensor_terms_json
              FROM priors WHERE study_id = ?1 ORDER BY version",
         )?;
         let rows = stmt.query_map([study_id], |r| {
@@ -803,11 +843,12 @@ impl Store {
                 r.get::<_, String>(2)?,
                 r.get::<_, String>(3)?,
                 r.get::<_, i64>(4)?,
+                r.get::<_, String>(5)?,
             ))
         })?;
         let mut out = Vec::new();
         for row in rows {
-            let (version, round_id, params_json, contrib_json, created) = row?;
+            let (version, round_id, params_json, contrib_json, created, sensor_json) = row?;
             out.push(PriorVersion {
                 version: version as u32,
                 round_id: round_id as u64,
@@ -816,6 +857,8 @@ impl Store {
                 contributions: serde_json::from_str(&contrib_json)
                     .map_err(|e| corrupt(&format!("prior {version} contributions"), e))?,
                 created_unix_ms: created,
+                sensor_terms: serde_json::from_str(&sensor_json)
+                    .map_err(|e| corrupt(&format!("prior {version} sensor terms"), e))?,
             });
         }
         Ok(out)
@@ -1041,22 +1084,25 @@ impl Store {
         study_id: &str,
         stage: DetectionStage,
     ) -> Result<Option<CompletedStage>> {
-        let row: Option<(i64, i64, String)> = self
+        let row: Option<(i64, i64, String, String)> = self
             .conn
             .prepare_cached(
-                "SELECT completed_ms, n_devices, sum_json FROM detection_stages
+                "SELECT completed_ms, n_devices, sum_json, group_sums_json FROM detection_stages
                  WHERE study_id = ?1 AND stage = ?2",
             )?
             .query_row(params![study_id, stage.as_str()], |r| {
-                Ok((r.get(0)?, r.get(1)?, r.get(2)?))
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
             })
             .optional()?;
-        row.map(|(completed_ms, n, json)| {
+        row.map(|(completed_ms, n, json, groups_json)| {
             Ok(CompletedStage {
                 completed_ms,
                 n_devices: n as u32,
                 sum: serde_json::from_str(&json)
                     .map_err(|e| corrupt(&format!("published {}", stage.as_str()), e))?,
+                group_sums: serde_json::from_str(&groups_json).map_err(|e| {
+                    corrupt(&format!("published {} per group", stage.as_str()), e)
+                })?,
             })
         })
         .transpose()
@@ -1115,14 +1161,16 @@ fn insert_completed_stage(
     c: &CompletedStage,
 ) -> Result<()> {
     tx.execute(
-        "INSERT INTO detection_stages (study_id, stage, completed_ms, n_devices, sum_json)
-         VALUES (?1, ?2, ?3, ?4, ?5)",
+        "INSERT INTO detection_stages (study_id, stage, completed_ms, n_devices, sum_json,
+                                       group_sums_json)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
         params![
             study_id,
             c.sum.stage().as_str(),
             c.completed_ms,
             c.n_devices,
-            to_json(&c.sum)
+            to_json(&c.sum),
+            to_json(&c.group_sums)
         ],
     )?;
     Ok(())
@@ -1134,15 +1182,17 @@ fn insert_prior(
     prior: &PriorVersion,
 ) -> Result<()> {
     tx.execute(
-        "INSERT INTO priors (study_id, version, round_id, params_json, contributions_json, created_ms)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+        "INSERT INTO priors (study_id, version, round_id, params_json, contributions_json, created_ms,
+                             sensor_terms_json)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
         params![
             study_id,
             prior.version,
             prior.round_id as i64,
             to_json(&prior.params),
             to_json(&prior.contributions),
-            prior.created_unix_ms
+            prior.created_unix_ms,
+            to_json(&prior.sensor_terms)
         ],
     )?;
     Ok(())

@@ -85,6 +85,87 @@ pub struct StudyConfig {
     /// set); the aggregator refuses packets below it.
     #[serde(default = "default_review_level")]
     pub review_level: crate::packets::FlagLevel,
+    /// Per-sensor-model measurement terms of the prior (none unless set).
+    #[serde(default)]
+    pub sensor_models: Option<SensorModels>,
+    /// The participant group column devices report at enrolment (none unless set).
+    #[serde(default)]
+    pub subgroups: Option<Subgroups>,
+}
+
+/// A sensor-aware prior: one population trend, and per sensor model the
+/// measurement terms named in `params` (by default the mean offset `mean_z`
+/// and the measurement-noise variance `log_noise_var`), each averaged over
+/// that model's devices (see [`crate::aggregate::sensor_terms`]).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SensorModels {
+    /// The models a device may declare at enrolment.
+    pub models: Vec<String>,
+    /// Parameter names kept per model; every signal's layout must have them.
+    #[serde(default = "default_sensor_params")]
+    pub params: Vec<String>,
+    /// Enrolled (non-revoked) devices of a model, with the signal, that it needs for
+    /// terms of its own; below this its devices use the pooled terms.
+    #[serde(default = "default_min_devices_per_model")]
+    pub min_devices: u32,
+    /// Column of a cohort's `participants.csv` holding each participant's model, for
+    /// simulated devices (a real device knows its own model).
+    #[serde(default)]
+    pub column: Option<String>,
+}
+
+/// The per-model coordinates unless a study names others.
+pub const DEFAULT_SENSOR_PARAMS: [&str; 2] = ["mean_z", "log_noise_var"];
+
+/// Enrolled devices a sensor model needs for terms of its own unless a study says otherwise.
+pub const DEFAULT_MIN_DEVICES_PER_MODEL: u32 = 10;
+
+fn default_sensor_params() -> Vec<String> {
+    DEFAULT_SENSOR_PARAMS.iter().map(|s| (*s).to_owned()).collect()
+}
+
+fn default_min_devices_per_model() -> u32 {
+    DEFAULT_MIN_DEVICES_PER_MODEL
+}
+
+/// The one participant group column a study collects at enrolment.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Subgroups {
+    /// Column name, e.g. `age_band` (as in a cohort's `participants.csv`).
+    pub column: String,
+    /// The values a device may report.
+    pub levels: Vec<String>,
+    /// Calibrate the detector's thresholds per level: each device's histogram stage
+    /// publishes the sum over its own group's devices, when that group has at least
+    /// `min_devices_per_group` submissions; otherwise the whole study's sum.
+    #[serde(default)]
+    pub calibrate_per_group: bool,
+    /// See `calibrate_per_group`.
+    #[serde(default = "default_min_devices_per_group")]
+    pub min_devices_per_group: u32,
+}
+
+/// Devices a group needs for a calibration of its own unless a study says otherwise.
+pub const DEFAULT_MIN_DEVICES_PER_GROUP: u32 = 10;
+
+fn default_min_devices_per_group() -> u32 {
+    DEFAULT_MIN_DEVICES_PER_GROUP
+}
+
+/// Distinct, non-empty, valid identifiers; `what` names the field.
+fn check_names(what: &str, names: &[String]) -> Result<(), String> {
+    if names.is_empty() {
+        return Err(format!("{what}: at least one is needed"));
+    }
+    for (i, n) in names.iter().enumerate() {
+        if !valid_id(n) {
+            return Err(format!("{what}[{i}]: `{n}` must match [A-Za-z0-9_-]{{1,64}}"));
+        }
+        if names[..i].contains(n) {
+            return Err(format!("{what}[{i}]: `{n}` repeated"));
+        }
+    }
+    Ok(())
 }
 
 /// Default false-alarm budget: 0.3 Alert episodes per participant-month
@@ -156,7 +237,53 @@ impl StudyConfig {
                 "alert_budget_per_participant_month must be in (0, 30], got {budget}"
             ));
         }
+        if let Some(sm) = &self.sensor_models {
+            check_names("sensor_models.models", &sm.models)?;
+            if sm.params.is_empty() {
+                return Err("sensor_models.params: at least one parameter name is needed".into());
+            }
+            for (i, p) in sm.params.iter().enumerate() {
+                if let Some(s) = self.signals.iter().find(|s| !s.param_names.contains(p)) {
+                    return Err(format!(
+                        "sensor_models.params[{i}]: `{p}` is not a parameter of signal {}",
+                        s.signal
+                    ));
+                }
+            }
+            if sm.min_devices == 0 {
+                return Err("sensor_models.min_devices must be at least 1".into());
+            }
+        }
+        if let Some(g) = &self.subgroups {
+            if !valid_id(&g.column) {
+                return Err(format!(
+                    "subgroups.column: `{}` must match [A-Za-z0-9_-]{{1,64}}",
+                    g.column
+                ));
+            }
+            check_names("subgroups.levels", &g.levels)?;
+            if g.min_devices_per_group == 0 {
+                return Err("subgroups.min_devices_per_group must be at least 1".into());
+            }
+        }
+        if self.aggregation.rule.needs_groups() && self.subgroups.is_none() {
+            return Err(format!(
+                "aggregation.rule {}: needs a group column (set subgroups)",
+                self.aggregation.rule.name()
+            ));
+        }
         self.aggregation.validate()
+    }
+
+    /// Position of each per-model coordinate in `signal`'s layout (empty without sensor models).
+    pub fn sensor_coordinates(&self, signal: &str) -> Vec<usize> {
+        let (Some(sm), Some(layout)) = (&self.sensor_models, self.layout(signal)) else {
+            return Vec::new();
+        };
+        sm.params
+            .iter()
+            .filter_map(|p| layout.param_names.iter().position(|n| n == p))
+            .collect()
     }
 
     pub fn layout(&self, signal: &str) -> Option<&SignalLayout> {
@@ -198,6 +325,17 @@ pub struct Contribution {
     pub mean_local_loss: f64,
 }
 
+/// One sensor model's full parameter vector for one signal (the pooled vector with the
+/// per-model coordinates replaced by the model's own).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SensorTerms {
+    pub sensor_model: String,
+    pub signal: String,
+    pub values: Vec<f64>,
+    /// Devices of the model whose update entered this version (0: carried over).
+    pub n_devices: u32,
+}
+
 /// A published version of the shared prior.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct PriorVersion {
@@ -206,6 +344,39 @@ pub struct PriorVersion {
     pub params: Vec<SignalParams>,
     pub contributions: Vec<Contribution>,
     pub created_unix_ms: i64,
+    /// Per sensor model, for the models that have terms of their own in this version.
+    #[serde(default)]
+    pub sensor_terms: Vec<SensorTerms>,
+}
+
+impl PriorVersion {
+    /// The parameters a device of `sensor_model` uses: its model's vectors where the
+    /// version has them, the pooled ones otherwise.
+    pub fn params_for(&self, sensor_model: Option<&str>) -> Vec<SignalParams> {
+        self.params
+            .iter()
+            .map(|p| {
+                sensor_model
+                    .and_then(|m| {
+                        self.sensor_terms
+                            .iter()
+                            .find(|t| t.sensor_model == m && t.signal == p.signal)
+                    })
+                    .map_or_else(
+                        || p.clone(),
+                        |t| SignalParams {
+                            signal: p.signal.clone(),
+                            values: t.values.clone(),
+                        },
+                    )
+            })
+            .collect()
+    }
+
+    /// Whether `sensor_model` has terms of its own in this version.
+    pub fn has_terms(&self, sensor_model: &str) -> bool {
+        self.sensor_terms.iter().any(|t| t.sensor_model == sensor_model)
+    }
 }
 
 /// What a device should do now.

@@ -119,6 +119,24 @@ pub fn status_to_pb(s: &StudyStatus) -> pb::Study {
         prior_version: s.prior_version,
         min_quorum: s.config.min_quorum,
         alert_budget_per_participant_month: s.config.alert_budget_per_participant_month,
+        sensor_models: s
+            .config
+            .sensor_models
+            .as_ref()
+            .map(|m| m.models.clone())
+            .unwrap_or_default(),
+        group_column: s
+            .config
+            .subgroups
+            .as_ref()
+            .map(|g| g.column.clone())
+            .unwrap_or_default(),
+        group_levels: s
+            .config
+            .subgroups
+            .as_ref()
+            .map(|g| g.levels.clone())
+            .unwrap_or_default(),
         review_level: level_to_pb(s.config.review_level) as i32,
     }
 }
@@ -199,6 +217,8 @@ pub fn stage_view_to_pb(v: StageView) -> pb::DetectionCalibration {
                 scored_days,
             }),
         }),
+        group_devices: v.group.as_ref().map_or(0, |g| g.1),
+        group_label: v.group.map(|g| g.0).unwrap_or_default(),
     }
 }
 
@@ -211,7 +231,12 @@ fn contribution_to_pb(c: &Contribution) -> pb::SignalContribution {
     }
 }
 
-pub fn prior_to_pb(study_id: &str, p: &PriorVersion) -> pb::PublishedPrior {
+/// A published prior; `sensor_model` names the model whose terms `p.params` carries.
+pub fn prior_to_pb(
+    study_id: &str,
+    p: &PriorVersion,
+    sensor_model: Option<&str>,
+) -> pb::PublishedPrior {
     pb::PublishedPrior {
         study_id: study_id.to_owned(),
         version: p.version,
@@ -219,6 +244,17 @@ pub fn prior_to_pb(study_id: &str, p: &PriorVersion) -> pb::PublishedPrior {
         params: p.params.iter().map(params_to_pb).collect(),
         contributions: p.contributions.iter().map(contribution_to_pb).collect(),
         created_unix_ms: p.created_unix_ms,
+        sensor_model: sensor_model.unwrap_or_default().to_owned(),
+        sensor_terms: p
+            .sensor_terms
+            .iter()
+            .map(|t| pb::SensorModelParameters {
+                sensor_model: t.sensor_model.clone(),
+                signal: t.signal.clone(),
+                values: t.values.clone(),
+                n_devices: t.n_devices,
+            })
+            .collect(),
     }
 }
 

@@ -13,13 +13,15 @@ use std::time::{Duration, Instant};
 
 use anyhow::{Context, bail};
 use indicatif::{ProgressBar, ProgressStyle};
+use plimsoll_server::aggregate::{Aggregation, AggregationRule};
+use plimsoll_server::study::{SensorModels, Subgroups};
 use plimsoll_server::{LocalTraining, Optimizer, StudyConfig};
 
 use super::prior_file::{read_prior_file, write_prior_file};
 use super::report::{
     EvaluationReport, render_svg, write_csv, write_disparity_csv, write_json, write_matched_csv,
 };
-use super::run::{EvaluationSettings, evaluate_cohort};
+use super::run::{CohortPriors, EvaluationSettings, evaluate_cohort};
 use crate::client::MIN_DAYS_TO_ENROLL;
 use crate::cohort::{BadRowPolicy, Cohort, QuarantineFile, read_cohort, write_quarantine_files};
 use crate::demo::initial_layouts;
@@ -49,6 +51,67 @@ pub struct EvaluateOptions {
     /// Abort on the first bad row, or quarantine bad rows (copied to
     /// `out_dir/quarantine/`) and go on.
     pub bad_rows: BadRowPolicy,
+    /// Sensor-aware prior, group column, aggregation rule.
+    pub groups: GroupOptions,
+}
+
+/// How the federated prior treats subgroups (issue: fair across subgroups).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct GroupOptions {
+    /// `participants.csv` column naming each participant's sensor model: learn a
+    /// sensor-aware prior (per-model mean and measurement noise).
+    pub sensor_column: Option<String>,
+    /// The group column devices report at enrolment (fairness-aware aggregation).
+    pub group_column: Option<String>,
+    /// How each round's updates are combined.
+    pub rule: AggregationRule,
+}
+
+impl GroupOptions {
+    /// A short description, e.g. `fedavg, sensor-aware (device_model)`.
+    pub fn label(&self) -> String {
+        let mut out = self.rule.label();
+        if let Some(g) = &self.group_column
+            && self.rule.needs_groups()
+        {
+            out.push_str(&format!(" over {g}"));
+        }
+        if let Some(c) = &self.sensor_column {
+            out.push_str(&format!(", sensor-aware ({c})"));
+        }
+        out
+    }
+}
+
+/// The distinct values of `column` among `members`, sorted; an error naming the column and
+/// the columns the cohort has when no member has a value in it.
+fn column_levels(cohort: &Cohort, members: &[usize], column: &str) -> anyhow::Result<Vec<String>> {
+    let mut levels: Vec<String> = members
+        .iter()
+        .filter_map(|&i| {
+            cohort
+                .groups
+                .get(&cohort.participants[i].participant)?
+                .get(column)
+                .cloned()
+        })
+        .collect();
+    levels.sort();
+    levels.dedup();
+    if levels.is_empty() {
+        let mut known: Vec<&String> = cohort.groups.values().flat_map(|g| g.keys()).collect();
+        known.sort();
+        known.dedup();
+        bail!(
+            "participants.csv has no value in column `{column}` for any participant; its group columns are: {}",
+            if known.is_empty() {
+                "none".to_owned()
+            } else {
+                known.iter().map(|k| k.as_str()).collect::<Vec<_>>().join(", ")
+            }
+        );
+    }
+    Ok(levels)
 }
 
 /// Paths and timings of a finished evaluation.
@@ -138,6 +201,14 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
     let learned = match &opts.prior {
         Some(path) => {
             let (priors, source) = read_prior_file(path)?;
+            if let Some(column) = &opts.groups.sensor_column
+                && priors.sensor_column.as_deref() != Some(column.as_str())
+            {
+                bail!(
+                    "--sensor-column {column}: the prior file {} holds no sensor terms for that column; learn the prior again with --sensor-column",
+                    path.display()
+                );
+            }
             LearnedPrior {
                 priors,
                 source: format!("file {} ({source})", path.display()),
@@ -146,7 +217,15 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
         }
         None => {
             let work = opts.out_dir.join("federated");
-            learn_prior(&cohort, opts.rounds, opts.screened, &work, opts.progress).await?
+            learn_prior(
+                &cohort,
+                opts.rounds,
+                opts.screened,
+                &opts.groups,
+                &work,
+                opts.progress,
+            )
+            .await?
         }
     };
     let LearnedPrior {
@@ -220,7 +299,7 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
 /// A learned (or loaded) prior, how it was learned and what it took.
 #[derive(Debug, Default)]
 pub struct LearnedPrior {
-    pub priors: Vec<PriorParams>,
+    pub priors: CohortPriors,
     /// How it was learned, in words (the report's prior source line).
     pub source: String,
     pub enrolment: Duration,
@@ -256,6 +335,7 @@ pub async fn learn_prior(
     cohort: &Arc<Cohort>,
     rounds: u32,
     screened: bool,
+    groups: &GroupOptions,
     work_dir: &Path,
     progress: bool,
 ) -> anyhow::Result<LearnedPrior> {
@@ -303,11 +383,45 @@ pub async fn learn_prior(
         start_when_enrolled: n as u32,
         round_deadline_ms: 120_000,
         selection_seed: 7,
-        aggregation: Default::default(),
+        aggregation: Aggregation {
+            rule: groups.rule,
+            clip_norm: None,
+        },
         alert_budget_per_participant_month:
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
         review_level: plimsoll_server::packets::FlagLevel::Alert,
+        sensor_models: groups
+            .sensor_column
+            .as_ref()
+            .map(|column| -> anyhow::Result<SensorModels> {
+                Ok(SensorModels {
+                    models: column_levels(cohort, &members, column)
+                        .context("--sensor-column")?,
+                    params: plimsoll_server::study::DEFAULT_SENSOR_PARAMS
+                        .iter()
+                        .map(|s| (*s).to_owned())
+                        .collect(),
+                    min_devices: plimsoll_server::study::DEFAULT_MIN_DEVICES_PER_MODEL,
+                    column: Some(column.clone()),
+                })
+            })
+            .transpose()?,
+        subgroups: groups
+            .group_column
+            .as_ref()
+            .map(|column| -> anyhow::Result<Subgroups> {
+                Ok(Subgroups {
+                    column: column.clone(),
+                    levels: column_levels(cohort, &members, column).context("--group-column")?,
+                    calibrate_per_group: false,
+                    min_devices_per_group: plimsoll_server::study::DEFAULT_MIN_DEVICES_PER_GROUP,
+                })
+            })
+            .transpose()?,
     };
+    config
+        .validate()
+        .map_err(|e| anyhow::anyhow!("federated training settings: {e}"))?;
     let pool = PoolOptions::default();
     let first_pass = federated_pass(
         cohort,
@@ -321,11 +435,20 @@ pub async fn learn_prior(
     .await?;
     let first = first_pass.priors;
     let mut learned = LearnedPrior {
-        priors: Vec::new(),
+        priors: CohortPriors::default(),
         source: format!(
-            "federated: {rounds} rounds over loopback gRPC on this cohort, {} devices enrolled, {per_round} per round, prior version {}; {} devices at a time over {} connections; {} devices dropped",
+            "federated ({}): {rounds} rounds over loopback gRPC on this cohort, {} devices enrolled, {per_round} per round, prior version {}{}; {} devices at a time over {} connections; {} devices dropped",
+            groups.label(),
             first_pass.enrolled,
             first_pass.version,
+            if first.by_sensor.is_empty() {
+                String::new()
+            } else {
+                format!(
+                    ", own terms for sensor models {}",
+                    first.by_sensor.keys().cloned().collect::<Vec<_>>().join(", ")
+                )
+            },
             pool.workers,
             pool.connections,
             first_pass.dropped
@@ -344,7 +467,7 @@ pub async fn learn_prior(
     let mut screened_participants = Vec::with_capacity(n);
     for &i in &members {
         let series = &cohort.participants[i];
-        let predictors = shared_prior_filters(series, &first)?;
+        let predictors = shared_prior_filters(series, &first.pooled)?;
         let scores = crate::detect::score_participant(
             series,
             predictors,
@@ -365,7 +488,11 @@ pub async fn learn_prior(
     second_config.study_id = "evaluation-screened".into();
     second_config.rounds = more;
     for layout in &mut second_config.signals {
-        if let Some(p) = first.iter().find(|p| p.signal.column() == layout.signal) {
+        if let Some(p) = first
+            .pooled
+            .iter()
+            .find(|p| p.signal.column() == layout.signal)
+        {
             layout.initial = p.values.to_vec();
         }
     }
@@ -382,9 +509,10 @@ pub async fn learn_prior(
     .await?;
     let second = second_pass.priors;
     let lengths: Vec<String> = second
+        .pooled
         .iter()
         .filter_map(|p| {
-            let before = first.iter().find(|q| q.signal == p.signal)?;
+            let before = first.pooled.iter().find(|q| q.signal == p.signal)?;
             Some(format!(
                 "{} {:.1} -> {:.1}",
                 p.signal.column(),
@@ -416,7 +544,7 @@ pub fn screened_rounds(rounds: u32) -> u32 {
 
 /// What one federated pass gave.
 struct Pass {
-    priors: Vec<PriorParams>,
+    priors: CohortPriors,
     version: u32,
     enrolled: usize,
     dropped: usize,
@@ -438,6 +566,7 @@ async fn federated_pass(
 ) -> anyhow::Result<Pass> {
     std::fs::create_dir_all(work_dir)
         .with_context(|| format!("creating {}", work_dir.display()))?;
+    let sensor_column = config.sensor_models.as_ref().and_then(|m| m.column.clone());
     let db_path = work_dir.join("aggregator.db");
     for suffix in ["", "-wal", "-shm"] {
         let p = PathBuf::from(format!("{}{suffix}", db_path.display()));
@@ -469,12 +598,34 @@ async fn federated_pass(
         );
     }
     let latest = run.history.last().context("no prior was published")?;
-    let mut priors = Vec::with_capacity(latest.params.len());
-    for p in &latest.params {
-        let signal: Signal = p.signal.parse()?;
-        priors.push(
-            PriorParams::from_slice(signal, &p.values)
-                .with_context(|| format!("published prior of {signal}"))?,
+    let parse = |params: &[plimsoll_server::study::SignalParams], what: &str| {
+        let mut priors = Vec::with_capacity(params.len());
+        for p in params {
+            let signal: Signal = p.signal.parse()?;
+            priors.push(
+                PriorParams::from_slice(signal, &p.values)
+                    .with_context(|| format!("published {what}prior of {signal}"))?,
+            );
+        }
+        anyhow::Ok(priors)
+    };
+    let mut priors = CohortPriors {
+        pooled: parse(&latest.params, "")?,
+        sensor_column: sensor_column.clone(),
+        by_sensor: Default::default(),
+    };
+    let models: std::collections::BTreeSet<&str> = latest
+        .sensor_terms
+        .iter()
+        .map(|t| t.sensor_model.as_str())
+        .collect();
+    for model in models {
+        priors.by_sensor.insert(
+            model.to_owned(),
+            parse(
+                &latest.params_for(Some(model)),
+                &format!("sensor model {model}'s "),
+            )?,
         );
     }
     Ok(Pass {

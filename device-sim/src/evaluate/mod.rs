@@ -4,6 +4,7 @@
 //! ([`command`]). Definitions of every metric and report key: `docs/evaluation.md`.
 
 pub mod command;
+pub mod compare;
 pub mod methods;
 pub mod metrics;
 pub mod prior_file;

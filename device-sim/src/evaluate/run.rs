@@ -61,6 +61,45 @@ pub struct EvaluationSettings {
     pub threads: usize,
     /// Where the shared prior came from, in words (reported).
     pub prior_source: String,
+    /// Calibrate each method's alarm threshold per level of this `participants.csv` column
+    /// (a level with fewer than [`MIN_PARTICIPANTS_PER_GROUP`] participants uses the whole
+    /// cohort's threshold); `None`: one threshold for everyone.
+    pub calibrate_column: Option<String>,
+}
+
+/// Participants a group needs for a calibration of its own (the aggregator's
+/// `subgroups.min_devices_per_group` default).
+pub const MIN_PARTICIPANTS_PER_GROUP: usize =
+    plimsoll_server::study::DEFAULT_MIN_DEVICES_PER_GROUP as usize;
+
+/// The shared prior of a cohort: pooled, and per sensor model for the models that have
+/// terms of their own (a sensor-aware prior).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct CohortPriors {
+    pub pooled: Vec<PriorParams>,
+    /// The `participants.csv` column naming each participant's sensor model.
+    pub sensor_column: Option<String>,
+    /// Sensor model → its priors (its own measurement terms).
+    pub by_sensor: BTreeMap<String, Vec<PriorParams>>,
+}
+
+impl CohortPriors {
+    /// A prior without sensor terms.
+    pub fn pooled(pooled: Vec<PriorParams>) -> CohortPriors {
+        CohortPriors {
+            pooled,
+            ..CohortPriors::default()
+        }
+    }
+
+    /// The sensor model `participant` uses terms of, if any.
+    pub fn sensor_of<'a>(&self, cohort: &'a Cohort, participant: &str) -> Option<&'a str> {
+        let column = self.sensor_column.as_ref()?;
+        let model = cohort.groups.get(participant)?.get(column)?;
+        self.by_sensor
+            .contains_key(model)
+            .then_some(model.as_str())
+    }
 }
 
 impl EvaluationSettings {
@@ -75,6 +114,7 @@ impl EvaluationSettings {
             local_fit_days: DEFAULT_LOCAL_FIT_DAYS,
             threads: std::thread::available_parallelism().map_or(2, |n| n.get()),
             prior_source: prior_source.into(),
+            calibrate_column: None,
         }
     }
 }
@@ -155,7 +195,7 @@ fn par_map<T: Send>(
 pub fn evaluate_cohort(
     cohort: &Cohort,
     cohort_name: &str,
-    priors: &[PriorParams],
+    priors: &CohortPriors,
     settings: &EvaluationSettings,
     progress: Option<&ProgressBar>,
 ) -> anyhow::Result<EvaluationReport> {
@@ -169,15 +209,30 @@ pub fn evaluate_cohort(
             settings.budget_per_month
         );
     }
-    let mut models: Vec<(Signal, StateSpacePrior)> = Vec::with_capacity(priors.len());
-    for p in priors {
-        if models.iter().any(|(s, _)| *s == p.signal) {
-            bail!("two priors for {}", p.signal);
+    let build = |priors: &[PriorParams], what: &str| {
+        let mut models: Vec<(Signal, StateSpacePrior)> = Vec::with_capacity(priors.len());
+        for p in priors {
+            if models.iter().any(|(s, _)| *s == p.signal) {
+                bail!("two priors for {}", p.signal);
+            }
+            let model = StateSpacePrior::new(p)
+                .with_context(|| format!("{what} prior of {}", p.signal))?;
+            models.push((p.signal, model));
         }
-        let model =
-            StateSpacePrior::new(p).with_context(|| format!("shared prior of {}", p.signal))?;
-        models.push((p.signal, model));
+        Ok(models)
+    };
+    let models = build(&priors.pooled, "shared")?;
+    let mut by_sensor = BTreeMap::new();
+    for (model, p) in &priors.by_sensor {
+        by_sensor.insert(model.as_str(), build(p, &format!("sensor model {model}'s"))?);
     }
+    // A participant's shared prior: its sensor model's where the model has its own terms.
+    let models_of = |series: &ParticipantSeries| -> &[(Signal, StateSpacePrior)] {
+        priors
+            .sensor_of(cohort, &series.participant)
+            .and_then(|m| by_sensor.get(m))
+            .map_or(&models[..], |v| &v[..])
+    };
     let configs: Vec<DetectConfig> = Method::ALL
         .iter()
         .map(|&m| {
@@ -203,11 +258,16 @@ pub fn evaluate_cohort(
             .iter()
             .enumerate()
             .map(|(m, &method)| {
-                Ok(
-                    run_method(method, series, &models, &local[i].0, &identity, &configs[m])?
-                        .map(|s| s.moments)
-                        .unwrap_or_default(),
-                )
+                Ok(run_method(
+                    method,
+                    series,
+                    models_of(series),
+                    &local[i].0,
+                    &identity,
+                    &configs[m],
+                )?
+                .map(|s| s.moments)
+                .unwrap_or_default())
             })
             .collect()
     })?;
@@ -222,13 +282,13 @@ pub fn evaluate_cohort(
         .collect();
 
     // Pass 2: scores with the learned correlation.
-    let scored: Vec<Scored> = par_map(cohort, settings.threads, |i, series| {
+    let mut scored: Vec<Scored> = par_map(cohort, settings.threads, |i, series| {
         let mut per_method = Vec::with_capacity(Method::ALL.len());
         for (m, &method) in Method::ALL.iter().enumerate() {
             let s = run_method(
                 method,
                 series,
-                &models,
+                models_of(series),
                 &local[i].0,
                 &correlations[m],
                 &configs[m],
@@ -286,6 +346,18 @@ pub fn evaluate_cohort(
             FlagLevel::Alert => alert.threshold,
             FlagLevel::Watch => watch.threshold,
         };
+        let mut group_notes = Vec::new();
+        if let Some(column) = &settings.calibrate_column {
+            group_notes = calibrate_per_group(
+                cohort,
+                &mut scored,
+                m,
+                column,
+                alarm_threshold,
+                settings,
+                gap,
+            );
+        }
 
         let truths: Vec<Truth<'_>> = scored
             .iter()
@@ -340,6 +412,7 @@ pub fn evaluate_cohort(
         summary.alert_threshold = alert;
         summary.watch_threshold = watch;
         summary.calibration_rate_at_alert = alert.rate;
+        summary.notes.extend(group_notes);
         if method == Method::LocalOnly {
             let s = &local_stats;
             summary.notes.push(format!(
@@ -390,6 +463,79 @@ pub fn evaluate_cohort(
         methods,
         caution: CAUTION.into(),
     })
+}
+
+/// Per-group calibration of method `m` (evaluation form of the aggregator's per-group
+/// histogram sums): each level of `column` with at least [`MIN_PARTICIPANTS_PER_GROUP`]
+/// participants gets the threshold its own summed episode histogram gives for the budget
+/// (`h_g`), the others the whole cohort's (`h`). Scores of a participant in group `g` are
+/// then shifted by `h − h_g`, so the single threshold `h` flags exactly what `h_g` flags in
+/// the group (alarm days and episodes depend on the threshold only through `score ≥ h`):
+/// the calibrated default applies each group's own threshold, and a sweep moves every
+/// group's threshold by the same amount. Returns a note per level.
+fn calibrate_per_group(
+    cohort: &Cohort,
+    scored: &mut [Scored],
+    m: usize,
+    column: &str,
+    pooled_threshold: f64,
+    settings: &EvaluationSettings,
+    gap: crate::detect::episodes::Grouping,
+) -> Vec<String> {
+    let level_of = |s: &Scored| {
+        cohort
+            .groups
+            .get(&cohort.participants[s.index].participant)
+            .and_then(|g| g.get(column))
+            .cloned()
+    };
+    let mut hists: BTreeMap<String, (usize, EpisodeHistogram)> = BTreeMap::new();
+    for s in scored.iter() {
+        let Some(level) = level_of(s) else { continue };
+        let entry = hists.entry(level).or_default();
+        entry.0 += 1;
+        entry
+            .1
+            .merge(&EpisodeHistogram::from_days(&expand(&s.per_method[m].0), gap));
+    }
+    let budget = match settings.alarm_level {
+        FlagLevel::Alert => settings.budget_per_month,
+        FlagLevel::Watch => WATCH_BUDGET_FACTOR * settings.budget_per_month,
+    };
+    let thresholds: BTreeMap<String, f64> = hists
+        .iter()
+        .map(|(level, (n, hist))| {
+            let h = if *n >= MIN_PARTICIPANTS_PER_GROUP {
+                hist.threshold_for(budget).threshold
+            } else {
+                pooled_threshold
+            };
+            (level.clone(), h)
+        })
+        .collect();
+    for s in scored.iter_mut() {
+        let Some(h) = level_of(s).and_then(|l| thresholds.get(&l).copied()) else {
+            continue;
+        };
+        let shift = (pooled_threshold - h) as f32;
+        for c in &mut s.per_method[m].0 {
+            c.score += shift;
+        }
+    }
+    thresholds
+        .iter()
+        .map(|(level, h)| {
+            let n = hists[level].0;
+            format!(
+                "calibrated per {column}: {level} ({n} participants) alarm threshold {h:.2}{}",
+                if n >= MIN_PARTICIPANTS_PER_GROUP {
+                    ""
+                } else {
+                    " (too few participants: the whole cohort's)"
+                }
+            )
+        })
+        .collect()
 }
 
 /// Observed days of a signal before `method` scores it.
