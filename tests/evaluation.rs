@@ -291,3 +291,117 @@ async fn evaluate_command_end_to_end() {
     assert_eq!(svg2.matches("<polyline").count(), 0);
     assert!(svg2.contains("No target events"));
 }
+
+/// Subgroups end to end on a small fairness-stress cohort: a sensor-aware prior learned with
+/// group-loss-ranked reweighting over the sensor model (models with 10 or more devices get
+/// terms of their own, written to prior.json and read back), alarm thresholds calibrated per
+/// age band (one note per level), and the aggregation comparison's table of settings.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn sensor_aware_prior_fairness_rule_and_comparison() {
+    use plimsoll_device::evaluate::command::GroupOptions;
+    use plimsoll_device::evaluate::compare::{compare_aggregation, comparison_settings};
+    use plimsoll_server::aggregate::AggregationRule;
+
+    let root = tempfile::tempdir().unwrap();
+    let cohort_dir = root.path().join("cohort");
+    let scenario = Scenario::from_path(
+        &PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../demo-data/fairness-stress.toml"),
+    )
+    .unwrap();
+    let sim = SimulateOptions {
+        seed: Some(5),
+        participants: Some(40),
+        days: Some(60),
+    };
+    simulate_to_dir(&scenario, &sim, &cohort_dir, &mut |_, _| {}).unwrap();
+    let out = root.path().join("eval");
+    let mut opts = options(&cohort_dir, &out, None);
+    opts.screened = false;
+    opts.groups = GroupOptions {
+        sensor_column: Some("device_model".into()),
+        group_column: Some("device_model".into()),
+        rule: AggregationRule::GroupRank { lambda: 5.0 },
+    };
+    opts.settings.calibrate_column = Some("age_band".into());
+    let outcome = run_evaluation(&opts).await.unwrap();
+    let report = json(&outcome);
+    let source = report["settings"]["prior_source"].as_str().unwrap();
+    assert!(
+        source.contains("group_rank λ=5 over device_model, sensor-aware (device_model)"),
+        "{source}"
+    );
+    let prior: Value =
+        serde_json::from_str(&std::fs::read_to_string(&outcome.prior).unwrap()).unwrap();
+    assert_eq!(prior["sensor_column"], "device_model");
+    let cohort = plimsoll_device::cohort::read_cohort(
+        &cohort_dir,
+        plimsoll_device::cohort::BadRowPolicy::Abort,
+    )
+    .unwrap();
+    let mut per_model = std::collections::BTreeMap::<&str, usize>::new();
+    for g in cohort.groups.values() {
+        *per_model.entry(g["device_model"].as_str()).or_default() += 1;
+    }
+    let with_terms: Vec<&str> = prior["sensor_priors"]
+        .as_object()
+        .map(|o| o.keys().map(String::as_str).collect())
+        .unwrap_or_default();
+    for (model, n) in &per_model {
+        assert_eq!(
+            with_terms.contains(model),
+            *n >= 10,
+            "{model}: {n} devices; models with terms of their own: {with_terms:?}"
+        );
+    }
+    // Reading the file back keeps the sensor terms.
+    let (back, _) =
+        plimsoll_device::evaluate::prior_file::read_prior_file(&outcome.prior).unwrap();
+    assert_eq!(back.by_sensor.len(), with_terms.len());
+    let federated = report["methods"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|m| m["method"] == "federated")
+        .unwrap();
+    let notes: Vec<&str> = federated["notes"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter_map(Value::as_str)
+        .filter(|n| n.starts_with("calibrated per age_band"))
+        .collect();
+    let levels: std::collections::BTreeSet<&str> = cohort
+        .groups
+        .values()
+        .filter_map(|g| g.get("age_band").map(String::as_str))
+        .collect();
+    assert_eq!(notes.len(), levels.len(), "{notes:?}");
+
+    // The comparison: plain FedAvg and the sensor-aware FedAvg.
+    let settings = comparison_settings(Some("device_model"), Some("device_model"));
+    assert_eq!(settings[0].rule, AggregationRule::Fedavg);
+    assert_eq!(settings[0].sensor_column, None);
+    assert_eq!(settings.len(), 6, "{settings:?}");
+    let mut eval_settings = EvaluationSettings::new("");
+    eval_settings.threads = 2;
+    let cmp_out = root.path().join("compare");
+    std::fs::create_dir_all(&cmp_out).unwrap();
+    let comparison = compare_aggregation(
+        &std::sync::Arc::new(cohort),
+        "fairness",
+        3,
+        &eval_settings,
+        &settings[..2],
+        &cmp_out,
+        false,
+    )
+    .await
+    .unwrap();
+    assert_eq!(comparison.calibrated.len(), 2);
+    assert_eq!(comparison.matched.len(), 2 * 4, "two settings × four levels");
+    let csv = std::fs::read_to_string(&comparison.csv).unwrap();
+    assert!(csv.starts_with(
+        "setting,matched_level,sensitivity,group_column,sensitivity_disparity,false_alarm_ratio\n"
+    ));
+    assert!(csv.contains("\"fedavg, sensor-aware (device_model)\""), "{csv}");
+}

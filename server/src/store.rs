@@ -1439,8 +1439,10 @@ mod tests {
         let path = dir.join("v6.db");
         let _ = std::fs::remove_file(&path);
         {
-            // A version-6 database: today's schema without the version-7 table.
+            // A version-6 database: today's schema without the version-7 table and the
+            // version-8 columns.
             let store = Store::open(&path).unwrap();
+            store.conn().execute_batch(DROP_V8).unwrap();
             store
                 .conn()
                 .execute_batch(
@@ -1470,6 +1472,55 @@ mod tests {
         summary.signals[0].days_with_data = 18;
         store.upsert_data_summary("s", 1, &summary, 9).unwrap();
         assert_eq!(store.data_summaries("s").unwrap(), vec![(1, summary, 9)]);
+        drop(store);
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+
+    /// Today's schema back to version 7: without the version-8 columns.
+    const DROP_V8: &str = "
+        ALTER TABLE devices DROP COLUMN sensor_model;
+        ALTER TABLE devices DROP COLUMN group_label;
+        ALTER TABLE priors DROP COLUMN sensor_terms_json;
+        ALTER TABLE detection_stages DROP COLUMN group_sums_json;
+        UPDATE schema_version SET version = 7;";
+
+    #[test]
+    fn a_version_7_database_gains_sensor_models_and_groups_and_keeps_its_rows() {
+        let dir = std::env::temp_dir().join(format!("plimsoll-v7-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = dir.join("v7.db");
+        let _ = std::fs::remove_file(&path);
+        {
+            let store = Store::open(&path).unwrap();
+            store.conn().execute_batch(DROP_V8).unwrap();
+            store
+                .conn()
+                .execute_batch(
+                    "INSERT INTO studies (study_id, config_json, created_ms) VALUES ('s', '{}', 0);
+                     INSERT INTO devices (study_id, label, signals_json, enrolled_ms)
+                       VALUES ('s', 'p-1', '[\"steps\"]', 0);
+                     INSERT INTO priors (study_id, version, round_id, params_json, contributions_json, created_ms)
+                       VALUES ('s', 0, 0, '[{\"signal\":\"steps\",\"values\":[1.0]}]', '[]', 0);
+                     INSERT INTO detection_stages (study_id, stage, completed_ms, n_devices, sum_json)
+                       VALUES ('s', 'episode_histogram', 5, 1,
+                               '{\"episode_histogram\":{\"episodes\":[],\"scored_days\":0}}');",
+                )
+                .unwrap();
+            assert_eq!(store.schema_version().unwrap(), 7);
+        }
+        let store = Store::open(&path).unwrap();
+        assert_eq!(store.schema_version().unwrap(), SCHEMA_VERSION);
+        let devices = store.devices("s").unwrap();
+        assert_eq!(devices.len(), 1, "rows kept");
+        assert_eq!((devices[0].sensor_model.as_deref(), devices[0].group.as_deref()), (None, None));
+        let priors = store.priors("s").unwrap();
+        assert_eq!(priors.len(), 1);
+        assert!(priors[0].sensor_terms.is_empty());
+        let stage = store
+            .completed_stage("s", DetectionStage::EpisodeHistogram)
+            .unwrap()
+            .expect("the completed stage is kept");
+        assert!(stage.group_sums.is_empty());
         drop(store);
         std::fs::remove_dir_all(&dir).unwrap();
     }

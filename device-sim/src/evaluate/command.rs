@@ -437,7 +437,7 @@ pub async fn learn_prior(
     let mut learned = LearnedPrior {
         priors: CohortPriors::default(),
         source: format!(
-            "federated ({}): {rounds} rounds over loopback gRPC on this cohort, {} devices enrolled, {per_round} per round, prior version {}{}; {} devices at a time over {} connections; {} devices dropped",
+            "federated: {rounds} rounds over loopback gRPC on this cohort ({}), {} devices enrolled, {per_round} per round, prior version {}{}; {} devices at a time over {} connections; {} devices dropped",
             groups.label(),
             first_pass.enrolled,
             first_pass.version,

@@ -684,3 +684,95 @@ fn participant_result(
             .collect(),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use chrono::NaiveDate;
+    use rand::SeedableRng;
+    use rand_chacha::ChaCha8Rng;
+    use rand_distr::{Distribution, StandardNormal};
+    use statrs::distribution::{ContinuousCDF, Normal};
+
+    /// Per-group calibration on scores of a known distribution: 30 participants a group,
+    /// a year of independent daily scores, N(0, 1) in group `a` and N(1, 1) in group `b`.
+    /// With one threshold, `b` raises far more false alarms; calibrated per group, each
+    /// group's episode rate at the cohort's threshold is within its budget (and above half
+    /// of it: the grid's step is 0.1), and the two groups' thresholds lie about one unit
+    /// apart, near the normal quantile of the budget's daily rate (statrs 0.18
+    /// `Normal::inverse_cdf`; episodes of independent days start at rate ≈ p(1 − p)).
+    #[test]
+    fn per_group_calibration_meets_the_budget_in_each_group() {
+        let mut rng = ChaCha8Rng::seed_from_u64(11);
+        let start = NaiveDate::from_ymd_opt(2024, 1, 1).unwrap();
+        let mut cohort = Cohort::default();
+        let mut scored = Vec::new();
+        for i in 0..60 {
+            let participant = format!("p{i:02}");
+            let group = if i < 30 { "a" } else { "b" };
+            let mean = if i < 30 { 0.0 } else { 1.0 };
+            cohort.participants.push(ParticipantSeries {
+                participant: participant.clone(),
+                dates: vec![start],
+                values: BTreeMap::new(),
+            });
+            cohort.groups.insert(
+                participant,
+                BTreeMap::from([("arm".to_owned(), group.to_owned())]),
+            );
+            let days: Vec<Compact> = (0..365)
+                .map(|d| {
+                    let z: f64 = StandardNormal.sample(&mut rng);
+                    Compact {
+                        date: start + chrono::Duration::days(d),
+                        score: (mean + z) as f32,
+                        window_days: 1,
+                    }
+                })
+                .collect();
+            scored.push(Scored {
+                index: i,
+                per_method: vec![(days, Vec::new())],
+            });
+        }
+        let mut settings = EvaluationSettings::new("test");
+        settings.budget_per_month = 0.3;
+        let gap = settings.detect.grouping();
+        let rate_of = |scored: &[Scored], group: std::ops::Range<usize>, h: f64| {
+            let mut hist = EpisodeHistogram::default();
+            for s in &scored[group] {
+                hist.merge(&EpisodeHistogram::from_days(&expand(&s.per_method[0].0), gap));
+            }
+            let i = crate::detect::calibration::edges()
+                .iter()
+                .position(|e| (e - h).abs() < 1e-9)
+                .expect("a grid threshold");
+            hist.rate(i)
+        };
+        let mut pooled = EpisodeHistogram::default();
+        for s in &scored {
+            pooled.merge(&EpisodeHistogram::from_days(&expand(&s.per_method[0].0), gap));
+        }
+        let h = pooled.threshold_for(0.3).threshold;
+        let (a, b) = (rate_of(&scored, 0..30, h), rate_of(&scored, 30..60, h));
+        assert!(b > 5.0 * a, "one threshold: a {a}, b {b} per participant-month");
+
+        let notes = calibrate_per_group(&cohort, &mut scored, 0, "arm", h, &settings, gap);
+        assert_eq!(notes.len(), 2, "{notes:?}");
+        for group in [0..30, 30..60] {
+            let r = rate_of(&scored, group.clone(), h);
+            assert!(
+                (0.15..=0.3).contains(&r),
+                "group {group:?}: {r} per participant-month at the calibrated default"
+            );
+        }
+        let threshold_of = |note: &str| -> f64 {
+            note.rsplit("threshold ").next().unwrap().parse().unwrap()
+        };
+        let (ha, hb) = (threshold_of(&notes[0]), threshold_of(&notes[1]));
+        assert!((hb - ha - 1.0).abs() <= 0.25, "thresholds {ha} and {hb}");
+        let p = 0.3 / 30.4375;
+        let z = Normal::new(0.0, 1.0).unwrap().inverse_cdf(1.0 - p);
+        assert!((ha - z).abs() <= 0.3, "group a threshold {ha}, normal quantile {z}");
+    }
+}
