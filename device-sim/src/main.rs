@@ -126,6 +126,25 @@ enum Command {
         /// Alert episodes only; `watch`: Watch and Alert).
         #[arg(long, value_enum, default_value_t = AlarmLevel::Alert)]
         review_level: AlarmLevel,
+        /// A sensor model devices may declare (repeatable): the prior then keeps each
+        /// model's mean offset and measurement noise, pooled for a model with fewer than
+        /// 10 enrolled devices.
+        #[arg(long = "sensor-model")]
+        sensor_models: Vec<String>,
+        /// A participant group column devices report at enrolment, e.g. age_band.
+        #[arg(long, requires = "group_levels")]
+        group_column: Option<String>,
+        /// A level of --group-column (repeatable).
+        #[arg(long = "group-level", requires = "group_column")]
+        group_levels: Vec<String>,
+        /// Calibrate the detector's thresholds per level of --group-column (a level with
+        /// fewer than 10 submitting devices uses the whole study's).
+        #[arg(long, requires = "group_column")]
+        calibrate_per_group: bool,
+        /// How each round's updates are combined: `fedavg`, `group-rank:λ` (over
+        /// --group-column) or `q-fedavg:q`.
+        #[arg(long, value_parser = parse_rule, default_value = "fedavg")]
+        aggregation: AggregationRule,
         /// Output file (never overwritten).
         #[arg(long, default_value = "study.json")]
         out: PathBuf,
@@ -400,6 +419,11 @@ async fn main() -> anyhow::Result<()> {
             round_minutes,
             false_alarm_budget,
             review_level,
+            sensor_models,
+            group_column,
+            group_levels,
+            calibrate_per_group,
+            aggregation,
             out,
         } => {
             let signals: Vec<Signal> = if signals.is_empty() {
@@ -424,14 +448,32 @@ async fn main() -> anyhow::Result<()> {
                 start_when_enrolled: min_quorum,
                 round_deadline_ms: u64::from(round_minutes) * 60_000,
                 selection_seed: rand::random(),
-                aggregation: Default::default(),
+                aggregation: plimsoll_server::aggregate::Aggregation {
+                    rule: aggregation,
+                    clip_norm: None,
+                },
                 alert_budget_per_participant_month: false_alarm_budget,
                 review_level: match review_level {
                     AlarmLevel::Alert => plimsoll_server::packets::FlagLevel::Alert,
                     AlarmLevel::Watch => plimsoll_server::packets::FlagLevel::Watch,
                 },
-                sensor_models: None,
-                subgroups: None,
+                sensor_models: (!sensor_models.is_empty()).then(|| {
+                    plimsoll_server::study::SensorModels {
+                        models: sensor_models,
+                        params: plimsoll_server::study::DEFAULT_SENSOR_PARAMS
+                            .iter()
+                            .map(|s| (*s).to_owned())
+                            .collect(),
+                        min_devices: plimsoll_server::study::DEFAULT_MIN_DEVICES_PER_MODEL,
+                        column: None,
+                    }
+                }),
+                subgroups: group_column.map(|column| plimsoll_server::study::Subgroups {
+                    column,
+                    levels: group_levels,
+                    calibrate_per_group,
+                    min_devices_per_group: plimsoll_server::study::DEFAULT_MIN_DEVICES_PER_GROUP,
+                }),
             };
             config
                 .validate()

@@ -152,14 +152,23 @@ fn default_min_devices_per_group() -> u32 {
     DEFAULT_MIN_DEVICES_PER_GROUP
 }
 
-/// Distinct, non-empty, valid identifiers; `what` names the field.
+/// Distinct names of 1 to 64 characters without control characters or surrounding spaces
+/// (group levels such as `65+` or `V-VI` are kept as a cohort file writes them); `what`
+/// names the field.
 fn check_names(what: &str, names: &[String]) -> Result<(), String> {
     if names.is_empty() {
         return Err(format!("{what}: at least one is needed"));
     }
     for (i, n) in names.iter().enumerate() {
-        if !valid_id(n) {
-            return Err(format!("{what}[{i}]: `{n}` must match [A-Za-z0-9_-]{{1,64}}"));
+        if n.is_empty()
+            || n.chars().count() > 64
+            || n.trim() != n
+            || n.chars().any(char::is_control)
+        {
+            return Err(format!(
+                "{what}[{i}]: `{}` must be 1 to 64 characters, without control characters or surrounding spaces",
+                n.escape_debug()
+            ));
         }
         if names[..i].contains(n) {
             return Err(format!("{what}[{i}]: `{n}` repeated"));
