@@ -354,8 +354,7 @@ async fn sensor_aware_prior_fairness_rule_and_comparison() {
         );
     }
     // Reading the file back keeps the sensor terms.
-    let (back, _) =
-        plimsoll_device::evaluate::prior_file::read_prior_file(&outcome.prior).unwrap();
+    let (back, _) = plimsoll_device::evaluate::prior_file::read_prior_file(&outcome.prior).unwrap();
     assert_eq!(back.by_sensor.len(), with_terms.len());
     let federated = report["methods"]
         .as_array()
@@ -398,10 +397,17 @@ async fn sensor_aware_prior_fairness_rule_and_comparison() {
     .await
     .unwrap();
     assert_eq!(comparison.calibrated.len(), 2);
-    assert_eq!(comparison.matched.len(), 2 * 4, "two settings × four levels");
+    assert_eq!(
+        comparison.matched.len(),
+        2 * 4,
+        "two settings × four levels"
+    );
     let csv = std::fs::read_to_string(&comparison.csv).unwrap();
     assert!(csv.starts_with(
         "setting,matched_level,sensitivity,group_column,sensitivity_disparity,false_alarm_ratio\n"
     ));
-    assert!(csv.contains("\"fedavg, sensor-aware (device_model)\""), "{csv}");
+    assert!(
+        csv.contains("\"fedavg, sensor-aware (device_model)\""),
+        "{csv}"
+    );
 }

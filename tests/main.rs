@@ -22,7 +22,7 @@ mod review_login_limits;
 mod review_support;
 mod server_rpc;
 mod simulator;
-mod subgroups;
 mod ss_likelihood;
+mod subgroups;
 mod support;
 mod transport_tls;

@@ -9,7 +9,8 @@ use std::sync::Arc;
 use plimsoll_device::cohort::{self, BadRowPolicy, Cohort, Scenario, SimulateOptions};
 use plimsoll_device::demo::cohort_signals;
 use plimsoll_device::scheduler::{
-    Channels, Declared, PhaseBars, PoolOptions, enroll_all, run_federated_pooled, train_enrolled,
+    Channels, Declared, PhaseBars, PoolOptions, StudyEntry, enroll_all, run_federated_pooled,
+    train_enrolled,
 };
 use plimsoll_server::Coordinator;
 use plimsoll_server::service::now_ms;
@@ -101,16 +102,18 @@ async fn a_revoked_device_is_dropped_and_the_others_finish() {
     let members: Vec<usize> = (0..n).collect();
     let enrolment = enroll_all(
         &channels,
-        "revoked",
-        &code,
+        StudyEntry {
+            study_id: "revoked",
+            enrollment_code: &code,
+            declared: &Declared::default(),
+        },
         &cohort,
         &members,
-        &Declared::default(),
         &pool,
         None,
     )
-        .await
-        .unwrap();
+    .await
+    .unwrap();
     assert_eq!(enrolment.devices.len(), n);
     assert!(enrolment.dropped.is_empty());
     // Every device was enrolled, so round 1 is open with all of them selected; the study

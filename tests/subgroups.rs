@@ -188,7 +188,10 @@ async fn sensor_terms_per_model_pooled_fallback_and_per_group_calibration() {
     assert!(v[1..6].iter().all(|x| close(*x, 0.5)), "{v:?}");
     assert_eq!(a.sensor_terms.len(), 1, "only band-a has terms of its own");
     assert_eq!(
-        (a.sensor_terms[0].sensor_model.as_str(), a.sensor_terms[0].n_devices),
+        (
+            a.sensor_terms[0].sensor_model.as_str(),
+            a.sensor_terms[0].n_devices
+        ),
         ("band-a", 4)
     );
     // ring-c has one device, below the minimum of 3: the pooled terms.
@@ -258,7 +261,10 @@ async fn sensor_terms_per_model_pooled_fallback_and_per_group_calibration() {
     // young: devices 0, 1, 4 → episodes 1 + 2 + 5 = 8, days 100 + 200 + 500 = 800.
     let young = histogram_of(&creds[0]).await;
     assert!(young.complete);
-    assert_eq!((young.group_label.as_str(), young.group_devices), ("young", 3));
+    assert_eq!(
+        (young.group_label.as_str(), young.group_devices),
+        ("young", 3)
+    );
     assert_eq!(scored(&young), (8, 800));
     // old: below the minimum, the whole study's: 15 episodes, 1,500 days.
     let old = histogram_of(&creds[2]).await;

@@ -347,10 +347,9 @@ fn read_enrollment_code() -> anyhow::Result<String> {
 fn parse_rule(text: &str) -> Result<AggregationRule, String> {
     let (name, value) = text.split_once(':').unwrap_or((text, ""));
     let number = |what: &str| -> Result<f64, String> {
-        value
-            .trim()
-            .parse::<f64>()
-            .map_err(|e| format!("`{text}`: expected {name}:{what} with a number, e.g. {name}:1 ({e})"))
+        value.trim().parse::<f64>().map_err(|e| {
+            format!("`{text}`: expected {name}:{what} with a number, e.g. {name}:1 ({e})")
+        })
     };
     let rule = match name.trim() {
         "fedavg" if value.is_empty() => AggregationRule::Fedavg,

@@ -122,10 +122,7 @@ impl Declared {
     /// The columns `config` asks devices for.
     pub fn from_config(config: &StudyConfig) -> Declared {
         Declared {
-            sensor_column: config
-                .sensor_models
-                .as_ref()
-                .and_then(|m| m.column.clone()),
+            sensor_column: config.sensor_models.as_ref().and_then(|m| m.column.clone()),
             group_column: config.subgroups.as_ref().map(|g| g.column.clone()),
         }
     }
@@ -151,6 +148,14 @@ pub struct Enrolment {
     pub dropped: Vec<DroppedDevice>,
 }
 
+/// The study a pool enrols in: its id, its enrollment code and what its devices declare.
+#[derive(Debug, Clone, Copy)]
+pub struct StudyEntry<'a> {
+    pub study_id: &'a str,
+    pub enrollment_code: &'a str,
+    pub declared: &'a Declared,
+}
+
 /// Enrols the devices of `cohort.participants[i]` for every `i` in `members` (without consent
 /// to share flags), at most `pool.workers` at a time. A participant without a signal of
 /// [`MIN_DAYS_TO_ENROLL`] observed days, or whose enrolment still fails after its retries, is
@@ -160,14 +165,17 @@ pub struct Enrolment {
 /// Only a failure of the pool itself (a panicked task); refused devices are dropped.
 pub async fn enroll_all(
     channels: &Channels,
-    study_id: &str,
-    enrollment_code: &str,
+    study: StudyEntry<'_>,
     cohort: &Arc<Cohort>,
     members: &[usize],
-    declared: &Declared,
     pool: &PoolOptions,
     progress: Option<&ProgressBar>,
 ) -> anyhow::Result<Enrolment> {
+    let StudyEntry {
+        study_id,
+        enrollment_code,
+        declared,
+    } = study;
     let mut tasks = tokio::task::JoinSet::new();
     let mut out = Enrolment::default();
     let mut queue = members.iter().copied();
@@ -494,11 +502,13 @@ pub async fn run_federated_pooled(
     let t_enrol = Instant::now();
     let enrolment = enroll_all(
         &channels,
-        &study_id,
-        &enrollment_code,
+        StudyEntry {
+            study_id: &study_id,
+            enrollment_code: &enrollment_code,
+            declared: &declared,
+        },
         cohort,
         members,
-        &declared,
         pool,
         bars.enrolment.as_ref(),
     )

@@ -99,6 +99,8 @@ fn world() -> World {
                     consent_share_flags: i == 0,
                     enrollment_code: &code,
                     device_secret: &secret,
+                    sensor_model: "",
+                    group_label: "",
                 },
                 1,
             )

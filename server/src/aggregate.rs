@@ -212,7 +212,7 @@ impl Aggregation {
 /// `Σ w_k v_k / Σ w_k`; `None` when the weights sum to zero.
 fn weighted_mean(vectors: &[Vec<f64>], weights: &[f64]) -> Option<Vec<f64>> {
     let total: f64 = weights.iter().sum();
-    if !(total > 0.0) {
+    if total.partial_cmp(&0.0) != Some(std::cmp::Ordering::Greater) {
         return None;
     }
     let mut out = vec![0.0; vectors.first()?.len()];
@@ -412,7 +412,9 @@ mod tests {
         };
         let next = rule(0.5).combine(&[0.0], &updates, 1.0).unwrap();
         assert!((next[0] - 2.375).abs() < 1e-12, "{next:?}");
-        let fedavg = Aggregation::default().combine(&[0.0], &updates, 1.0).unwrap();
+        let fedavg = Aggregation::default()
+            .combine(&[0.0], &updates, 1.0)
+            .unwrap();
         assert!((fedavg[0] - 110.0 / 60.0).abs() < 1e-12);
         let capped = group_rank_weights(&updates, 5.0);
         assert_eq!(capped.lambda_used, 2.0);

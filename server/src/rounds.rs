@@ -23,10 +23,10 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
 use crate::store::StoredEpisode;
-use crate::store::{CompletedStage, Store, StoredOpenRound};
+use crate::store::{CompletedStage, NewDevice, Store, StoredOpenRound};
 use crate::study::{
-    Contribution, PriorVersion, SensorTerms, SignalParams, SignalUpdate, StudyConfig,
-    StudyStatus, SubmitOutcome, Work, valid_id,
+    Contribution, PriorVersion, SensorTerms, SignalParams, SignalUpdate, StudyConfig, StudyStatus,
+    SubmitOutcome, Work, valid_id,
 };
 
 /// Suggested pause before a device asks again when it has nothing to do.
@@ -543,7 +543,9 @@ impl Coordinator {
                         field,
                         format!(
                             "`{label}` was enrolled with {}; it is fixed at the first enrolment",
-                            stored.as_deref().map_or("none".to_owned(), |s| format!("`{s}`"))
+                            stored
+                                .as_deref()
+                                .map_or("none".to_owned(), |s| format!("`{s}`"))
                         ),
                     ));
                 }
@@ -555,13 +557,15 @@ impl Coordinator {
             return Ok(id);
         }
         let id = store.insert_device(
-            study_id,
-            label,
-            signals,
-            consent_share_flags,
-            &credential_hash,
-            sensor_model.as_deref(),
-            group.as_deref(),
+            &NewDevice {
+                study_id,
+                label,
+                signals,
+                consent_share_flags,
+                credential_hash: &credential_hash,
+                sensor_model: sensor_model.as_deref(),
+                group: group.as_deref(),
+            },
             now_ms,
         )?;
         rt.labels.insert(label.to_owned(), id);
@@ -1132,15 +1136,13 @@ fn summed(
     let stored = store.detection_submissions(&rt.config.study_id, stage)?;
     let all = stored
         .iter()
-        .filter(|(d, _)| !pending.is_some_and(|(p, _)| p == *d))
+        .filter(|(d, _)| pending.is_none_or(|(p, _)| p != *d))
         .map(|(d, s)| (*d, s))
         .chain(pending);
     for (device, stats) in all {
         sum.add(stats);
         n_devices += 1;
-        if per_group
-            && let Some(g) = rt.devices.get(&device).and_then(|d| d.group.as_ref())
-        {
+        if per_group && let Some(g) = rt.devices.get(&device).and_then(|d| d.group.as_ref()) {
             let entry = group_sums
                 .entry(g.clone())
                 .or_insert_with(|| (0, DetectionStats::zero(stage)));
@@ -1403,7 +1405,10 @@ fn check_declared(
         (false, Some(list)) if list.iter().any(|v| v == value) => Ok(Some(value.to_owned())),
         (false, Some(list)) => Err(AggregatorError::invalid(
             field,
-            format!("`{value}` is not one of the study's {what} ({})", list.join(", ")),
+            format!(
+                "`{value}` is not one of the study's {what} ({})",
+                list.join(", ")
+            ),
         )),
     }
 }

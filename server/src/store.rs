@@ -274,6 +274,19 @@ pub struct StoredEpisode {
     pub revisions: u32,
 }
 
+/// A device to insert ([`Store::insert_device`]).
+#[derive(Debug, Clone, Copy)]
+pub struct NewDevice<'a> {
+    pub study_id: &'a str,
+    pub label: &'a str,
+    pub signals: &'a [String],
+    pub consent_share_flags: bool,
+    /// Hex SHA-256 of the device secret.
+    pub credential_hash: &'a str,
+    pub sensor_model: Option<&'a str>,
+    pub group: Option<&'a str>,
+}
+
 /// Who a device is, as the credential check needs it.
 #[derive(Debug, Clone, PartialEq)]
 pub struct DeviceIdentity {
@@ -571,17 +584,16 @@ impl Store {
     }
 
     /// Inserts a device with the hash of its secret and returns its new id.
-    pub fn insert_device(
-        &mut self,
-        study_id: &str,
-        label: &str,
-        signals: &[String],
-        consent_share_flags: bool,
-        credential_hash: &str,
-        sensor_model: Option<&str>,
-        group: Option<&str>,
-        now_ms: i64,
-    ) -> Result<u64> {
+    pub fn insert_device(&mut self, d: &NewDevice<'_>, now_ms: i64) -> Result<u64> {
+        let &NewDevice {
+            study_id,
+            label,
+            signals,
+            consent_share_flags,
+            credential_hash,
+            sensor_model,
+            group,
+        } = d;
         self.conn.execute(
             "INSERT INTO devices (study_id, label, signals_json, enrolled_ms,
                                   consent_share_flags, credential_hash, sensor_model, group_label)
@@ -1100,9 +1112,8 @@ impl Store {
                 n_devices: n as u32,
                 sum: serde_json::from_str(&json)
                     .map_err(|e| corrupt(&format!("published {}", stage.as_str()), e))?,
-                group_sums: serde_json::from_str(&groups_json).map_err(|e| {
-                    corrupt(&format!("published {} per group", stage.as_str()), e)
-                })?,
+                group_sums: serde_json::from_str(&groups_json)
+                    .map_err(|e| corrupt(&format!("published {} per group", stage.as_str()), e))?,
             })
         })
         .transpose()
@@ -1512,7 +1523,13 @@ mod tests {
         assert_eq!(store.schema_version().unwrap(), SCHEMA_VERSION);
         let devices = store.devices("s").unwrap();
         assert_eq!(devices.len(), 1, "rows kept");
-        assert_eq!((devices[0].sensor_model.as_deref(), devices[0].group.as_deref()), (None, None));
+        assert_eq!(
+            (
+                devices[0].sensor_model.as_deref(),
+                devices[0].group.as_deref()
+            ),
+            (None, None)
+        );
         let priors = store.priors("s").unwrap();
         assert_eq!(priors.len(), 1);
         assert!(priors[0].sensor_terms.is_empty());

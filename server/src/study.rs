@@ -121,7 +121,10 @@ pub const DEFAULT_SENSOR_PARAMS: [&str; 2] = ["mean_z", "log_noise_var"];
 pub const DEFAULT_MIN_DEVICES_PER_MODEL: u32 = 10;
 
 fn default_sensor_params() -> Vec<String> {
-    DEFAULT_SENSOR_PARAMS.iter().map(|s| (*s).to_owned()).collect()
+    DEFAULT_SENSOR_PARAMS
+        .iter()
+        .map(|s| (*s).to_owned())
+        .collect()
 }
 
 fn default_min_devices_per_model() -> u32 {
@@ -384,7 +387,9 @@ impl PriorVersion {
 
     /// Whether `sensor_model` has terms of its own in this version.
     pub fn has_terms(&self, sensor_model: &str) -> bool {
-        self.sensor_terms.iter().any(|t| t.sensor_model == sensor_model)
+        self.sensor_terms
+            .iter()
+            .any(|t| t.sensor_model == sensor_model)
     }
 }
 

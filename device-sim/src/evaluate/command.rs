@@ -107,7 +107,11 @@ fn column_levels(cohort: &Cohort, members: &[usize], column: &str) -> anyhow::Re
             if known.is_empty() {
                 "none".to_owned()
             } else {
-                known.iter().map(|k| k.as_str()).collect::<Vec<_>>().join(", ")
+                known
+                    .iter()
+                    .map(|k| k.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
             }
         );
     }
@@ -395,8 +399,7 @@ pub async fn learn_prior(
             .as_ref()
             .map(|column| -> anyhow::Result<SensorModels> {
                 Ok(SensorModels {
-                    models: column_levels(cohort, &members, column)
-                        .context("--sensor-column")?,
+                    models: column_levels(cohort, &members, column).context("--sensor-column")?,
                     params: plimsoll_server::study::DEFAULT_SENSOR_PARAMS
                         .iter()
                         .map(|s| (*s).to_owned())
@@ -446,7 +449,12 @@ pub async fn learn_prior(
             } else {
                 format!(
                     ", own terms for sensor models {}",
-                    first.by_sensor.keys().cloned().collect::<Vec<_>>().join(", ")
+                    first
+                        .by_sensor
+                        .keys()
+                        .cloned()
+                        .collect::<Vec<_>>()
+                        .join(", ")
                 )
             },
             pool.workers,

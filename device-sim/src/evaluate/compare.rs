@@ -259,14 +259,10 @@ pub fn render_comparison(c: &Comparison) -> String {
             fmt(r.sensitivity, 100.0, 1)
         ));
         for col in &columns {
-            let cell = r
-                .disparities
-                .iter()
-                .find(|d| &d.0 == col)
-                .map_or_else(
-                    || "-".to_owned(),
-                    |d| format!("{} / {}", fmt(d.1, 100.0, 1), fmt(d.2, 1.0, 2)),
-                );
+            let cell = r.disparities.iter().find(|d| &d.0 == col).map_or_else(
+                || "-".to_owned(),
+                |d| format!("{} / {}", fmt(d.1, 100.0, 1), fmt(d.2, 1.0, 2)),
+            );
             out.push_str(&format!(" {cell:>22}"));
         }
         out.push('\n');

@@ -126,7 +126,10 @@ pub fn read_prior_file(path: &Path) -> anyhow::Result<(CohortPriors, String)> {
     }
     let mut by_sensor = BTreeMap::new();
     for (model, map) in &file.sensor_priors {
-        by_sensor.insert(model.clone(), parse(&format!("sensor_priors.{model}: "), map)?);
+        by_sensor.insert(
+            model.clone(),
+            parse(&format!("sensor_priors.{model}: "), map)?,
+        );
     }
     if !by_sensor.is_empty() && file.sensor_column.is_none() {
         bail!(

@@ -96,9 +96,7 @@ impl CohortPriors {
     pub fn sensor_of<'a>(&self, cohort: &'a Cohort, participant: &str) -> Option<&'a str> {
         let column = self.sensor_column.as_ref()?;
         let model = cohort.groups.get(participant)?.get(column)?;
-        self.by_sensor
-            .contains_key(model)
-            .then_some(model.as_str())
+        self.by_sensor.contains_key(model).then_some(model.as_str())
     }
 }
 
@@ -215,8 +213,8 @@ pub fn evaluate_cohort(
             if models.iter().any(|(s, _)| *s == p.signal) {
                 bail!("two priors for {}", p.signal);
             }
-            let model = StateSpacePrior::new(p)
-                .with_context(|| format!("{what} prior of {}", p.signal))?;
+            let model =
+                StateSpacePrior::new(p).with_context(|| format!("{what} prior of {}", p.signal))?;
             models.push((p.signal, model));
         }
         Ok(models)
@@ -224,7 +222,10 @@ pub fn evaluate_cohort(
     let models = build(&priors.pooled, "shared")?;
     let mut by_sensor = BTreeMap::new();
     for (model, p) in &priors.by_sensor {
-        by_sensor.insert(model.as_str(), build(p, &format!("sensor model {model}'s"))?);
+        by_sensor.insert(
+            model.as_str(),
+            build(p, &format!("sensor model {model}'s"))?,
+        );
     }
     // A participant's shared prior: its sensor model's where the model has its own terms.
     let models_of = |series: &ParticipantSeries| -> &[(Signal, StateSpacePrior)] {
@@ -494,9 +495,10 @@ fn calibrate_per_group(
         let Some(level) = level_of(s) else { continue };
         let entry = hists.entry(level).or_default();
         entry.0 += 1;
-        entry
-            .1
-            .merge(&EpisodeHistogram::from_days(&expand(&s.per_method[m].0), gap));
+        entry.1.merge(&EpisodeHistogram::from_days(
+            &expand(&s.per_method[m].0),
+            gap,
+        ));
     }
     let budget = match settings.alarm_level {
         FlagLevel::Alert => settings.budget_per_month,
@@ -741,7 +743,10 @@ mod tests {
         let rate_of = |scored: &[Scored], group: std::ops::Range<usize>, h: f64| {
             let mut hist = EpisodeHistogram::default();
             for s in &scored[group] {
-                hist.merge(&EpisodeHistogram::from_days(&expand(&s.per_method[0].0), gap));
+                hist.merge(&EpisodeHistogram::from_days(
+                    &expand(&s.per_method[0].0),
+                    gap,
+                ));
             }
             let i = crate::detect::calibration::edges()
                 .iter()
@@ -751,11 +756,17 @@ mod tests {
         };
         let mut pooled = EpisodeHistogram::default();
         for s in &scored {
-            pooled.merge(&EpisodeHistogram::from_days(&expand(&s.per_method[0].0), gap));
+            pooled.merge(&EpisodeHistogram::from_days(
+                &expand(&s.per_method[0].0),
+                gap,
+            ));
         }
         let h = pooled.threshold_for(0.3).threshold;
         let (a, b) = (rate_of(&scored, 0..30, h), rate_of(&scored, 30..60, h));
-        assert!(b > 5.0 * a, "one threshold: a {a}, b {b} per participant-month");
+        assert!(
+            b > 5.0 * a,
+            "one threshold: a {a}, b {b} per participant-month"
+        );
 
         let notes = calibrate_per_group(&cohort, &mut scored, 0, "arm", h, &settings, gap);
         assert_eq!(notes.len(), 2, "{notes:?}");
@@ -766,13 +777,15 @@ mod tests {
                 "group {group:?}: {r} per participant-month at the calibrated default"
             );
         }
-        let threshold_of = |note: &str| -> f64 {
-            note.rsplit("threshold ").next().unwrap().parse().unwrap()
-        };
+        let threshold_of =
+            |note: &str| -> f64 { note.rsplit("threshold ").next().unwrap().parse().unwrap() };
         let (ha, hb) = (threshold_of(&notes[0]), threshold_of(&notes[1]));
         assert!((hb - ha - 1.0).abs() <= 0.25, "thresholds {ha} and {hb}");
         let p = 0.3 / 30.4375;
         let z = Normal::new(0.0, 1.0).unwrap().inverse_cdf(1.0 - p);
-        assert!((ha - z).abs() <= 0.3, "group a threshold {ha}, normal quantile {z}");
+        assert!(
+            (ha - z).abs() <= 0.3,
+            "group a threshold {ha}, normal quantile {z}"
+        );
     }
 }
