@@ -298,7 +298,7 @@ async fn evaluate_command_end_to_end() {
 /// age band (one note per level), and the aggregation comparison's table of settings.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn sensor_aware_prior_fairness_rule_and_comparison() {
-    use plimsoll_device::evaluate::command::GroupOptions;
+    use plimsoll_device::evaluate::command::PriorOptions;
     use plimsoll_device::evaluate::compare::{compare_aggregation, comparison_settings};
     use plimsoll_server::aggregate::AggregationRule;
 
@@ -317,10 +317,11 @@ async fn sensor_aware_prior_fairness_rule_and_comparison() {
     let out = root.path().join("eval");
     let mut opts = options(&cohort_dir, &out, None);
     opts.screened = false;
-    opts.groups = GroupOptions {
+    opts.groups = PriorOptions {
         sensor_column: Some("device_model".into()),
         group_column: Some("device_model".into()),
         rule: AggregationRule::GroupRank { lambda: 5.0 },
+        dp_epsilon: None,
     };
     opts.settings.calibrate_column = Some("age_band".into());
     let outcome = run_evaluation(&opts).await.unwrap();

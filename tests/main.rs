@@ -15,6 +15,7 @@ mod load_short;
 mod metrics;
 mod pooled;
 mod prospective;
+mod privacy;
 mod python_device;
 mod review_access;
 mod review_browser;

@@ -34,6 +34,7 @@ pub fn study_config(id: &str, signals: &[Signal], devices: u32, rounds: u32) -> 
         review_level: plimsoll_server::packets::FlagLevel::Alert,
         sensor_models: None,
         subgroups: None,
+        dp: None,
     }
 }
 

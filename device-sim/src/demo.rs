@@ -37,6 +37,8 @@ pub struct DemoOptions {
     /// Abort on the first bad row of the simulated cohort, or quarantine
     /// bad rows (copied to `out_dir/quarantine/`) and go on.
     pub bad_rows: BadRowPolicy,
+    /// Train the prior with user-level differential privacy at this ε (δ = 1/N).
+    pub dp_epsilon: Option<f64>,
 }
 
 /// The default demo scenario (`demo-data/quick.toml`), built into the
@@ -92,8 +94,26 @@ pub fn clear_previous_devices(devices_dir: &Path) -> anyhow::Result<Vec<PathBuf>
 }
 
 /// The study configuration of a demo over `signals` with `n` devices.
-fn demo_config(opts: &DemoOptions, title: String, signals: &[Signal], n: u32) -> StudyConfig {
-    StudyConfig {
+fn demo_config(
+    opts: &DemoOptions,
+    title: String,
+    signals: &[Signal],
+    n: u32,
+) -> anyhow::Result<StudyConfig> {
+    let dp = opts
+        .dp_epsilon
+        .map(|target| {
+            plimsoll_server::privacy::DpSettings::for_target(
+                target,
+                1.0,
+                opts.rounds,
+                1.0 / f64::from(n.max(2)),
+                crate::evaluate::command::DP_CLIP_NORM,
+            )
+            .map_err(|e| anyhow::anyhow!("--dp-epsilon {target}: {e}"))
+        })
+        .transpose()?;
+    Ok(StudyConfig {
         study_id: "demo".into(),
         title,
         signals: initial_layouts(signals),
@@ -116,7 +136,8 @@ fn demo_config(opts: &DemoOptions, title: String, signals: &[Signal], n: u32) ->
         review_level: plimsoll_server::packets::FlagLevel::Alert,
         sensor_models: None,
         subgroups: None,
-    }
+        dp,
+    })
 }
 
 /// Study layouts for `signals`, starting from [`PriorParams::initial`].
@@ -260,7 +281,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     };
     // Check the study settings before simulating anything (all six signals
     // and a quorum of 1 stand in for what the cohort decides).
-    demo_config(opts, String::new(), &Signal::ALL, 1)
+    demo_config(opts, String::new(), &Signal::ALL, 1)?
         .validate()
         .map_err(|e| anyhow::anyhow!("demo settings: {e}"))?;
     let cohort_dir = opts.out_dir.join("cohort");
@@ -296,7 +317,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         format!("Demo cohort from {scenario_name}"),
         &signals,
         n,
-    );
+    )?;
     let db_path = opts.out_dir.join("aggregator.db");
     for suffix in ["", "-wal", "-shm"] {
         let p = PathBuf::from(format!("{}{suffix}", db_path.display()));

@@ -11,7 +11,7 @@ use plimsoll_device::cohort::{
 };
 use plimsoll_device::demo::{DemoOptions, initial_layouts, run_demo};
 use plimsoll_device::device_report::{CAUTION, counted};
-use plimsoll_device::evaluate::command::{EvaluateOptions, GroupOptions, run_evaluation};
+use plimsoll_device::evaluate::command::{EvaluateOptions, PriorOptions, run_evaluation};
 use plimsoll_device::evaluate::report::render_table;
 use plimsoll_device::evaluate::run::{
     DEFAULT_BUDGET_PER_MONTH, DEFAULT_LOCAL_FIT_DAYS, DEFAULT_TARGET_KIND, EvaluationSettings,
@@ -90,6 +90,10 @@ enum Command {
         /// Loopback port for the review page (0 picks a free port).
         #[arg(long, default_value_t = 8080)]
         review_port: u16,
+        /// Train the prior with user-level differential privacy (DP-FedAvg) at this ε over
+        /// the rounds (δ = 1/participants; the noise multiplier is chosen to reach it).
+        #[arg(long)]
+        dp_epsilon: Option<f64>,
         /// What a bad input row does: `quarantine` keeps the good rows, reports every bad one
         /// and copies the bad rows to <out>/quarantine/; `abort` stops at the first.
         #[arg(long, value_enum, default_value_t = OnBadRow::Quarantine)]
@@ -261,6 +265,11 @@ enum Command {
         /// evaluation-aggregation.csv and .json instead of the usual outputs.
         #[arg(long)]
         compare_aggregation: bool,
+        /// Learn the prior with user-level differential privacy (DP-FedAvg) at this ε over
+        /// the rounds (δ = 1/participants, clipping norm 0.5; the noise multiplier is chosen to
+        /// reach it).
+        #[arg(long)]
+        dp_epsilon: Option<f64>,
     },
     /// Convert one participant's open mHealth (IEEE 1752.1) JSON data points into daily.csv.
     ///
@@ -394,7 +403,7 @@ struct EvaluateArgs {
     alarm_level: AlarmLevel,
     detector: Option<PathBuf>,
     on_bad_row: OnBadRow,
-    groups: GroupOptions,
+    groups: PriorOptions,
     calibrate_per_group: Option<String>,
     compare_aggregation: bool,
 }
@@ -473,6 +482,7 @@ async fn main() -> anyhow::Result<()> {
                     calibrate_per_group,
                     min_devices_per_group: plimsoll_server::study::DEFAULT_MIN_DEVICES_PER_GROUP,
                 }),
+                dp: None,
             };
             config
                 .validate()
@@ -595,6 +605,7 @@ async fn main() -> anyhow::Result<()> {
             serve,
             review_port,
             on_bad_row,
+            dp_epsilon,
         } => {
             run_demo(&DemoOptions {
                 scenario,
@@ -608,6 +619,7 @@ async fn main() -> anyhow::Result<()> {
                 serve,
                 review_port,
                 bad_rows: on_bad_row.into(),
+                dp_epsilon,
             })
             .await
         }
@@ -628,6 +640,7 @@ async fn main() -> anyhow::Result<()> {
             aggregation,
             calibrate_per_group,
             compare_aggregation,
+            dp_epsilon,
         } => {
             evaluate(EvaluateArgs {
                 cohort,
@@ -641,10 +654,11 @@ async fn main() -> anyhow::Result<()> {
                 alarm_level,
                 detector,
                 on_bad_row,
-                groups: GroupOptions {
+                groups: PriorOptions {
                     sensor_column,
                     group_column,
                     rule: aggregation,
+                    dp_epsilon,
                 },
                 calibrate_per_group,
                 compare_aggregation,

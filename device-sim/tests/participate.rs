@@ -105,6 +105,7 @@ async fn two_devices_take_part_over_tls_and_resume() {
                 review_level: plimsoll_server::packets::FlagLevel::Alert,
                 sensor_models: None,
                 subgroups: None,
+                dp: None,
             },
             now_ms(),
         )

@@ -82,6 +82,7 @@ fn world() -> World {
                 review_level: plimsoll_server::packets::FlagLevel::Alert,
                 sensor_models: None,
                 subgroups: None,
+                dp: None,
             },
             0,
         )

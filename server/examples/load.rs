@@ -175,6 +175,7 @@ async fn run(
             review_level: plimsoll_server::packets::FlagLevel::Alert,
             sensor_models: None,
             subgroups: None,
+            dp: None,
         },
         now_ms(),
     )?;

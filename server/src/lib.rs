@@ -18,6 +18,7 @@ pub mod fhir;
 pub mod metrics;
 pub mod packets;
 pub mod presentation;
+pub mod privacy;
 pub mod review;
 pub mod rounds;
 pub mod secrets;

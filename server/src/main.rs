@@ -416,8 +416,19 @@ async fn main() -> anyhow::Result<()> {
                 };
                 println!(
                     "  training: {completed}/{} rounds, prior version {version}, {open}",
-                    config.rounds,
+                    config.round_limit(),
                 );
+                if let (Some(dp), Some(eps)) = (&config.dp, config.epsilon_spent(completed)) {
+                    println!(
+                        "  privacy: ε = {eps:.2} spent of {:.2} (δ = {:.1e}, noise multiplier {:.3}, clipping norm {}); {} of {} planned rounds fit the budget",
+                        dp.epsilon_budget,
+                        dp.delta,
+                        dp.noise_multiplier,
+                        dp.clip_norm,
+                        config.round_limit(),
+                        config.rounds
+                    );
+                }
                 // The detector's calibration stages follow training (moments, then the
                 // episode histogram); each line says how far its stage has come.
                 for stage in plimsoll_server::detection::DetectionStage::ALL {
@@ -427,7 +438,7 @@ async fn main() -> anyhow::Result<()> {
                             let submitted = store.detection_submitters(id, stage)?.len();
                             if submitted > 0 {
                                 format!("open, {submitted}/{active} devices submitted")
-                            } else if completed >= config.rounds {
+                            } else if completed >= config.round_limit() {
                                 "waiting for submissions".to_owned()
                             } else {
                                 "after training".to_owned()

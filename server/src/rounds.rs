@@ -69,6 +69,9 @@ struct StudyRuntime {
     /// Which calibration stages are complete (by [`DetectionStage::index`]);
     /// the database holds the rest of their state.
     detection_complete: [bool; 2],
+    /// Rounds training runs ([`StudyConfig::round_limit`], computed once: with differential
+    /// privacy it is where the budget ends).
+    round_limit: u32,
 }
 
 impl StudyRuntime {
@@ -88,7 +91,7 @@ impl StudyRuntime {
     }
 
     fn training_done(&self) -> bool {
-        self.rounds_completed >= self.config.rounds
+        self.rounds_completed >= self.round_limit
     }
 }
 
@@ -243,6 +246,7 @@ impl Coordinator {
                 revoked,
                 rounds_completed: store.rounds_completed(&id)?,
                 last_round_id: store.last_round_id(&id)?,
+                round_limit: config.round_limit(),
                 config,
                 devices,
                 labels,
@@ -323,6 +327,7 @@ impl Coordinator {
         state.studies.insert(
             id,
             StudyRuntime {
+                round_limit: config.round_limit(),
                 config,
                 devices: BTreeMap::new(),
                 revoked: 0,
@@ -616,7 +621,7 @@ impl Coordinator {
             .devices
             .get(&device_id)
             .ok_or_else(|| unknown_device(study_id, device_id))?;
-        if rt.rounds_completed >= rt.config.rounds {
+        if rt.training_done() {
             return Ok(Work::Done {
                 prior_version: rt.latest.version,
             });
@@ -1342,7 +1347,7 @@ fn maybe_open_round(
     };
     // Cheap checks first: the in-memory count can only overstate the
     // active devices, so the database is read only when a round may open.
-    if rt.open.is_some() || rt.rounds_completed >= rt.config.rounds || too_few(rt) {
+    if rt.open.is_some() || rt.training_done() || too_few(rt) {
         return Ok(false);
     }
     // Revocations may come from another process (the operator's command
@@ -1383,6 +1388,100 @@ fn maybe_open_round(
     Ok(true)
 }
 
+/// [`close_round`] under differential privacy (DP-FedAvg, `crate::privacy`): each device's
+/// change over every signal is one vector, clipped to `C`; the noised sum over `q × N`
+/// is added to the current prior. Contributions are counted as usual.
+fn close_private_round(
+    store: &mut Store,
+    rt: &mut StudyRuntime,
+    dp: &crate::privacy::DpSettings,
+    now_ms: i64,
+) -> Result<()> {
+    let open = rt.open.as_ref().expect("close_round needs an open round");
+    // The concatenated layout: every signal's coordinates in the prior's order.
+    let offsets: Vec<(usize, &SignalParams)> = rt
+        .latest
+        .params
+        .iter()
+        .scan(0, |at, p| {
+            let start = *at;
+            *at += p.values.len();
+            Some((start, p))
+        })
+        .collect();
+    let dim: usize = rt.latest.params.iter().map(|p| p.values.len()).sum();
+    let deltas: Vec<Vec<f64>> = open
+        .submissions
+        .values()
+        .map(|ups| {
+            let mut d = vec![0.0; dim];
+            for u in ups {
+                if let Some(&(start, current)) = offsets.iter().find(|(_, p)| p.signal == u.signal)
+                {
+                    for (j, (v, c)) in u.values.iter().zip(&current.values).enumerate() {
+                        d[start + j] = v - c;
+                    }
+                }
+            }
+            d
+        })
+        .collect();
+    let expected = (rt.config.fraction_per_round * rt.active_devices() as f64).max(1.0);
+    let step = crate::privacy::noised_mean(&deltas, dim, dp, expected, &mut rand::rng());
+    let mut params = Vec::with_capacity(offsets.len());
+    let mut contributions = Vec::new();
+    for &(start, current) in &offsets {
+        params.push(SignalParams {
+            signal: current.signal.clone(),
+            values: current
+                .values
+                .iter()
+                .enumerate()
+                .map(|(j, c)| c + step[start + j])
+                .collect(),
+        });
+        let entries: Vec<&SignalUpdate> = open
+            .submissions
+            .values()
+            .flat_map(|ups| ups.iter().filter(|u| u.signal == current.signal))
+            .collect();
+        if !entries.is_empty() {
+            let n_days: u64 = entries.iter().map(|u| u64::from(u.n_days)).sum();
+            contributions.push(Contribution {
+                signal: current.signal.clone(),
+                n_devices: entries.len() as u32,
+                n_days,
+                mean_local_loss: entries
+                    .iter()
+                    .map(|u| u.local_loss * f64::from(u.n_days))
+                    .sum::<f64>()
+                    / n_days.max(1) as f64,
+            });
+        }
+    }
+    let prior = PriorVersion {
+        version: rt.latest.version + 1,
+        round_id: open.round_id,
+        params,
+        contributions,
+        created_unix_ms: now_ms,
+        sensor_terms: Vec::new(),
+    };
+    store.close_round(&rt.config.study_id, open.round_id, &prior, now_ms)?;
+    tracing::info!(
+        study = %rt.config.study_id,
+        round_id = open.round_id,
+        version = prior.version,
+        devices = open.submissions.len(),
+        epsilon = rt.config.epsilon_spent(rt.rounds_completed + 1),
+        "private round closed; prior published"
+    );
+    rt.latest = prior;
+    rt.rounds_completed += 1;
+    rt.open = None;
+    Ok(())
+}
+
 /// A declared sensor model or group level: `None` when empty and the study asks for none;
 /// refused when the study asks for one and it is missing or not in `allowed`, or when the
 /// study asks for none and one is sent.
@@ -1413,8 +1512,17 @@ fn check_declared(
     }
 }
 
-/// Seeded random choice of `max(quorum, ceil(fraction × n))` devices.
+/// Seeded random choice of `max(quorum, ceil(fraction × n))` devices; under differential
+/// privacy, Poisson sampling instead: each device independently with probability
+/// `fraction_per_round`, from the operating system's randomness (`crate::privacy`).
 fn select_members(config: &StudyConfig, enrolled: Vec<u64>, round_id: u64) -> Vec<u64> {
+    if config.dp.is_some() {
+        let mut rng = rand::rng();
+        return enrolled
+            .into_iter()
+            .filter(|_| rand::Rng::random_bool(&mut rng, config.fraction_per_round))
+            .collect();
+    }
     let n = enrolled.len();
     let wanted = ((config.fraction_per_round * n as f64).ceil() as usize)
         .max(config.min_quorum as usize)
@@ -1433,6 +1541,9 @@ fn select_members(config: &StudyConfig, enrolled: Vec<u64>, round_id: u64) -> Ve
 /// FedAvg per signal over the open round's submissions; publishes the result.
 fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<()> {
     let open = rt.open.as_ref().expect("close_round needs an open round");
+    if let Some(dp) = rt.config.dp {
+        return close_private_round(store, rt, &dp, now_ms);
+    }
     let mut params = Vec::with_capacity(rt.latest.params.len());
     let mut contributions = Vec::new();
     let mut sensor_terms = Vec::new();

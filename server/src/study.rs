@@ -91,6 +91,10 @@ pub struct StudyConfig {
     /// The participant group column devices report at enrolment (none unless set).
     #[serde(default)]
     pub subgroups: Option<Subgroups>,
+    /// User-level differential privacy of the published priors (none unless set;
+    /// `crate::privacy`).
+    #[serde(default)]
+    pub dp: Option<crate::privacy::DpSettings>,
 }
 
 /// A sensor-aware prior: one population trend, and per sensor model the
@@ -278,6 +282,22 @@ impl StudyConfig {
                 return Err("subgroups.min_devices_per_group must be at least 1".into());
             }
         }
+        if let Some(dp) = &self.dp {
+            dp.validate()?;
+            if self.aggregation.rule != crate::aggregate::AggregationRule::Fedavg
+                || self.aggregation.clip_norm.is_some()
+            {
+                return Err(format!(
+                    "dp: differential privacy runs DP-FedAvg with its own clipping; aggregation.rule {} and aggregation.clip_norm cannot be combined with it",
+                    self.aggregation.rule.name()
+                ));
+            }
+            if self.sensor_models.is_some() {
+                return Err(
+                    "dp: per-sensor-model terms are not covered by the privacy accounting; remove sensor_models or dp".into(),
+                );
+            }
+        }
         if self.aggregation.rule.needs_groups() && self.subgroups.is_none() {
             return Err(format!(
                 "aggregation.rule {}: needs a group column (set subgroups)",
@@ -285,6 +305,22 @@ impl StudyConfig {
             ));
         }
         self.aggregation.validate()
+    }
+
+    /// The rounds training runs: `rounds`, or fewer when differential privacy's budget would
+    /// be spent before (`DpSettings::rounds_within_budget` at `q = fraction_per_round`).
+    pub fn round_limit(&self) -> u32 {
+        match &self.dp {
+            Some(dp) => dp.rounds_within_budget(self.fraction_per_round, self.rounds),
+            None => self.rounds,
+        }
+    }
+
+    /// `ε` spent after `rounds_completed` rounds (`None` without differential privacy).
+    pub fn epsilon_spent(&self, rounds_completed: u32) -> Option<f64> {
+        self.dp
+            .as_ref()
+            .map(|dp| dp.epsilon_after(self.fraction_per_round, rounds_completed))
     }
 
     /// Position of each per-model coordinate in `signal`'s layout (empty without sensor models).

@@ -112,7 +112,7 @@ pub fn status_to_pb(s: &StudyStatus) -> pb::Study {
                 reference_scale: l.reference_scale,
             })
             .collect(),
-        rounds_planned: s.config.rounds,
+        rounds_planned: s.config.round_limit(),
         rounds_completed: s.rounds_completed,
         current_round: s.current_round,
         devices_enrolled: s.devices_enrolled,

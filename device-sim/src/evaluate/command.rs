@@ -52,12 +52,18 @@ pub struct EvaluateOptions {
     /// `out_dir/quarantine/`) and go on.
     pub bad_rows: BadRowPolicy,
     /// Sensor-aware prior, group column, aggregation rule.
-    pub groups: GroupOptions,
+    pub groups: PriorOptions,
 }
 
-/// How the federated prior treats subgroups (issue: fair across subgroups).
+/// Clipping norm of a device's whole update under `--dp-epsilon` (parameter-space units, all
+/// signals together). A plain-SGD round moves a device's 7 log-scale numbers per signal by
+/// a few tenths at most once training settles, so 0.5 clips early rounds and few later ones.
+pub const DP_CLIP_NORM: f64 = 0.5;
+
+/// How the federated prior is learned: subgroups (sensor-aware terms, group column,
+/// aggregation rule) and differential privacy.
 #[derive(Debug, Clone, Default, PartialEq)]
-pub struct GroupOptions {
+pub struct PriorOptions {
     /// `participants.csv` column naming each participant's sensor model: learn a
     /// sensor-aware prior (per-model mean and measurement noise).
     pub sensor_column: Option<String>,
@@ -65,9 +71,12 @@ pub struct GroupOptions {
     pub group_column: Option<String>,
     /// How each round's updates are combined.
     pub rule: AggregationRule,
+    /// User-level differential privacy at this `ε` over the planned rounds (δ = 1/N, clip
+    /// [`DP_CLIP_NORM`], the noise multiplier that reaches `ε`; DP-FedAvg, `plimsoll_server::privacy`).
+    pub dp_epsilon: Option<f64>,
 }
 
-impl GroupOptions {
+impl PriorOptions {
     /// A short description, e.g. `fedavg, sensor-aware (device_model)`.
     pub fn label(&self) -> String {
         let mut out = self.rule.label();
@@ -78,6 +87,9 @@ impl GroupOptions {
         }
         if let Some(c) = &self.sensor_column {
             out.push_str(&format!(", sensor-aware ({c})"));
+        }
+        if let Some(e) = self.dp_epsilon {
+            out.push_str(&format!(", DP ε={e}"));
         }
         out
     }
@@ -339,7 +351,7 @@ pub async fn learn_prior(
     cohort: &Arc<Cohort>,
     rounds: u32,
     screened: bool,
-    groups: &GroupOptions,
+    groups: &PriorOptions,
     work_dir: &Path,
     progress: bool,
 ) -> anyhow::Result<LearnedPrior> {
@@ -419,6 +431,19 @@ pub async fn learn_prior(
                     calibrate_per_group: false,
                     min_devices_per_group: plimsoll_server::study::DEFAULT_MIN_DEVICES_PER_GROUP,
                 })
+            })
+            .transpose()?,
+        dp: groups
+            .dp_epsilon
+            .map(|target| {
+                plimsoll_server::privacy::DpSettings::for_target(
+                    target,
+                    per_round as f64 / n as f64,
+                    rounds,
+                    1.0 / n as f64,
+                    DP_CLIP_NORM,
+                )
+                .map_err(|e| anyhow::anyhow!("--dp-epsilon {target}: {e}"))
             })
             .transpose()?,
     };

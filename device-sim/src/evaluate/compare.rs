@@ -16,7 +16,7 @@ use anyhow::Context;
 use plimsoll_server::aggregate::AggregationRule;
 use serde::Serialize;
 
-use super::command::{GroupOptions, learn_prior};
+use super::command::{PriorOptions, learn_prior};
 use super::report::EvaluationReport;
 use super::run::{EvaluationSettings, evaluate_cohort};
 use crate::cohort::Cohort;
@@ -35,17 +35,18 @@ pub const COMPARISON_QS: [f64; 2] = [1.0, 5.0];
 pub fn comparison_settings(
     sensor_column: Option<&str>,
     group_column: Option<&str>,
-) -> Vec<GroupOptions> {
+) -> Vec<PriorOptions> {
     let sensor = sensor_column.map(str::to_owned);
     let group = group_column.map(str::to_owned);
-    let with = |rule| GroupOptions {
+    let with = |rule| PriorOptions {
         sensor_column: sensor.clone(),
         group_column: group.clone(),
         rule,
+        dp_epsilon: None,
     };
-    let mut out = vec![GroupOptions {
+    let mut out = vec![PriorOptions {
         group_column: group.clone(),
-        ..GroupOptions::default()
+        ..PriorOptions::default()
     }];
     if sensor.is_some() {
         out.push(with(AggregationRule::Fedavg));
@@ -102,7 +103,7 @@ pub async fn compare_aggregation(
     cohort_name: &str,
     rounds: u32,
     settings: &EvaluationSettings,
-    compared: &[GroupOptions],
+    compared: &[PriorOptions],
     out_dir: &Path,
     progress: bool,
 ) -> anyhow::Result<Comparison> {

@@ -701,7 +701,7 @@ mod tests {
     /// With one threshold, `b` raises far more false alarms; calibrated per group, each
     /// group's episode rate at the cohort's threshold is within its budget (and above half
     /// of it: the grid's step is 0.1), and the two groups' thresholds lie about one unit
-    /// apart, near the normal quantile of the budget's daily rate (statrs 0.18
+    /// apart, near the normal quantile of the budget's daily rate (statrs 0.19
     /// `Normal::inverse_cdf`; episodes of independent days start at rate ≈ p(1 − p)).
     #[test]
     fn per_group_calibration_meets_the_budget_in_each_group() {

@@ -127,6 +127,17 @@ pub fn studies(session: &Session, titles: &[(String, String)]) -> String {
     page("Your studies", Some(session), &[], &body)
 }
 
+/// The study's differential-privacy spending as an overview fact (empty without `dp`).
+fn privacy_fact(config: &crate::study::StudyConfig, rounds_completed: u32) -> String {
+    let (Some(dp), Some(eps)) = (&config.dp, config.epsilon_spent(rounds_completed)) else {
+        return String::new();
+    };
+    format!(
+        "\n<div><dt>Privacy spent (user-level)</dt><dd>ε = {eps:.2} of {:.2} (δ = {:.1e}); training stops before the budget is passed</dd></div>",
+        dp.epsilon_budget, dp.delta
+    )
+}
+
 pub fn overview(session: &Session, o: &StudyOverview, now_ms: i64) -> String {
     let id = &o.config.study_id;
     let latest = o.priors.last();
@@ -138,7 +149,7 @@ pub fn overview(session: &Session, o: &StudyOverview, now_ms: i64) -> String {
 <div><dt>Participants enrolled</dt><dd>{}</dd></div>
 <div><dt>Sharing flags (consented)</dt><dd>{}</dd></div>
 <div><dt>Rounds run</dt><dd>{} of {}</dd></div>
-<div><dt>Shared prior version</dt><dd>{}</dd></div>
+<div><dt>Shared prior version</dt><dd>{}</dd></div>{}
 </dl>{}"#,
         esc(id),
         esc(id),
@@ -147,8 +158,9 @@ pub fn overview(session: &Session, o: &StudyOverview, now_ms: i64) -> String {
         o.devices_enrolled,
         o.devices_consenting,
         o.rounds_completed,
-        o.config.rounds,
+        o.config.round_limit(),
         latest.map_or(0, |p| p.version),
+        privacy_fact(&o.config, o.rounds_completed),
         lead_view(o, now_ms)
     );
     body.push_str(r#"<h2>Shared prior, in plain units</h2>
