@@ -117,7 +117,10 @@ async fn a_private_study_clips_adds_noise_and_stops_at_its_budget() {
                     local_loss: 1.0,
                 }],
             };
-            client.submit_update(authorized(cred, update)).await.unwrap();
+            client
+                .submit_update(authorized(cred, update))
+                .await
+                .unwrap();
         }
         let prior = client
             .get_prior(authorized(
@@ -138,9 +141,17 @@ async fn a_private_study_clips_adds_noise_and_stops_at_its_budget() {
             (moved - 0.5).abs() < 5.0 * sd,
             "round {round}: the first coordinate moved by {moved}"
         );
-        let others: Vec<f64> = next.iter().zip(&current).skip(1).map(|(a, b)| a - b).collect();
+        let others: Vec<f64> = next
+            .iter()
+            .zip(&current)
+            .skip(1)
+            .map(|(a, b)| a - b)
+            .collect();
         assert!(others.iter().all(|d| d.abs() < 5.0 * sd), "{others:?}");
-        assert!(others.iter().any(|d| *d != 0.0), "noise was added: {others:?}");
+        assert!(
+            others.iter().any(|d| *d != 0.0),
+            "noise was added: {others:?}"
+        );
         current = next.clone();
     }
     // The budget is spent: no third round.

@@ -337,6 +337,17 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
             kept.display()
         );
     }
+    let privacy = config.dp.map(|dp| {
+        let rounds = config.round_limit();
+        format!(
+            "Privacy: user-level DP-FedAvg, ε = {:.2} of {} after {rounds} rounds (δ = {:.3}, noise multiplier {:.2}, clipping norm {}); the prior is noisier for it.",
+            config.epsilon_spent(rounds).unwrap_or(0.0),
+            dp.epsilon_budget,
+            dp.delta,
+            dp.noise_multiplier,
+            dp.clip_norm
+        )
+    });
     // Every demo participant consented to share flag packets with reviewers.
     let run = run_federated_with(
         &cohort,
@@ -351,6 +362,9 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
 
     let mut out = std::io::stdout().lock();
     writeln!(out)?;
+    if let Some(line) = &privacy {
+        writeln!(out, "{line}")?;
+    }
     writeln!(
         out,
         "Learned shared prior (version {}), in plain units:",

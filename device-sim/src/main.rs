@@ -748,6 +748,17 @@ async fn evaluate(args: EvaluateArgs) -> anyhow::Result<()> {
         },
     );
     println!("Prior: {}", report.settings.prior_source);
+    if !report.prior_objective.is_empty() {
+        let parts: Vec<String> = report
+            .prior_objective
+            .iter()
+            .map(|(s, v)| format!("{s} {v:.4}"))
+            .collect();
+        println!(
+            "Pooled objective of the prior on this cohort (nats/day): {}",
+            parts.join(", ")
+        );
+    }
     for m in &report.methods {
         for note in &m.notes {
             println!("{}: {note}", m.method);

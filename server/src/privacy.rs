@@ -306,7 +306,10 @@ mod tests {
         let mean0 = draws.iter().map(|d| d[0]).sum::<f64>() / 4000.0;
         let sd1 = (draws.iter().map(|d| d[1] * d[1]).sum::<f64>() / 4000.0).sqrt();
         let want_sd = 1.2 * 0.5 / 20.0;
-        assert!((mean0 - 0.25).abs() < 5.0 * want_sd / 4000f64.sqrt(), "{mean0}");
+        assert!(
+            (mean0 - 0.25).abs() < 5.0 * want_sd / 4000f64.sqrt(),
+            "{mean0}"
+        );
         assert!((sd1 / want_sd - 1.0).abs() < 0.05, "{sd1} vs {want_sd}");
     }
 

@@ -273,7 +273,10 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
     let t_detect = Instant::now();
     // Detection is CPU-bound and runs on its own threads; nothing else runs on the async
     // runtime by now (the aggregator has shut down), so blocking here is harmless.
-    let report = evaluate_cohort(&cohort, &name, &priors, &settings, bar.as_ref())?;
+    let mut report = evaluate_cohort(&cohort, &name, &priors, &settings, bar.as_ref())?;
+    if opts.prior.is_none() {
+        report.prior_objective = prior_objective(&cohort, &priors.pooled, settings.threads)?;
+    }
     let detection = t_detect.elapsed();
     if let Some(b) = &bar {
         b.finish();
@@ -310,6 +313,63 @@ pub async fn run_evaluation(opts: &EvaluateOptions) -> anyhow::Result<Evaluation
         dropped,
         detection,
     })
+}
+
+/// Per signal, the pooled per-day objective of `priors` over every participant's training
+/// series (what federated training minimises), on `threads` threads.
+///
+/// # Errors
+/// A likelihood that cannot be evaluated.
+pub fn prior_objective(
+    cohort: &Cohort,
+    priors: &[PriorParams],
+    threads: usize,
+) -> anyhow::Result<std::collections::BTreeMap<String, f64>> {
+    let series: Vec<_> = cohort
+        .participants
+        .iter()
+        .map(crate::client::local_training_series)
+        .collect();
+    let mut out = std::collections::BTreeMap::new();
+    for p in priors {
+        let of_signal: Vec<&crate::training::LocalSeries> = series
+            .iter()
+            .flat_map(|s| s.iter().filter(|(sig, _)| *sig == p.signal).map(|(_, l)| l))
+            .collect();
+        let chunk = of_signal.len().div_ceil(threads.max(1)).max(1);
+        let parts: Vec<anyhow::Result<(f64, f64)>> = std::thread::scope(|scope| {
+            let handles: Vec<_> = of_signal
+                .chunks(chunk)
+                .map(|part| {
+                    scope.spawn(move || -> anyhow::Result<(f64, f64)> {
+                        let mut sum = 0.0;
+                        let mut days = 0.0;
+                        for s in part.iter().filter(|s| s.n_days() > 0) {
+                            let n = s.n_days() as f64;
+                            let (v, _) = crate::training::per_day_objective(&p.values, s, 0.0)?;
+                            sum += v * n;
+                            days += n;
+                        }
+                        Ok((sum, days))
+                    })
+                })
+                .collect();
+            handles
+                .into_iter()
+                .map(|h| h.join().expect("objective thread panicked"))
+                .collect()
+        });
+        let (mut sum, mut days) = (0.0, 0.0);
+        for part in parts {
+            let (s, d) = part?;
+            sum += s;
+            days += d;
+        }
+        if days > 0.0 {
+            out.insert(p.signal.column().to_owned(), sum / days);
+        }
+    }
+    Ok(out)
 }
 
 /// A learned (or loaded) prior, how it was learned and what it took.
@@ -490,6 +550,16 @@ pub async fn learn_prior(
         rounds: first_pass.rounds,
         dropped: first_pass.dropped,
     };
+    if let Some(dp) = &config.dp {
+        learned.source.push_str(&format!(
+            "; differential privacy: ε {:.2} spent of {} after {} rounds (δ = 1/{n}, noise multiplier {:.3}, clipping norm {})",
+            config.epsilon_spent(config.round_limit()).unwrap_or(0.0),
+            dp.epsilon_budget,
+            config.round_limit(),
+            dp.noise_multiplier,
+            dp.clip_norm
+        ));
+    }
     if !screened {
         learned.priors = first;
         return Ok(learned);

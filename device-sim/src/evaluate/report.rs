@@ -76,6 +76,11 @@ pub struct EvaluationReport {
     /// quarantine files under `quarantine/` hold every bad row).
     pub issues_not_listed: usize,
     pub settings: ReportSettings,
+    /// Per signal, the pooled per-day objective (NLML per observed day, nats) of the shared
+    /// prior on this cohort's training series (`training::pooled_objective`; lower fits
+    /// better). Filled when the prior was learned in this run.
+    #[serde(skip_serializing_if = "std::collections::BTreeMap::is_empty")]
+    pub prior_objective: std::collections::BTreeMap<String, f64>,
     pub methods: Vec<MethodSummary>,
     pub caution: String,
 }

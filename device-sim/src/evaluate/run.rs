@@ -433,6 +433,7 @@ pub fn evaluate_cohort(
     }
 
     Ok(EvaluationReport {
+        prior_objective: BTreeMap::new(),
         schema: SCHEMA.into(),
         cohort: cohort_name.into(),
         participants: cohort.participants.len(),
