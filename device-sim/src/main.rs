@@ -149,6 +149,14 @@ enum Command {
         /// --group-column) or `q-fedavg:q`.
         #[arg(long, value_parser = parse_rule, default_value = "fedavg")]
         aggregation: AggregationRule,
+        /// Train with user-level differential privacy (DP-FedAvg) within this ε over the
+        /// rounds: the noise multiplier is chosen to reach it (every device selected each
+        /// round, clipping norm 0.5).
+        #[arg(long, requires = "dp_delta")]
+        dp_epsilon: Option<f64>,
+        /// δ of the privacy statement, e.g. 1/(expected participants).
+        #[arg(long, requires = "dp_epsilon")]
+        dp_delta: Option<f64>,
         /// Output file (never overwritten).
         #[arg(long, default_value = "study.json")]
         out: PathBuf,
@@ -432,6 +440,8 @@ async fn main() -> anyhow::Result<()> {
             group_levels,
             calibrate_per_group,
             aggregation,
+            dp_epsilon,
+            dp_delta,
             out,
         } => {
             let signals: Vec<Signal> = if signals.is_empty() {
@@ -482,7 +492,19 @@ async fn main() -> anyhow::Result<()> {
                     calibrate_per_group,
                     min_devices_per_group: plimsoll_server::study::DEFAULT_MIN_DEVICES_PER_GROUP,
                 }),
-                dp: None,
+                dp: match (dp_epsilon, dp_delta) {
+                    (Some(target), Some(delta)) => Some(
+                        plimsoll_server::privacy::DpSettings::for_target(
+                            target,
+                            1.0,
+                            rounds,
+                            delta,
+                            plimsoll_device::evaluate::command::DP_CLIP_NORM,
+                        )
+                        .map_err(|e| anyhow::anyhow!("--dp-epsilon {target}: {e}"))?,
+                    ),
+                    _ => None,
+                },
             };
             config
                 .validate()
