@@ -21,6 +21,7 @@ pub mod presentation;
 pub mod privacy;
 pub mod review;
 pub mod rounds;
+pub mod secagg;
 pub mod secrets;
 pub mod service;
 pub mod store;
