@@ -320,3 +320,53 @@ fn demo_runs_outside_the_repository_checks_settings_first_and_clears_old_devices
         assert!(caution.contains("flags.csv"), "{caution}");
     }
 }
+
+/// The demo with a differentially private prior runs end to end over gRPC and states the
+/// privacy spent; an ε no noise can reach is refused before simulating.
+#[test]
+fn demo_with_differential_privacy_states_epsilon() {
+    let root = tempfile::tempdir().unwrap();
+    let o = run(
+        &[
+            "demo",
+            "--out",
+            "demo",
+            "--participants",
+            "4",
+            "--rounds",
+            "3",
+            "--dp-epsilon",
+            "8",
+            "--review-port",
+            "0",
+        ],
+        root.path(),
+    );
+    let stdout = text(&o.stdout);
+    assert!(o.status.success(), "{stdout}\n{}", text(&o.stderr));
+    let line = stdout
+        .lines()
+        .find(|l| l.starts_with("Privacy: user-level DP-FedAvg"))
+        .unwrap_or_else(|| panic!("{stdout}"));
+    assert!(line.contains("of 8 after 3 rounds"), "{line}");
+
+    let o = run(
+        &[
+            "demo",
+            "--out",
+            "demo2",
+            "--dp-epsilon",
+            "0",
+            "--review-port",
+            "0",
+        ],
+        root.path(),
+    );
+    assert!(!o.status.success());
+    assert!(
+        text(&o.stderr).contains("--dp-epsilon 0: the ε budget must be positive"),
+        "{}",
+        text(&o.stderr)
+    );
+    assert!(!root.path().join("demo2").join("cohort").exists());
+}
