@@ -43,10 +43,11 @@
 //! counts and losses (which enter the published contributions); `ε` bounds what the published
 //! priors reveal about one participant, not what the aggregator's database holds. Noise is
 //! drawn in floating point (`rand_distr::Normal`), which is known to leak through the low-order
-//! bits in principle (Mironov 2012); a discrete mechanism would close that. A round drawn with
-//! fewer devices than the study's quorum is abandoned and drawn again; the accountant treats
-//! each published round as Poisson-sampled (the conditioning on at least `min_quorum` members
-//! is not accounted for and is negligible only when `qN` is far above the quorum).
+//! bits in principle (Mironov 2012); a discrete mechanism would close that. A round closes when
+//! every selected device has submitted, however few were drawn; a draw of no device, or a round
+//! in which fewer than `min_quorum` devices submitted by the deadline, is abandoned and drawn
+//! again. The accountant treats each published round as Poisson-sampled: that conditioning is
+//! not accounted for, and it is negligible only when `qN` is far above the quorum.
 
 use rand_distr::{Distribution, Normal};
 use serde::{Deserialize, Serialize};
