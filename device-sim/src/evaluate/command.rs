@@ -431,6 +431,11 @@ pub async fn learn_prior(
             "no participant has a signal with {MIN_DAYS_TO_ENROLL} observed days, so none can enrol in federated training; pass a prior with --prior"
         );
     }
+    if screened && groups.dp_epsilon.is_some() {
+        bail!(
+            "--screened-prior with --dp-epsilon: the second pass would spend privacy the first pass's budget does not count; use one of them"
+        );
+    }
     let n = members.len();
     let per_round = n.min(MAX_DEVICES_PER_ROUND);
     let signals = {
