@@ -120,7 +120,9 @@ fn one_round(n: usize) -> (Duration, Duration, Duration) {
         let response = device.unmask(&request).expect("unmasking");
         device_time += t.elapsed();
         let t = Instant::now();
-        server.receive_unmasking(response).expect("response accepted");
+        server
+            .receive_unmasking(response)
+            .expect("response accepted");
         server_time += t.elapsed();
     }
     let t = Instant::now();

@@ -963,3 +963,36 @@ pub fn error(session: Option<&Session>, title: &str, message: &str) -> String {
         ),
     )
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The overview's privacy line: ε spent of the budget. Reference: ε = 4.9918 after 80
+    /// rounds at q = 1, z = 5, δ = 1/24, computed with Google's dp-accounting 0.6.0
+    /// (`RdpAccountant`, orders 2–256), the package `tests/privacy.rs` checks against.
+    #[test]
+    fn privacy_fact_states_epsilon_spent_of_the_budget() {
+        let mut config: crate::study::StudyConfig = serde_json::from_value(serde_json::json!({
+            "study_id": "s", "title": "t",
+            "signals": [{"signal": "steps", "param_names": ["mean_z"], "reference_center": 0.0,
+                         "reference_scale": 1.0, "initial": [0.0]}],
+            "rounds": 80,
+            "training": {"optimizer": "sgd", "local_steps": 1, "learning_rate": 1.0,
+                         "window_days": 0, "hyperprior_weight_per_day": 0.0},
+            "fraction_per_round": 1.0, "min_quorum": 1, "start_when_enrolled": 1,
+            "round_deadline_ms": 1000, "selection_seed": 1
+        }))
+        .unwrap();
+        assert_eq!(privacy_fact(&config, 80), "", "no line without dp");
+        config.dp = Some(crate::privacy::DpSettings {
+            noise_multiplier: 5.0,
+            clip_norm: 0.5,
+            epsilon_budget: 8.0,
+            delta: 1.0 / 24.0,
+        });
+        let line = privacy_fact(&config, 80);
+        assert!(line.contains("ε = 4.99 of 8.00"), "{line}");
+        assert!(line.contains("δ = 4.2e-2"), "{line}");
+    }
+}
