@@ -81,6 +81,7 @@ pub fn study_calibration() -> StudyCalibration {
         budget_per_month: 0.025,
         moment_devices: 0,
         histogram_devices: 0,
+        histogram_group: None,
         alert: Calibrated {
             threshold: 4.0,
             rate: 0.025,

@@ -357,13 +357,21 @@ pub async fn calibrate_detection(
         ));
     };
     let summed = wire::histogram_from_pb("episode_histogram", &sum)?;
-    Ok(StudyCalibration::new(
+    // Under per-group calibration the sum is over this device's group only.
+    let (histogram_devices, histogram_group) = if published.group_label.is_empty() {
+        (published.devices_submitted, None)
+    } else {
+        (published.group_devices, Some(published.group_label))
+    };
+    let mut calibration = StudyCalibration::new(
         correlation,
         summed,
         budget,
         moment_devices,
-        published.devices_submitted,
-    ))
+        histogram_devices,
+    );
+    calibration.histogram_group = histogram_group;
+    Ok(calibration)
 }
 
 /// Sends one stage's statistics, retried on transient failures.

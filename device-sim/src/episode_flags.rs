@@ -523,6 +523,7 @@ mod tests {
             budget_per_month: 0.3,
             moment_devices: 0,
             histogram_devices: 0,
+            histogram_group: None,
             correlation: Correlation::identity(),
             alert: Calibrated {
                 threshold: 4.0,

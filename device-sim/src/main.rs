@@ -571,8 +571,14 @@ async fn main() -> anyhow::Result<()> {
             );
             let c = &report.calibration;
             println!(
-                "detector calibrated with {} devices: Alert at score {:.1}, Watch at {:.1} ({} Alert episodes per participant-month budget)",
-                c.histogram_devices, c.alert.threshold, c.watch.threshold, c.budget_per_month
+                "detector calibrated with {} devices{}: Alert at score {:.1}, Watch at {:.1} ({} Alert episodes per participant-month budget)",
+                c.histogram_devices,
+                c.histogram_group
+                    .as_ref()
+                    .map_or(String::new(), |g| format!(" of group {g}")),
+                c.alert.threshold,
+                c.watch.threshold,
+                c.budget_per_month
             );
             println!(
                 "{} flagged ({}), {} sent for review; outputs in {}",

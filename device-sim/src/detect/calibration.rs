@@ -208,6 +208,10 @@ pub struct StudyCalibration {
     pub moment_devices: u32,
     /// Devices whose histogram entered the thresholds.
     pub histogram_devices: u32,
+    /// Under per-group calibration, the group (the study's group column) whose devices'
+    /// histograms gave the thresholds; `None`: the whole study's.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub histogram_group: Option<String>,
 }
 
 impl StudyCalibration {
@@ -228,6 +232,7 @@ impl StudyCalibration {
             histogram,
             moment_devices,
             histogram_devices,
+            histogram_group: None,
         }
     }
 
@@ -264,6 +269,7 @@ impl StudyCalibration {
             histogram: EpisodeHistogram::default(),
             moment_devices: 0,
             histogram_devices: 0,
+            histogram_group: None,
         }
     }
 
@@ -284,6 +290,7 @@ impl StudyCalibration {
             histogram,
             moment_devices: 0,
             histogram_devices: 0,
+            histogram_group: None,
         }
     }
 
