@@ -40,6 +40,8 @@ def main() -> int:
     parser.add_argument("--days", type=int, default=30, help="days of data the update stands for")
     parser.add_argument("--local-loss", type=float, default=1.0, help="mean local loss per day to report")
     parser.add_argument("--timeout-s", type=float, default=120.0, help="give up after this long")
+    parser.add_argument("--sensor-model", default="", help="this device's sensor model, when the study lists models (Study.sensor_models)")
+    parser.add_argument("--group-label", default="", help="the participant's level of Study.group_column, when the study names one")
     args = parser.parse_args()
 
     sys.path.insert(0, args.stubs)
@@ -66,6 +68,8 @@ def main() -> int:
             consent_share_flags=False,
             enrollment_code=code,
             device_secret=secret,
+            sensor_model=args.sensor_model,
+            group_label=args.group_label,
         ),
         timeout=10,
     )
