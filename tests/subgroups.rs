@@ -272,3 +272,85 @@ async fn sensor_terms_per_model_pooled_fallback_and_per_group_calibration() {
     assert_eq!(scored(&old), (15, 1500));
     server.stop().await;
 }
+
+/// The per-device path end to end (every device enrols, trains, calibrates and detects over
+/// gRPC): devices declare their sensor model and sex from the cohort's columns, models with
+/// enough devices get terms of their own, and each device's thresholds come from its own
+/// group's histograms when the group reaches the minimum (the whole study's otherwise).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn devices_declare_from_the_cohort_and_calibrate_per_group() {
+    use plimsoll_device::cohort::{BadRowPolicy, Scenario, SimulateOptions, read_cohort};
+    use plimsoll_device::demo::{cohort_signals, run_federated};
+
+    let dir = tempfile::tempdir().unwrap();
+    let scenario = Scenario::from_path(
+        &std::path::PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+            .join("../demo-data/fairness-stress.toml"),
+    )
+    .unwrap();
+    let cohort_dir = dir.path().join("cohort");
+    plimsoll_device::cohort::simulate_to_dir(
+        &scenario,
+        &SimulateOptions {
+            seed: Some(9),
+            participants: Some(16),
+            days: Some(60),
+        },
+        &cohort_dir,
+        &mut |_, _| {},
+    )
+    .unwrap();
+    let cohort = read_cohort(&cohort_dir, BadRowPolicy::Abort).unwrap();
+    let n = cohort.participants.len() as u32;
+    let mut config = study_config("declared", &cohort_signals(&cohort), n, 2);
+    config.min_quorum = n;
+    config.sensor_models = Some(SensorModels {
+        models: vec!["band-a".into(), "band-b".into(), "ring-c".into()],
+        params: vec!["mean_z".into(), "log_noise_var".into()],
+        min_devices: 5,
+        column: Some("device_model".into()),
+    });
+    config.subgroups = Some(Subgroups {
+        column: "sex".into(),
+        levels: vec!["female".into(), "male".into()],
+        calibrate_per_group: true,
+        min_devices_per_group: 5,
+    });
+    let run = run_federated(
+        &cohort,
+        config,
+        &dir.path().join("agg.db"),
+        &dir.path().join("devices"),
+        None,
+    )
+    .await
+    .unwrap();
+    assert_eq!(run.reports.len(), cohort.participants.len());
+    let count = |column: &str, level: &str| {
+        cohort
+            .groups
+            .values()
+            .filter(|g| g.get(column).map(String::as_str) == Some(level))
+            .count()
+    };
+    let last = run.history.last().unwrap();
+    for model in ["band-a", "band-b", "ring-c"] {
+        assert_eq!(
+            last.has_terms(model),
+            count("device_model", model) >= 5,
+            "{model}: {} devices",
+            count("device_model", model)
+        );
+    }
+    for report in &run.reports {
+        let sex = &cohort.groups[&report.participant]["sex"];
+        let c = &report.calibration;
+        if count("sex", sex) >= 5 {
+            assert_eq!(c.histogram_group.as_deref(), Some(sex.as_str()));
+            assert_eq!(c.histogram_devices as usize, count("sex", sex));
+        } else {
+            assert_eq!(c.histogram_group, None);
+            assert_eq!(c.histogram_devices, n);
+        }
+    }
+}

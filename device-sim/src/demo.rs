@@ -179,7 +179,9 @@ pub struct FederatedRun {
 
 /// Runs every participant of `cohort` as a device against a fresh aggregator
 /// with its database at `db_path`, through the study's rounds and the
-/// detector's calibration ([`crate::client::calibrate_detection`]).
+/// detector's calibration ([`crate::client::calibrate_detection`]). Devices
+/// declare the sensor model and group level the study asks for from the
+/// cohort's `participants.csv` columns ([`crate::scheduler::Declared`]).
 pub async fn run_federated(
     cohort: &Cohort,
     config: StudyConfig,
@@ -213,6 +215,8 @@ pub async fn run_federated_with(
     );
     let study_id = config.study_id.clone();
     let rounds = config.rounds;
+    // What each device declares at enrolment, from the cohort's group columns.
+    let declared = crate::scheduler::Declared::from_config(&config);
     let enrollment_code = coordinator.create_study(config, plimsoll_server::service::now_ms())?;
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
     let server = plimsoll_server::serve(coordinator.clone(), listener).await?;
@@ -222,6 +226,7 @@ pub async fn run_federated_with(
     ));
     let mut tasks = tokio::task::JoinSet::new();
     for (i, series) in cohort.participants.iter().enumerate() {
+        let (sensor_model, group_label) = declared.values(cohort, &series.participant);
         let opts = DeviceOptions {
             study_id: study_id.clone(),
             enrollment_code: enrollment_code.clone(),
@@ -229,8 +234,8 @@ pub async fn run_federated_with(
             wait_ms: 5_000,
             seed: 0x5eed_0000 + i as u64,
             device_secret: None,
-            sensor_model: None,
-            group_label: None,
+            sensor_model: (!sensor_model.is_empty()).then_some(sensor_model),
+            group_label: (!group_label.is_empty()).then_some(group_label),
         };
         tasks.spawn(run_device_with(
             channel.clone(),
