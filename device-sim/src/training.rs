@@ -132,6 +132,27 @@ pub fn nlml_grad(values: &[f64], series: &LocalSeries) -> gp::Result<(f64, [f64;
     Ok((nlml, gradient_to_wire(&engine_grad)))
 }
 
+/// NLML of one series without its gradient, from the same engines as [`nlml_grad`] (for
+/// reporting a prior's fit, where the gradient would be work thrown away).
+///
+/// # Errors
+/// As [`nlml_grad`].
+pub fn nlml(values: &[f64], series: &LocalSeries) -> gp::Result<f64> {
+    let params: &[f64; N_PARAMS] = values.try_into().map_err(|_| {
+        GpError::Shape(format!(
+            "{} parameters given, the prior has {N_PARAMS}",
+            values.len()
+        ))
+    })?;
+    if let Ok(days) = whole_days(&series.t) {
+        match gp_ss::nlml(params, &days, &series.z) {
+            Err(GpError::NotPositiveDefinite { .. }) => {}
+            other => return other,
+        }
+    }
+    model_from(values).nlml(&series.t, &series.z)
+}
+
 /// Per-day objective `L_k` and its gradient in wire order.
 pub fn per_day_objective(
     values: &[f64],
@@ -290,4 +311,31 @@ pub fn fit_single(
         start,
         config,
     )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The value-only NLML equals the value `nlml_grad` returns, on whole days with a gap
+    /// (state-space engine) and on fractional days (dense engine).
+    #[test]
+    fn nlml_equals_the_value_of_nlml_grad() {
+        let values = crate::prior::PriorParams::initial(crate::signal::Signal::RestingHr).values;
+        for t in [
+            vec![0.0, 1.0, 2.0, 5.0, 6.0, 9.0],
+            vec![0.0, 0.5, 2.25, 5.0, 6.5, 9.0],
+        ] {
+            let series = LocalSeries {
+                z: t.iter().map(|d: &f64| (0.7 * d).sin()).collect(),
+                t,
+            };
+            let (want, _) = nlml_grad(&values, &series).unwrap();
+            let got = nlml(&values, &series).unwrap();
+            assert!(
+                (got - want).abs() <= 1e-12 * want.abs().max(1.0),
+                "{got} vs {want}"
+            );
+        }
+    }
 }

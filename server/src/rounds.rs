@@ -1445,27 +1445,51 @@ fn close_private_round(
             .values()
             .flat_map(|ups| ups.iter().filter(|u| u.signal == current.signal))
             .collect();
-        if !entries.is_empty() {
-            let n_days: u64 = entries.iter().map(|u| u64::from(u.n_days)).sum();
-            contributions.push(Contribution {
-                signal: current.signal.clone(),
-                n_devices: entries.len() as u32,
-                n_days,
-                mean_local_loss: entries
-                    .iter()
-                    .map(|u| u.local_loss * f64::from(u.n_days))
-                    .sum::<f64>()
-                    / n_days.max(1) as f64,
-            });
-        }
+        contributions.extend(contribution(&current.signal, &entries));
     }
+    publish(store, rt, params, contributions, Vec::new(), now_ms)
+}
+
+/// What one signal's accepted submissions contributed to a round: devices, summed day
+/// counts (the FedAvg weights) and the day-weighted mean local loss; `None` without any.
+/// Day counts are at least 1 (`validate_updates`), so the mean is defined.
+fn contribution(signal: &str, entries: &[&SignalUpdate]) -> Option<Contribution> {
+    if entries.is_empty() {
+        return None;
+    }
+    let n_days: u64 = entries.iter().map(|u| u64::from(u.n_days)).sum();
+    let loss = entries
+        .iter()
+        .map(|u| u.local_loss * f64::from(u.n_days))
+        .sum::<f64>()
+        / n_days as f64;
+    Some(Contribution {
+        signal: signal.to_owned(),
+        n_devices: entries.len() as u32,
+        n_days,
+        mean_local_loss: loss,
+    })
+}
+
+/// Publishes the open round's result as the next prior version (closing the round and
+/// storing the prior in one transaction), then moves memory on: the new latest prior, one
+/// more round completed, no round open.
+fn publish(
+    store: &mut Store,
+    rt: &mut StudyRuntime,
+    params: Vec<SignalParams>,
+    contributions: Vec<Contribution>,
+    sensor_terms: Vec<SensorTerms>,
+    now_ms: i64,
+) -> Result<()> {
+    let open = rt.open.as_ref().expect("publish needs an open round");
     let prior = PriorVersion {
         version: rt.latest.version + 1,
         round_id: open.round_id,
         params,
         contributions,
         created_unix_ms: now_ms,
-        sensor_terms: Vec::new(),
+        sensor_terms,
     };
     store.close_round(&rt.config.study_id, open.round_id, &prior, now_ms)?;
     tracing::info!(
@@ -1474,7 +1498,7 @@ fn close_private_round(
         version = prior.version,
         devices = open.submissions.len(),
         epsilon = rt.config.epsilon_spent(rt.rounds_completed + 1),
-        "private round closed; prior published"
+        "round closed; prior published"
     );
     rt.latest = prior;
     rt.rounds_completed += 1;
@@ -1613,18 +1637,7 @@ fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<
         let entries: Vec<&SignalUpdate> = entries.into_iter().map(|(_, u)| u).collect();
         match combined {
             Some(values) => {
-                let n_days: u64 = entries.iter().map(|u| u64::from(u.n_days)).sum();
-                let loss = entries
-                    .iter()
-                    .map(|u| u.local_loss * f64::from(u.n_days))
-                    .sum::<f64>()
-                    / n_days as f64;
-                contributions.push(Contribution {
-                    signal: current.signal.clone(),
-                    n_devices: entries.len() as u32,
-                    n_days,
-                    mean_local_loss: loss,
-                });
+                contributions.extend(contribution(&current.signal, &entries));
                 params.push(SignalParams {
                     signal: current.signal.clone(),
                     values,
@@ -1633,24 +1646,5 @@ fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<
             None => params.push(current.clone()),
         }
     }
-    let prior = PriorVersion {
-        version: rt.latest.version + 1,
-        round_id: open.round_id,
-        params,
-        contributions,
-        created_unix_ms: now_ms,
-        sensor_terms,
-    };
-    store.close_round(&rt.config.study_id, open.round_id, &prior, now_ms)?;
-    tracing::info!(
-        study = %rt.config.study_id,
-        round_id = open.round_id,
-        version = prior.version,
-        devices = open.submissions.len(),
-        "round closed; prior published"
-    );
-    rt.latest = prior;
-    rt.rounds_completed += 1;
-    rt.open = None;
-    Ok(())
+    publish(store, rt, params, contributions, sensor_terms, now_ms)
 }

@@ -345,10 +345,8 @@ pub fn prior_objective(
                         let mut sum = 0.0;
                         let mut days = 0.0;
                         for s in part.iter().filter(|s| s.n_days() > 0) {
-                            let n = s.n_days() as f64;
-                            let (v, _) = crate::training::per_day_objective(&p.values, s, 0.0)?;
-                            sum += v * n;
-                            days += n;
+                            sum += crate::training::nlml(&p.values, s)?;
+                            days += s.n_days() as f64;
                         }
                         Ok((sum, days))
                     })

@@ -334,12 +334,10 @@ pub fn evaluate_cohort(
     let mut methods = Vec::with_capacity(Method::ALL.len());
     for (m, &method) in Method::ALL.iter().enumerate() {
         // Calibration: summed per-device episode histograms.
+        let histograms = participant_histograms(&scored, m, gap);
         let mut hist = EpisodeHistogram::default();
-        for s in &scored {
-            hist.merge(&EpisodeHistogram::from_days(
-                &expand(&s.per_method[m].0),
-                gap,
-            ));
+        for h in &histograms {
+            hist.merge(h);
         }
         let alert = hist.threshold_for(settings.budget_per_month);
         let watch = hist.threshold_for(WATCH_BUDGET_FACTOR * settings.budget_per_month);
@@ -353,10 +351,10 @@ pub fn evaluate_cohort(
                 cohort,
                 &mut scored,
                 m,
+                &histograms,
                 column,
                 alarm_threshold,
                 settings,
-                gap,
             );
         }
 
@@ -479,10 +477,10 @@ fn calibrate_per_group(
     cohort: &Cohort,
     scored: &mut [Scored],
     m: usize,
+    histograms: &[EpisodeHistogram],
     column: &str,
     pooled_threshold: f64,
     settings: &EvaluationSettings,
-    gap: crate::detect::episodes::Grouping,
 ) -> Vec<String> {
     let level_of = |s: &Scored| {
         cohort
@@ -492,14 +490,11 @@ fn calibrate_per_group(
             .cloned()
     };
     let mut hists: BTreeMap<String, (usize, EpisodeHistogram)> = BTreeMap::new();
-    for s in scored.iter() {
+    for (s, h) in scored.iter().zip(histograms) {
         let Some(level) = level_of(s) else { continue };
         let entry = hists.entry(level).or_default();
         entry.0 += 1;
-        entry.1.merge(&EpisodeHistogram::from_days(
-            &expand(&s.per_method[m].0),
-            gap,
-        ));
+        entry.1.merge(h);
     }
     let budget = match settings.alarm_level {
         FlagLevel::Alert => settings.budget_per_month,
@@ -538,6 +533,19 @@ fn calibrate_per_group(
                 }
             )
         })
+        .collect()
+}
+
+/// Each participant's episode histogram under method `m` (what a device would submit), in
+/// the order of `scored`.
+fn participant_histograms(
+    scored: &[Scored],
+    m: usize,
+    gap: crate::detect::episodes::Grouping,
+) -> Vec<EpisodeHistogram> {
+    scored
+        .iter()
+        .map(|s| EpisodeHistogram::from_days(&expand(&s.per_method[m].0), gap))
         .collect()
 }
 
@@ -769,7 +777,8 @@ mod tests {
             "one threshold: a {a}, b {b} per participant-month"
         );
 
-        let notes = calibrate_per_group(&cohort, &mut scored, 0, "arm", h, &settings, gap);
+        let histograms = participant_histograms(&scored, 0, gap);
+        let notes = calibrate_per_group(&cohort, &mut scored, 0, &histograms, "arm", h, &settings);
         assert_eq!(notes.len(), 2, "{notes:?}");
         for group in [0..30, 30..60] {
             let r = rate_of(&scored, group.clone(), h);
