@@ -35,6 +35,7 @@ pub fn study_config(id: &str, signals: &[Signal], devices: u32, rounds: u32) -> 
         sensor_models: None,
         subgroups: None,
         dp: None,
+        secure_aggregation: None,
     }
 }
 

@@ -715,6 +715,7 @@ pub(crate) async fn train_and_submit(
     backoff: &Backoff,
 ) -> anyhow::Result<()> {
     let round_id = task.round_id;
+    let secure = task.secure.clone();
     let permit = cpu.clone().acquire_owned().await?;
     let updates = tokio::task::spawn_blocking(move || {
         let _permit = permit;
@@ -722,6 +723,13 @@ pub(crate) async fn train_and_submit(
     })
     .await
     .context("local training task")??;
+    if let Some(secure) = &secure {
+        crate::secure::secure_submit(
+            client, credential, study_id, round_id, secure, &updates, backoff, seed,
+        )
+        .await?;
+        return Ok(());
+    }
     let request = pb::SubmitUpdateRequest {
         study_id: study_id.to_owned(),
         device_id: credential.device_id,

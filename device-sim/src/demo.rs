@@ -39,6 +39,8 @@ pub struct DemoOptions {
     pub bad_rows: BadRowPolicy,
     /// Train the prior with user-level differential privacy at this ε (δ = 1/N).
     pub dp_epsilon: Option<f64>,
+    /// Run each round with secure aggregation (`plimsoll_server::secure_round`).
+    pub secure_aggregation: bool,
 }
 
 /// The default demo scenario (`demo-data/quick.toml`), built into the
@@ -126,7 +128,7 @@ fn demo_config(
             hyperprior_weight_per_day: 0.0,
         },
         fraction_per_round: 1.0,
-        min_quorum: (n / 2).max(1),
+        min_quorum: (n / 2).max(if opts.secure_aggregation { 2 } else { 1 }),
         start_when_enrolled: n,
         round_deadline_ms: 120_000,
         selection_seed: 7,
@@ -137,6 +139,9 @@ fn demo_config(
         sensor_models: None,
         subgroups: None,
         dp,
+        secure_aggregation: opts
+            .secure_aggregation
+            .then(plimsoll_server::study::SecureAggregation::default),
     })
 }
 
@@ -285,8 +290,8 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
         ),
     };
     // Check the study settings before simulating anything (all six signals
-    // and a quorum of 1 stand in for what the cohort decides).
-    demo_config(opts, String::new(), &Signal::ALL, 1)?
+    // and four devices stand in for what the cohort decides).
+    demo_config(opts, String::new(), &Signal::ALL, 4)?
         .validate()
         .map_err(|e| anyhow::anyhow!("demo settings: {e}"))?;
     let cohort_dir = opts.out_dir.join("cohort");

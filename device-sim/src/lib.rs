@@ -42,6 +42,7 @@ pub mod prior;
 pub mod prospective;
 pub mod retry;
 pub mod scheduler;
+pub mod secure;
 pub mod signal;
 pub mod training;
 pub mod wire;

@@ -94,6 +94,11 @@ enum Command {
         /// the rounds (δ = 1/participants; the noise multiplier is chosen to reach it).
         #[arg(long)]
         dp_epsilon: Option<f64>,
+        /// Run each round with secure aggregation: the aggregator learns only the sum of
+        /// the round's updates (pairwise masks with Shamir-shared keys; a round survives a
+        /// third of its devices dropping).
+        #[arg(long, conflicts_with = "dp_epsilon")]
+        secure_aggregation: bool,
         /// What a bad input row does: `quarantine` keeps the good rows, reports every bad one
         /// and copies the bad rows to <out>/quarantine/; `abort` stops at the first.
         #[arg(long, value_enum, default_value_t = OnBadRow::Quarantine)]
@@ -157,6 +162,14 @@ enum Command {
         /// δ of the privacy statement, e.g. 1/(expected participants).
         #[arg(long, requires = "dp_epsilon")]
         dp_delta: Option<f64>,
+        /// Run each round with secure aggregation (FedAvg only; no sensor models or
+        /// differential privacy): the aggregator learns only each round's sum.
+        #[arg(long, conflicts_with = "dp_epsilon")]
+        secure_aggregation: bool,
+        /// How long each secure-aggregation phase after the first waits for the devices
+        /// still expected, in seconds.
+        #[arg(long, default_value_t = 60, requires = "secure_aggregation")]
+        secure_phase_seconds: u32,
         /// Output file (never overwritten).
         #[arg(long, default_value = "study.json")]
         out: PathBuf,
@@ -442,6 +455,8 @@ async fn main() -> anyhow::Result<()> {
             aggregation,
             dp_epsilon,
             dp_delta,
+            secure_aggregation,
+            secure_phase_seconds,
             out,
         } => {
             let signals: Vec<Signal> = if signals.is_empty() {
@@ -505,6 +520,12 @@ async fn main() -> anyhow::Result<()> {
                     ),
                     _ => None,
                 },
+                secure_aggregation: secure_aggregation.then(|| {
+                    plimsoll_server::study::SecureAggregation {
+                        phase_deadline_ms: u64::from(secure_phase_seconds) * 1000,
+                        ..Default::default()
+                    }
+                }),
             };
             config
                 .validate()
@@ -634,6 +655,7 @@ async fn main() -> anyhow::Result<()> {
             review_port,
             on_bad_row,
             dp_epsilon,
+            secure_aggregation,
         } => {
             run_demo(&DemoOptions {
                 scenario,
@@ -648,6 +670,7 @@ async fn main() -> anyhow::Result<()> {
                 review_port,
                 bad_rows: on_bad_row.into(),
                 dp_epsilon,
+                secure_aggregation,
             })
             .await
         }

@@ -17,6 +17,8 @@ pub struct TrainingTask {
     pub shared: Vec<PriorParams>,
     pub settings: LocalSettings,
     pub deadline_unix_ms: i64,
+    /// Present in a study with secure aggregation: send the update with `SecureStep`.
+    pub secure: Option<plimsoll_server::secure_round::SecureTask>,
 }
 
 /// Why a message from the aggregator could not be used.
@@ -82,6 +84,15 @@ pub fn task_from_pb(task: pb::Task) -> Result<TrainingTask, WireError> {
         .enumerate()
         .map(|(i, p)| params_from_pb(&format!("task.shared[{i}]"), p))
         .collect::<Result<Vec<_>, _>>()?;
+    let secure = match task.secure {
+        Some(s) => Some(plimsoll_server::wire::secure_task_from_pb(s).map_err(|e| match e {
+            plimsoll_server::error::AggregatorError::InvalidArgument { field, reason } => {
+                invalid(field, reason)
+            }
+            other => invalid("task.secure", other.to_string()),
+        })?),
+        None => None,
+    };
     Ok(TrainingTask {
         round_id: task.round_id,
         shared,
@@ -93,6 +104,7 @@ pub fn task_from_pb(task: pb::Task) -> Result<TrainingTask, WireError> {
             hyperprior_weight_per_day: training.hyperprior_weight_per_day,
         },
         deadline_unix_ms: task.deadline_unix_ms,
+        secure,
     })
 }
 

@@ -106,6 +106,7 @@ async fn two_devices_take_part_over_tls_and_resume() {
                 sensor_models: None,
                 subgroups: None,
                 dp: None,
+                secure_aggregation: None,
             },
             now_ms(),
         )

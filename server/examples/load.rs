@@ -176,6 +176,7 @@ async fn run(
             sensor_models: None,
             subgroups: None,
             dp: None,
+            secure_aggregation: None,
         },
         now_ms(),
     )?;

@@ -23,6 +23,7 @@ pub mod review;
 pub mod rounds;
 pub mod secagg;
 pub mod secrets;
+pub mod secure_round;
 pub mod service;
 pub mod store;
 pub mod study;

@@ -21,6 +21,7 @@ use crate::aggregate::UpdateInput;
 use crate::detection::{DetectionStage, DetectionStats, StageView, StatsOutcome};
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
+use crate::secure_round::{Advance, DeviceMessage, SecureNext, SecureRound, Slot};
 use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
 use crate::store::StoredEpisode;
 use crate::store::{CompletedStage, NewDevice, Store, StoredOpenRound};
@@ -52,6 +53,8 @@ struct OpenRound {
     deadline_ms: i64,
     members: BTreeSet<u64>,
     submissions: BTreeMap<u64, Vec<SignalUpdate>>,
+    /// The protocol's state in a study with secure aggregation (memory only).
+    secure: Option<SecureRound>,
 }
 
 #[derive(Debug)]
@@ -72,6 +75,9 @@ struct StudyRuntime {
     /// Rounds training runs ([`StudyConfig::round_limit`], computed once: with differential
     /// privacy it is where the budget ends).
     round_limit: u32,
+    /// The last secure round to end: its id, the devices whose input is in its sum and
+    /// what happened.
+    last_secure: Option<(u64, BTreeSet<u64>, String)>,
 }
 
 impl StudyRuntime {
@@ -236,6 +242,7 @@ impl Coordinator {
                 deadline_ms: r.deadline_ms,
                 members: r.members.into_iter().collect(),
                 submissions: r.submissions.into_iter().collect(),
+                secure: None,
             });
             let mut detection_complete = [false; 2];
             for stage in DetectionStage::ALL {
@@ -253,6 +260,7 @@ impl Coordinator {
                 latest,
                 open,
                 detection_complete,
+                last_secure: None,
             };
             // A crash between the last accepted submission and the closing
             // transaction leaves a complete round open: finish it now.
@@ -264,6 +272,14 @@ impl Coordinator {
                 let now = crate::service::now_ms();
                 close_round(&mut store, &mut runtime, now)?;
                 maybe_open_round(&mut store, &mut runtime, now, None)?;
+            }
+            // A secure round's protocol state lived in memory only: run it again.
+            if runtime.config.secure_aggregation.is_some()
+                && let Some(open) = runtime.open.take()
+            {
+                tracing::info!(study = %id, round_id = open.round_id, "restart: running the secure round again");
+                let now = crate::service::now_ms();
+                maybe_open_round(&mut store, &mut runtime, now, Some(open.round_id))?;
             }
             studies.insert(id, runtime);
         }
@@ -333,6 +349,7 @@ impl Coordinator {
                 revoked: 0,
                 labels: HashMap::new(),
                 latest: initial,
+                last_secure: None,
                 rounds_completed: 0,
                 last_round_id: 0,
                 open: None,
@@ -642,6 +659,17 @@ impl Coordinator {
                 reason: format!("not selected for round {}", open.round_id),
             });
         }
+        if let Some(secure) = &open.secure
+            && !secure.accepts_keys_from(device_id)
+        {
+            return Ok(Work::Wait {
+                retry_after_ms: RETRY_AFTER_MS,
+                reason: format!(
+                    "secure round {} is past its keys for this device; continue with SecureStep",
+                    open.round_id
+                ),
+            });
+        }
         if open.submissions.contains_key(&device_id) {
             return Ok(Work::Wait {
                 retry_after_ms: RETRY_AFTER_MS,
@@ -662,6 +690,7 @@ impl Coordinator {
             shared,
             training: rt.config.training.clone(),
             deadline_unix_ms: open.deadline_ms,
+            secure: open.secure.as_ref().map(|s| s.task().clone()),
         })
     }
 
@@ -766,6 +795,18 @@ impl Coordinator {
                     changed |= complete_stage_if_due(store, rt, stage, now_ms)?;
                 }
             }
+            if rt.open.as_ref().is_some_and(|o| o.secure.is_some()) {
+                let due = rt
+                    .open
+                    .as_ref()
+                    .and_then(|o| o.secure.as_ref())
+                    .is_some_and(|s| now_ms > s.deadline_ms());
+                if due {
+                    advance_secure(store, rt, now_ms, true)?;
+                    changed = true;
+                }
+                continue;
+            }
             let Some(open) = &rt.open else { continue };
             if now_ms <= open.deadline_ms {
                 continue;
@@ -796,6 +837,74 @@ impl Coordinator {
             self.notify();
         }
         Ok(changed)
+    }
+
+    /// One `SecureStep` call of `device_id`: authenticates, takes the device's `message` for the current
+    /// phase of secure round `round_id` (if any), closes the phase when every expected device
+    /// has answered (publishing the prior after the last phase) and says what the device
+    /// should do next.
+    ///
+    /// # Errors
+    /// Authentication; a study without secure aggregation or a round that has not opened
+    /// (FAILED_PRECONDITION); a message the protocol refuses (INVALID_ARGUMENT naming the
+    /// field, or FAILED_PRECONDITION for a later phase's message); the database.
+    pub fn secure_step(
+        &self,
+        study_id: &str,
+        device_id: u64,
+        credential: &DeviceCredential,
+        round_id: u64,
+        message: Option<DeviceMessage>,
+        now_ms: i64,
+    ) -> Result<SecureNext> {
+        let mut state = self.lock();
+        state.authenticate(study_id, Some(device_id), credential)?;
+        let State { store, studies } = &mut *state;
+        let rt = study_mut(studies, study_id)?;
+        if rt.config.secure_aggregation.is_none() {
+            return Err(AggregatorError::FailedPrecondition(format!(
+                "study `{study_id}` does not use secure aggregation; send updates with SubmitUpdate"
+            )));
+        }
+        if round_id > rt.last_round_id {
+            return Err(AggregatorError::FailedPrecondition(format!(
+                "round_id: round {round_id} has not opened (latest is {})",
+                rt.last_round_id
+            )));
+        }
+        let field = message.as_ref().map(secure_field);
+        let Some(secure) = rt
+            .open
+            .as_mut()
+            .filter(|o| o.round_id == round_id)
+            .and_then(|o| o.secure.as_mut())
+        else {
+            return Ok(finished_for(rt, round_id, device_id));
+        };
+        if let Some(message) = message {
+            let field = field.unwrap_or_default();
+            if let Some(done) = secure
+                .receive(device_id, message)
+                .map_err(|e| secagg_refusal(field, e))?
+            {
+                return Ok(done);
+            }
+        }
+        let changed = advance_secure(store, rt, now_ms, false)?;
+        let answer = match rt
+            .open
+            .as_ref()
+            .filter(|o| o.round_id == round_id)
+            .and_then(|o| o.secure.as_ref())
+        {
+            Some(secure) => secure.next_for(device_id),
+            None => finished_for(rt, round_id, device_id),
+        };
+        drop(state);
+        if changed {
+            self.notify();
+        }
+        Ok(answer)
     }
 
     /// A published prior; version `None` is the latest.
@@ -1266,6 +1375,11 @@ fn check_submission(
         .get(&device_id)
         .ok_or_else(|| unknown_device(study_id, device_id))?;
     validate_updates(&rt.config, &device.signals, updates)?;
+    if rt.config.secure_aggregation.is_some() {
+        return Err(AggregatorError::FailedPrecondition(format!(
+            "study `{study_id}` uses secure aggregation: send the update with SecureStep"
+        )));
+    }
 
     let open_id = rt.open.as_ref().map(|r| r.round_id);
     if open_id != Some(round_id) {
@@ -1364,6 +1478,28 @@ fn maybe_open_round(
         .map(|(&id, _)| id)
         .collect();
     let members = select_members(&rt.config, active, round_id);
+    let secure = match rt.config.secure_aggregation {
+        Some(sa) => {
+            let slots = rt
+                .config
+                .signals
+                .iter()
+                .map(|l| Slot {
+                    signal: l.signal.clone(),
+                    n_values: l.param_names.len(),
+                })
+                .collect();
+            let deadline = now_ms + rt.config.round_deadline_ms as i64;
+            match SecureRound::open(&members, slots, sa.frac_bits, deadline, sa.phase_deadline_ms) {
+                Ok(round) => Some(round),
+                Err(e) => {
+                    tracing::warn!(study = %rt.config.study_id, round_id, error = %e, "no secure round can open");
+                    return Ok(false);
+                }
+            }
+        }
+        None => None,
+    };
     let round = StoredOpenRound {
         round_id,
         deadline_ms: now_ms + rt.config.round_deadline_ms as i64,
@@ -1384,8 +1520,109 @@ fn maybe_open_round(
         deadline_ms: round.deadline_ms,
         members: round.members.into_iter().collect(),
         submissions: BTreeMap::new(),
+        secure,
     });
     Ok(true)
+}
+
+/// The `SecureStep` field a message came in, for refusals.
+fn secure_field(message: &DeviceMessage) -> &'static str {
+    match message {
+        DeviceMessage::Keys(_) => "keys",
+        DeviceMessage::ShareKeys(_) => "share_keys",
+        DeviceMessage::Masked(_) => "masked_input",
+        DeviceMessage::Unmasking(_) => "unmasking",
+    }
+}
+
+/// A protocol refusal of a device's message in `field`.
+fn secagg_refusal(field: &str, e: crate::secagg::SecAggError) -> AggregatorError {
+    use crate::secagg::SecAggError as E;
+    match e {
+        E::WrongPhase { .. } | E::TooFewDevices { .. } => {
+            AggregatorError::FailedPrecondition(format!("{field}: {e}"))
+        }
+        other => AggregatorError::invalid(field, other.to_string()),
+    }
+}
+
+/// The answer to a device asking about secure round `round_id` after it closed or failed.
+fn finished_for(rt: &StudyRuntime, round_id: u64, device_id: u64) -> SecureNext {
+    match &rt.last_secure {
+        Some((id, included, reason)) if *id == round_id => SecureNext::Finished {
+            included: included.contains(&device_id),
+            reason: reason.clone(),
+        },
+        _ => SecureNext::Finished {
+            included: false,
+            reason: format!("round {round_id} is over"),
+        },
+    }
+}
+
+/// Closes the open secure round's phase when it is complete (or, with `deadline_passed`,
+/// with whoever answered); after the last phase publishes the decoded FedAvg result and
+/// opens the next round; a failed round is run again. Returns whether anything changed.
+fn advance_secure(
+    store: &mut Store,
+    rt: &mut StudyRuntime,
+    now_ms: i64,
+    deadline_passed: bool,
+) -> Result<bool> {
+    let min_quorum = rt.config.min_quorum as usize;
+    let Some(open) = rt.open.as_mut() else {
+        return Ok(false);
+    };
+    let round_id = open.round_id;
+    let Some(secure) = open.secure.as_mut() else {
+        return Ok(false);
+    };
+    match secure.advance(now_ms, deadline_passed, min_quorum) {
+        Advance::None => Ok(false),
+        Advance::Next => Ok(true),
+        Advance::Done {
+            params,
+            contributions,
+            included,
+        } => {
+            // A signal no device trained keeps its parameters, as in FedAvg in clear.
+            let params = rt
+                .latest
+                .params
+                .iter()
+                .map(|current| {
+                    params
+                        .iter()
+                        .find(|p| p.signal == current.signal)
+                        .cloned()
+                        .unwrap_or_else(|| current.clone())
+                })
+                .collect();
+            publish(store, rt, params, contributions, Vec::new(), now_ms)?;
+            let reason = format!(
+                "round {round_id} closed: the sum of {} devices' inputs made prior version {}",
+                included.len(),
+                rt.latest.version
+            );
+            rt.last_secure = Some((round_id, included, reason));
+            maybe_open_round(store, rt, now_ms, None)?;
+            Ok(true)
+        }
+        Advance::Failed(why) => {
+            tracing::warn!(study = %rt.config.study_id, round_id, reason = %why, "secure round failed; running it again");
+            let previous = rt.open.take();
+            if let Err(e) = maybe_open_round(store, rt, now_ms, Some(round_id)) {
+                rt.open = previous;
+                return Err(e);
+            }
+            rt.last_secure = Some((
+                round_id,
+                BTreeSet::new(),
+                format!("round {round_id} failed and is run again: {why}"),
+            ));
+            Ok(true)
+        }
+    }
 }
 
 /// [`close_round`] under differential privacy (DP-FedAvg, `crate::privacy`): each device's
@@ -1496,7 +1733,7 @@ fn publish(
         study = %rt.config.study_id,
         round_id = open.round_id,
         version = prior.version,
-        devices = open.submissions.len(),
+        devices = contributions_devices(&prior.contributions),
         epsilon = rt.config.epsilon_spent(rt.rounds_completed + 1),
         "round closed; prior published"
     );
@@ -1504,6 +1741,11 @@ fn publish(
     rt.rounds_completed += 1;
     rt.open = None;
     Ok(())
+}
+
+/// Most devices behind any signal of a round (for the log).
+fn contributions_devices(contributions: &[Contribution]) -> u32 {
+    contributions.iter().map(|c| c.n_devices).max().unwrap_or(0)
 }
 
 /// A declared sensor model or group level: `None` when empty and the study asks for none;

@@ -207,6 +207,42 @@ impl Aggregator for AggregatorService {
         }
     }
 
+    async fn secure_step(
+        &self,
+        req: Request<pb::SecureStepRequest>,
+    ) -> Result<Response<pb::SecureStepResponse>, Status> {
+        const RPC: &str = "SecureStep";
+        let cred = credential(RPC, &req)?;
+        let r = req.into_inner();
+        let mut message = match r.message {
+            Some(m) => Some(
+                wire::device_message_from_pb(cred.device_id, m)
+                    .map_err(|e| in_rpc(RPC, wire::to_status(e)))?,
+            ),
+            None => None,
+        };
+        let wait = Duration::from_millis(u64::from(r.wait_ms.min(MAX_WAIT_MS)));
+        let until = tokio::time::Instant::now() + wait;
+        let mut changes = self.coordinator.subscribe();
+        loop {
+            changes.borrow_and_update();
+            let c = self.coordinator.clone();
+            let (study_id, round_id, cred, m) =
+                (r.study_id.clone(), r.round_id, cred.clone(), message.take());
+            let claimed = r.device_id;
+            let next = blocking(RPC, move || {
+                c.secure_step(&study_id, claimed, &cred, round_id, m, now_ms())
+            })
+            .await?;
+            let waiting = matches!(next, crate::secure_round::SecureNext::Wait(_));
+            if !waiting || tokio::time::Instant::now() >= until {
+                return Ok(Response::new(wire::secure_next_to_pb(next, 250)));
+            }
+            // Sleep until a phase closes, or the long-poll ends.
+            let _ = tokio::time::timeout_at(until, changes.changed()).await;
+        }
+    }
+
     async fn submit_update(
         &self,
         req: Request<pb::SubmitUpdateRequest>,

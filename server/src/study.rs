@@ -95,6 +95,41 @@ pub struct StudyConfig {
     /// `crate::privacy`).
     #[serde(default)]
     pub dp: Option<crate::privacy::DpSettings>,
+    /// Secure aggregation of each round's updates (none unless set; `crate::secure_round`).
+    #[serde(default)]
+    pub secure_aggregation: Option<SecureAggregation>,
+}
+
+/// A study's secure-aggregation settings: rounds run the protocol of `crate::secagg` over
+/// `SecureStep`, and the aggregator sees only each round's sum.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct SecureAggregation {
+    /// How long each phase after the first waits for the devices still expected, in
+    /// milliseconds (the first phase, which includes local training, has the round's
+    /// deadline). A phase closes early once every expected device has answered.
+    #[serde(default = "default_phase_deadline_ms")]
+    pub phase_deadline_ms: u64,
+    /// Fractional bits of the fixed-point encoding of the inputs.
+    #[serde(default = "default_frac_bits")]
+    pub frac_bits: u32,
+}
+
+impl Default for SecureAggregation {
+    fn default() -> Self {
+        Self {
+            phase_deadline_ms: default_phase_deadline_ms(),
+            frac_bits: default_frac_bits(),
+        }
+    }
+}
+
+fn default_phase_deadline_ms() -> u64 {
+    30_000
+}
+
+/// 24 bits: a parameter's day-weighted mean is decoded to within 2^−25 ≈ 3·10^−8.
+fn default_frac_bits() -> u32 {
+    24
 }
 
 /// A sensor-aware prior: one population trend, and per sensor model the
@@ -298,6 +333,40 @@ impl StudyConfig {
                 );
             }
         }
+        if let Some(sa) = &self.secure_aggregation {
+            if self.aggregation.rule != crate::aggregate::AggregationRule::Fedavg
+                || self.aggregation.clip_norm.is_some()
+            {
+                return Err(format!(
+                    "secure_aggregation: the aggregator sees only the sum of masked inputs, so \
+                     aggregation.rule {} and aggregation.clip_norm (which need each update) \
+                     cannot run; use fedavg without clip_norm",
+                    self.aggregation.rule.name()
+                ));
+            }
+            if self.sensor_models.is_some() {
+                return Err(
+                    "secure_aggregation: per-sensor-model terms need each update's model; remove sensor_models or secure_aggregation".into(),
+                );
+            }
+            if self.dp.is_some() {
+                return Err(
+                    "secure_aggregation: differential privacy with secure aggregation (distributed noise) is not available yet; choose one".into(),
+                );
+            }
+            if self.min_quorum < 2 {
+                return Err("secure_aggregation: min_quorum must be at least 2".into());
+            }
+            if sa.phase_deadline_ms == 0 {
+                return Err("secure_aggregation.phase_deadline_ms must be positive".into());
+            }
+            if !(8..=40).contains(&sa.frac_bits) {
+                return Err(format!(
+                    "secure_aggregation.frac_bits must be in 8..=40, got {}",
+                    sa.frac_bits
+                ));
+            }
+        }
         if self.aggregation.rule.needs_groups() && self.subgroups.is_none() {
             return Err(format!(
                 "aggregation.rule {}: needs a group column (set subgroups)",
@@ -437,6 +506,8 @@ pub enum Work {
         shared: Vec<SignalParams>,
         training: LocalTraining,
         deadline_unix_ms: i64,
+        /// Present in a study with secure aggregation.
+        secure: Option<crate::secure_round::SecureTask>,
     },
     Wait {
         retry_after_ms: u32,

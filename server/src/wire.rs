@@ -67,11 +67,13 @@ pub fn work_to_pb(work: Work) -> pb::FetchTaskResponse {
             shared,
             training,
             deadline_unix_ms,
+            secure,
         } => W::Task(pb::Task {
             round_id,
             shared: shared.iter().map(params_to_pb).collect(),
             training: Some(training_to_pb(&training)),
             deadline_unix_ms,
+            secure: secure.as_ref().map(secure_task_to_pb),
         }),
         Work::Wait {
             retry_after_ms,
@@ -117,6 +119,7 @@ pub fn status_to_pb(s: &StudyStatus) -> pb::Study {
         current_round: s.current_round,
         devices_enrolled: s.devices_enrolled,
         prior_version: s.prior_version,
+        secure_aggregation: s.config.secure_aggregation.is_some(),
         min_quorum: s.config.min_quorum,
         alert_budget_per_participant_month: s.config.alert_budget_per_participant_month,
         sensor_models: s
@@ -420,5 +423,223 @@ pub fn flag_packet_from_pb(p: Option<pb::FlagPacket>) -> Result<FlagPacket> {
         window_end: date_from_pb("packet.window_end", &p.window_end)?,
         signals,
         episode,
+    })
+}
+
+// ---- Secure aggregation (`SecureStep`) -------------------------------------------------------
+
+use crate::secagg::{
+    AdvertiseKeys, EncryptedShare, KeysBroadcast, MaskedInput, RevealedShare, SecretKind,
+    ShareKeys, SharesRelay, UnmaskingRequest, UnmaskingResponse, shamir::LIMBS,
+};
+use crate::secure_round::{DeviceMessage, SecureNext, SecureTask, Slot};
+
+pub fn secure_task_to_pb(t: &SecureTask) -> pb::SecureRound {
+    pb::SecureRound {
+        members: t.members.clone(),
+        threshold: t.threshold,
+        frac_bits: t.frac_bits,
+        slots: t
+            .slots
+            .iter()
+            .map(|s| pb::SecureSlot {
+                signal: s.signal.clone(),
+                n_values: s.n_values as u32,
+            })
+            .collect(),
+    }
+}
+
+/// A task's secure-round description, checked (the field named on refusal).
+pub fn secure_task_from_pb(t: pb::SecureRound) -> Result<SecureTask> {
+    let task = SecureTask {
+        members: t.members,
+        threshold: t.threshold,
+        frac_bits: t.frac_bits,
+        slots: t
+            .slots
+            .into_iter()
+            .map(|s| Slot {
+                signal: s.signal,
+                n_values: s.n_values as usize,
+            })
+            .collect(),
+    };
+    task.params()
+        .map_err(|e| AggregatorError::invalid("task.secure", e.to_string()))?;
+    task.codec()
+        .map_err(|e| AggregatorError::invalid("task.secure.frac_bits", e.to_string()))?;
+    Ok(task)
+}
+
+/// Exactly 32 bytes, or a refusal naming `field`.
+fn key32(field: &str, bytes: &[u8]) -> Result<[u8; 32]> {
+    bytes.try_into().map_err(|_| {
+        AggregatorError::invalid(field, format!("{} bytes, expected 32", bytes.len()))
+    })
+}
+
+fn ciphertext_to_pb(c: &EncryptedShare) -> pb::SecAggCiphertext {
+    pb::SecAggCiphertext {
+        sender: c.sender,
+        recipient: c.recipient,
+        ciphertext: c.ciphertext.clone(),
+    }
+}
+
+fn ciphertext_from_pb(c: pb::SecAggCiphertext) -> EncryptedShare {
+    EncryptedShare {
+        sender: c.sender,
+        recipient: c.recipient,
+        ciphertext: c.ciphertext,
+    }
+}
+
+/// A device's message as sent by authenticated device `device`.
+pub fn device_message_from_pb(
+    device: u64,
+    message: pb::secure_step_request::Message,
+) -> Result<DeviceMessage> {
+    use pb::secure_step_request::Message as M;
+    Ok(match message {
+        M::Keys(k) => DeviceMessage::Keys(AdvertiseKeys {
+            device,
+            c_public: key32("keys.c_public", &k.c_public)?,
+            s_public: key32("keys.s_public", &k.s_public)?,
+        }),
+        M::ShareKeys(m) => DeviceMessage::ShareKeys(ShareKeys {
+            device,
+            b_commitment: key32("share_keys.b_commitment", &m.b_commitment)?,
+            shares: m.shares.into_iter().map(ciphertext_from_pb).collect(),
+        }),
+        M::MaskedInput(m) => DeviceMessage::Masked(MaskedInput {
+            device,
+            masked: m.masked,
+        }),
+        M::Unmasking(m) => DeviceMessage::Unmasking(UnmaskingResponse {
+            device,
+            shares: m
+                .shares
+                .into_iter()
+                .enumerate()
+                .map(|(i, s)| {
+                    let kind = match pb::SecAggSecret::try_from(s.kind) {
+                        Ok(pb::SecAggSecret::SelfMask) => SecretKind::SelfMask,
+                        Ok(pb::SecAggSecret::PairwiseKey) => SecretKind::PairwiseKey,
+                        _ => {
+                            return Err(AggregatorError::invalid(
+                                format!("unmasking.shares[{i}].kind"),
+                                format!("unknown value {}", s.kind),
+                            ));
+                        }
+                    };
+                    let share: [u64; LIMBS] = s.share.as_slice().try_into().map_err(|_| {
+                        AggregatorError::invalid(
+                            format!("unmasking.shares[{i}].share"),
+                            format!("{} elements, expected {LIMBS}", s.share.len()),
+                        )
+                    })?;
+                    Ok(RevealedShare {
+                        owner: s.owner,
+                        kind,
+                        share,
+                    })
+                })
+                .collect::<Result<_>>()?,
+        }),
+    })
+}
+
+/// The wire form of a device's message (the sender is the call's credential).
+pub fn device_message_to_pb(message: &DeviceMessage) -> pb::secure_step_request::Message {
+    use pb::secure_step_request::Message as M;
+    match message {
+        DeviceMessage::Keys(k) => M::Keys(pb::SecAggKeys {
+            c_public: k.c_public.to_vec(),
+            s_public: k.s_public.to_vec(),
+        }),
+        DeviceMessage::ShareKeys(m) => M::ShareKeys(pb::SecAggShareKeys {
+            b_commitment: m.b_commitment.to_vec(),
+            shares: m.shares.iter().map(ciphertext_to_pb).collect(),
+        }),
+        DeviceMessage::Masked(m) => M::MaskedInput(pb::SecAggMaskedInput {
+            masked: m.masked.clone(),
+        }),
+        DeviceMessage::Unmasking(m) => M::Unmasking(pb::SecAggUnmasking {
+            shares: m
+                .shares
+                .iter()
+                .map(|s| pb::SecAggRevealedShare {
+                    owner: s.owner,
+                    kind: match s.kind {
+                        SecretKind::SelfMask => pb::SecAggSecret::SelfMask,
+                        SecretKind::PairwiseKey => pb::SecAggSecret::PairwiseKey,
+                    } as i32,
+                    share: s.share.to_vec(),
+                })
+                .collect(),
+        }),
+    }
+}
+
+pub fn secure_next_to_pb(next: SecureNext, retry_after_ms: u32) -> pb::SecureStepResponse {
+    use pb::secure_step_response::Next as N;
+    let n = match next {
+        SecureNext::Broadcast(b) => N::KeysBroadcast(pb::SecAggKeysBroadcast {
+            keys: b
+                .keys
+                .iter()
+                .map(|k| pb::SecAggAdvertised {
+                    device: k.device,
+                    c_public: k.c_public.to_vec(),
+                    s_public: k.s_public.to_vec(),
+                })
+                .collect(),
+        }),
+        SecureNext::Relay(r) => N::SharesRelay(pb::SecAggSharesRelay {
+            u2: r.u2,
+            shares: r.shares.iter().map(ciphertext_to_pb).collect(),
+        }),
+        SecureNext::Request(r) => N::UnmaskingRequest(pb::SecAggUnmaskingRequest { u3: r.u3 }),
+        SecureNext::Wait(reason) => N::Wait(pb::Wait {
+            retry_after_ms,
+            reason,
+        }),
+        SecureNext::Finished { included, reason } => {
+            N::Finished(pb::SecAggFinished { included, reason })
+        }
+    };
+    pb::SecureStepResponse { next: Some(n) }
+}
+
+/// The aggregator's answer as a device reads it (the field named on refusal).
+pub fn secure_next_from_pb(r: pb::SecureStepResponse) -> Result<SecureNext> {
+    use pb::secure_step_response::Next as N;
+    Ok(match r.next {
+        Some(N::KeysBroadcast(b)) => SecureNext::Broadcast(KeysBroadcast {
+            keys: b
+                .keys
+                .into_iter()
+                .enumerate()
+                .map(|(i, k)| {
+                    Ok(AdvertiseKeys {
+                        device: k.device,
+                        c_public: key32(&format!("keys_broadcast.keys[{i}].c_public"), &k.c_public)?,
+                        s_public: key32(&format!("keys_broadcast.keys[{i}].s_public"), &k.s_public)?,
+                    })
+                })
+                .collect::<Result<_>>()?,
+        }),
+        Some(N::SharesRelay(r)) => SecureNext::Relay(SharesRelay {
+            u2: r.u2,
+            shares: r.shares.into_iter().map(ciphertext_from_pb).collect(),
+        }),
+        Some(N::UnmaskingRequest(r)) => SecureNext::Request(UnmaskingRequest { u3: r.u3 }),
+        Some(N::Wait(w)) => SecureNext::Wait(w.reason),
+        Some(N::Finished(f)) => SecureNext::Finished {
+            included: f.included,
+            reason: f.reason,
+        },
+        None => return Err(AggregatorError::invalid("next", "missing")),
     })
 }

@@ -466,6 +466,7 @@ pub async fn learn_prior(
             rule: groups.rule,
             clip_norm: None,
         },
+        secure_aggregation: None,
         alert_budget_per_participant_month:
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
         review_level: plimsoll_server::packets::FlagLevel::Alert,

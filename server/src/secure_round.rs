@@ -1,0 +1,497 @@
+//! The coordinator's side of a secure-aggregation round: the protocol of
+//! [`crate::secagg`] driven by `SecureStep` calls, phase deadlines and the
+//! decoding of the round's sum into the next prior.
+//!
+//! # What a device's input is
+//! FedAvg needs, per signal, `Σ n_k θ_k`, `Σ n_k` and, for the round's
+//! contribution record, `Σ n_k ℓ_k` and the device count. So each device
+//! encodes, per slot (one per study signal, in the study's order),
+//! `[n·θ_1, …, n·θ_p, n, n·ℓ, 1]` (zeros for a signal it does not train) in
+//! fixed point ([`crate::secagg::FixedPoint`]); the sum over the round's
+//! devices decodes into exactly what [`crate::rounds`]' FedAvg computes in
+//! clear: `θ = Σ n·θ / Σ n` (McMahan et al. 2017, the weighted average with
+//! `n_k / n`), up to the fixed-point error (each encoded value is off by at
+//! most 2^−(k+1)).
+//!
+//! # Phases and deadlines
+//! Phase 0 (keys) includes local training, so it has the round's deadline;
+//! each later phase has `secure_aggregation.phase_deadline_ms`. A phase closes
+//! as soon as every device expected in it has answered, or at its deadline with
+//! whoever answered. A round whose phase closes with fewer than the threshold,
+//! whose masked inputs number fewer than the study's quorum, or whose shares
+//! do not reconstruct ([`SecAggError::InconsistentShares`]) fails: nothing is
+//! published and the round is run again with a fresh selection. Nothing of a
+//! secure round is stored but its members (the protocol's state lives in
+//! memory), so after a restart the open round is run again from the start.
+
+use std::collections::{BTreeMap, BTreeSet};
+
+use crate::secagg::{
+    self, AdvertiseKeys, FixedPoint, KeysBroadcast, MaskedInput, RoundParams, SecAggError,
+    ShareKeys, SharesRelay, UnmaskingRequest, UnmaskingResponse,
+};
+use crate::study::{Contribution, SignalParams};
+
+/// Values per slot besides the parameters: `n`, `n·ℓ` and the count 1.
+pub const EXTRA_PER_SLOT: usize = 3;
+
+/// One signal's slot in the input vector.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Slot {
+    pub signal: String,
+    pub n_values: usize,
+}
+
+/// What a device of a secure round needs to know (sent with its task).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SecureTask {
+    pub members: Vec<u64>,
+    pub threshold: u32,
+    pub frac_bits: u32,
+    pub slots: Vec<Slot>,
+}
+
+impl SecureTask {
+    /// The input vector's length.
+    pub fn vector_len(&self) -> usize {
+        vector_len(&self.slots)
+    }
+
+    /// The round's parameters as both sides build them.
+    ///
+    /// # Errors
+    /// As [`RoundParams::with_threshold`].
+    pub fn params(&self) -> Result<RoundParams, SecAggError> {
+        RoundParams::with_threshold(&self.members, self.vector_len(), self.threshold as usize)
+    }
+
+    /// The round's fixed-point codec.
+    ///
+    /// # Errors
+    /// As [`FixedPoint::new`].
+    pub fn codec(&self) -> Result<FixedPoint, SecAggError> {
+        FixedPoint::new(self.frac_bits, self.members.len() as u64)
+    }
+
+    /// A device's plain input, before encoding: per slot `[n·θ…, n, n·ℓ, 1]` for the
+    /// signals in `updates` (signal, values, days, per-day loss), zeros elsewhere.
+    ///
+    /// # Errors
+    /// An update for a signal without a slot, or with the wrong number of values.
+    pub fn plain_input(&self, updates: &[(&str, &[f64], u32, f64)]) -> Result<Vec<f64>, String> {
+        let mut out = Vec::with_capacity(self.vector_len());
+        for slot in &self.slots {
+            match updates.iter().find(|u| u.0 == slot.signal) {
+                Some(&(_, values, n_days, loss)) => {
+                    if values.len() != slot.n_values {
+                        return Err(format!(
+                            "{}: {} values, the round's slot has {}",
+                            slot.signal,
+                            values.len(),
+                            slot.n_values
+                        ));
+                    }
+                    let n = f64::from(n_days);
+                    out.extend(values.iter().map(|v| n * v));
+                    out.extend([n, n * loss, 1.0]);
+                }
+                None => out.extend(std::iter::repeat_n(0.0, slot.n_values + EXTRA_PER_SLOT)),
+            }
+        }
+        if let Some(u) = updates
+            .iter()
+            .find(|u| !self.slots.iter().any(|s| s.signal == u.0))
+        {
+            return Err(format!("{}: not a signal of the round", u.0));
+        }
+        Ok(out)
+    }
+}
+
+fn vector_len(slots: &[Slot]) -> usize {
+    slots.iter().map(|s| s.n_values + EXTRA_PER_SLOT).sum()
+}
+
+/// A device's message in one phase.
+#[derive(Debug, Clone)]
+pub enum DeviceMessage {
+    Keys(AdvertiseKeys),
+    ShareKeys(ShareKeys),
+    Masked(MaskedInput),
+    Unmasking(UnmaskingResponse),
+}
+
+impl DeviceMessage {
+    fn phase(&self) -> Phase {
+        match self {
+            Self::Keys(_) => Phase::Keys,
+            Self::ShareKeys(_) => Phase::Sharing,
+            Self::Masked(_) => Phase::Masking,
+            Self::Unmasking(_) => Phase::Unmasking,
+        }
+    }
+}
+
+/// What a device should do next.
+#[derive(Debug, Clone, PartialEq)]
+pub enum SecureNext {
+    /// Send `ShareKeys` for these keys.
+    Broadcast(KeysBroadcast),
+    /// Send the masked input.
+    Relay(SharesRelay),
+    /// Send the unmasking shares.
+    Request(UnmaskingRequest),
+    /// The phase is open: ask again.
+    Wait(String),
+    /// The device's part is over.
+    Finished { included: bool, reason: String },
+}
+
+/// The round's phase, as the coordinator tracks it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+enum Phase {
+    Keys,
+    Sharing,
+    Masking,
+    Unmasking,
+}
+
+impl Phase {
+    fn name(self) -> &'static str {
+        match self {
+            Phase::Keys => "AdvertiseKeys",
+            Phase::Sharing => "ShareKeys",
+            Phase::Masking => "MaskedInput",
+            Phase::Unmasking => "Unmasking",
+        }
+    }
+}
+
+/// How a phase change ended.
+#[derive(Debug)]
+pub enum Advance {
+    /// Nothing to do yet.
+    None,
+    /// The next phase opened.
+    Next,
+    /// The round's sum, decoded: the next prior's parameters and contributions.
+    Done {
+        params: Vec<SignalParams>,
+        contributions: Vec<Contribution>,
+        included: BTreeSet<u64>,
+    },
+    /// The round failed; run it again.
+    Failed(String),
+}
+
+/// One secure round in memory.
+#[derive(Debug)]
+pub struct SecureRound {
+    task: SecureTask,
+    server: secagg::Server,
+    codec: FixedPoint,
+    phase: Phase,
+    phase_deadline_ms: i64,
+    phase_length_ms: i64,
+    /// Devices expected to answer in the current phase.
+    expected: BTreeSet<u64>,
+    /// Devices that answered in the current phase.
+    answered: BTreeSet<u64>,
+    broadcast: Option<KeysBroadcast>,
+    relays: BTreeMap<u64, SharesRelay>,
+    request: Option<UnmaskingRequest>,
+}
+
+impl SecureRound {
+    /// Opens a round for `members` (at least 2) with the study's slots.
+    ///
+    /// # Errors
+    /// Fewer than 2 members or an invalid codec.
+    pub fn open(
+        members: &[u64],
+        slots: Vec<Slot>,
+        frac_bits: u32,
+        round_deadline_ms: i64,
+        phase_length_ms: u64,
+    ) -> Result<Self, SecAggError> {
+        let mut sorted = members.to_vec();
+        sorted.sort_unstable();
+        let task = SecureTask {
+            threshold: secagg::default_threshold(sorted.len().max(2)) as u32,
+            members: sorted,
+            frac_bits,
+            slots,
+        };
+        let params = task.params()?;
+        let codec = task.codec()?;
+        Ok(Self {
+            expected: task.members.iter().copied().collect(),
+            server: secagg::Server::new(params),
+            codec,
+            task,
+            phase: Phase::Keys,
+            phase_deadline_ms: round_deadline_ms,
+            phase_length_ms: phase_length_ms as i64,
+            answered: BTreeSet::new(),
+            broadcast: None,
+            relays: BTreeMap::new(),
+            request: None,
+        })
+    }
+
+    pub fn task(&self) -> &SecureTask {
+        &self.task
+    }
+
+    /// Whether `device` may still start the round (get the task and advertise keys).
+    pub fn accepts_keys_from(&self, device: u64) -> bool {
+        self.phase == Phase::Keys && !self.answered.contains(&device)
+    }
+
+    /// The current phase's deadline.
+    pub fn deadline_ms(&self) -> i64 {
+        self.phase_deadline_ms
+    }
+
+    /// Takes `device`'s message. `Ok(Some(finished))` when the message came too late for
+    /// its phase (the device's part is over); `Ok(None)` when it was taken or was a resend.
+    ///
+    /// # Errors
+    /// A message for a later phase than the current one, or one the protocol refuses
+    /// (malformed, unexpected device); the phase's state is unchanged.
+    pub fn receive(
+        &mut self,
+        device: u64,
+        message: DeviceMessage,
+    ) -> Result<Option<SecureNext>, SecAggError> {
+        let phase = message.phase();
+        // A resend of an answered phase's message (its answer was lost) changes nothing.
+        if phase < self.phase && self.expected.contains(&device) {
+            return Ok(None);
+        }
+        if phase < self.phase {
+            return Ok(Some(SecureNext::Finished {
+                included: false,
+                reason: format!(
+                    "phase {} closed before this message arrived; this device's input is not in the round's sum",
+                    phase.name()
+                ),
+            }));
+        }
+        if phase > self.phase {
+            return Err(SecAggError::WrongPhase {
+                phase: phase_of(self.phase),
+                what: "a message for a later phase",
+            });
+        }
+        if self.answered.contains(&device) {
+            return Ok(None);
+        }
+        if !self.expected.contains(&device) {
+            return Ok(Some(SecureNext::Finished {
+                included: false,
+                reason: format!(
+                    "not part of phase {} (an earlier message was missing)",
+                    phase.name()
+                ),
+            }));
+        }
+        match message {
+            DeviceMessage::Keys(m) => self.server.receive_keys(m)?,
+            DeviceMessage::ShareKeys(m) => self.server.receive_shares(m)?,
+            DeviceMessage::Masked(m) => self.server.receive_masked(m)?,
+            DeviceMessage::Unmasking(m) => self.server.receive_unmasking(m)?,
+        }
+        self.answered.insert(device);
+        Ok(None)
+    }
+
+    /// What `device` should do now.
+    pub fn next_for(&self, device: u64) -> SecureNext {
+        if !self.expected.contains(&device) {
+            return SecureNext::Finished {
+                included: false,
+                reason: format!(
+                    "not part of phase {} (an earlier message was missing or late)",
+                    self.phase.name()
+                ),
+            };
+        }
+        if self.answered.contains(&device) {
+            return SecureNext::Wait(format!(
+                "waiting for phase {} to close ({} of {} answered)",
+                self.phase.name(),
+                self.answered.len(),
+                self.expected.len()
+            ));
+        }
+        match self.phase {
+            Phase::Keys => SecureNext::Wait("send this device's keys first".into()),
+            Phase::Sharing => SecureNext::Broadcast(
+                self.broadcast
+                    .clone()
+                    .expect("the broadcast exists once sharing is open"),
+            ),
+            Phase::Masking => SecureNext::Relay(
+                self.relays
+                    .get(&device)
+                    .cloned()
+                    .expect("every member of U2 has a relay"),
+            ),
+            Phase::Unmasking => SecureNext::Request(
+                self.request
+                    .clone()
+                    .expect("the request exists once unmasking is open"),
+            ),
+        }
+    }
+
+    /// Closes the current phase when every expected device answered, or, with
+    /// `deadline_passed`, with whoever did; after the last phase, decodes the sum.
+    /// `min_quorum` is the study's quorum for the masked inputs.
+    pub fn advance(&mut self, now_ms: i64, deadline_passed: bool, min_quorum: usize) -> Advance {
+        let complete = self.answered.len() == self.expected.len();
+        if !complete && !deadline_passed {
+            return Advance::None;
+        }
+        let result = match self.phase {
+            Phase::Keys => self.server.close_advertise().map(|b| {
+                self.expected = b.keys.iter().map(|k| k.device).collect();
+                self.broadcast = Some(b);
+                Phase::Sharing
+            }),
+            Phase::Sharing => self.server.close_sharing().map(|relays| {
+                self.expected = relays.keys().copied().collect();
+                self.relays = relays;
+                Phase::Masking
+            }),
+            Phase::Masking => {
+                if self.answered.len() < min_quorum {
+                    return Advance::Failed(format!(
+                        "{} masked inputs arrived, below the study's quorum of {min_quorum}",
+                        self.answered.len()
+                    ));
+                }
+                self.server.close_masking().map(|r| {
+                    self.expected = r.u3.iter().copied().collect();
+                    self.request = Some(r);
+                    Phase::Unmasking
+                })
+            }
+            Phase::Unmasking => return self.finish(),
+        };
+        match result {
+            Ok(next) => {
+                self.phase = next;
+                self.answered.clear();
+                self.phase_deadline_ms = now_ms + self.phase_length_ms;
+                Advance::Next
+            }
+            Err(e) => Advance::Failed(e.to_string()),
+        }
+    }
+
+    /// Reconstructs and decodes the round's sum.
+    fn finish(&mut self) -> Advance {
+        let (sum, u3) = match self.server.finish(&mut rand::rng()) {
+            Ok(out) => out,
+            Err(e) => return Advance::Failed(e.to_string()),
+        };
+        let decoded = match self.codec.decode_sum(&sum, u3.len() as u64) {
+            Ok(d) => d,
+            Err(e) => return Advance::Failed(e.to_string()),
+        };
+        let (params, contributions) = decode_slots(&self.task.slots, &decoded);
+        Advance::Done {
+            params,
+            contributions,
+            included: u3.into_iter().collect(),
+        }
+    }
+}
+
+/// The secagg phase a coordinator phase corresponds to, for error messages.
+fn phase_of(phase: Phase) -> secagg::Phase {
+    match phase {
+        Phase::Keys => secagg::Phase::AdvertiseKeys,
+        Phase::Sharing => secagg::Phase::ShareKeys,
+        Phase::Masking => secagg::Phase::MaskedInput,
+        Phase::Unmasking => secagg::Phase::Unmasking,
+    }
+}
+
+/// Splits a decoded sum into per-signal FedAvg parameters and contributions; a signal no
+/// device trained (`Σ n = 0`) gets no entry (the caller keeps its current parameters).
+pub fn decode_slots(slots: &[Slot], sum: &[f64]) -> (Vec<SignalParams>, Vec<Contribution>) {
+    let mut params = Vec::new();
+    let mut contributions = Vec::new();
+    let mut at = 0;
+    for slot in slots {
+        let block = &sum[at..at + slot.n_values + EXTRA_PER_SLOT];
+        at += block.len();
+        let (weighted, extra) = block.split_at(slot.n_values);
+        let (n_days, weighted_loss, count) = (extra[0], extra[1], extra[2]);
+        // Day counts are whole numbers ≥ 1 per device: a sum below 0.5 means no device.
+        if n_days < 0.5 {
+            continue;
+        }
+        params.push(SignalParams {
+            signal: slot.signal.clone(),
+            values: weighted.iter().map(|w| w / n_days).collect(),
+        });
+        contributions.push(Contribution {
+            signal: slot.signal.clone(),
+            n_devices: count.round() as u32,
+            n_days: n_days.round() as u64,
+            mean_local_loss: weighted_loss / n_days,
+        });
+    }
+    (params, contributions)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn slots() -> Vec<Slot> {
+        vec![
+            Slot {
+                signal: "a".into(),
+                n_values: 2,
+            },
+            Slot {
+                signal: "b".into(),
+                n_values: 1,
+            },
+        ]
+    }
+
+    /// Two devices: FedAvg of a is (10·[1, 2] + 30·[3, −2]) / 40 = [2.5, −1] by hand; b is
+    /// trained by the second device only; the mean loss is (10·0.5 + 30·1.5) / 40 = 1.25.
+    #[test]
+    fn the_decoded_sum_is_fedavg_by_hand() {
+        let task = SecureTask {
+            members: vec![1, 2],
+            threshold: 2,
+            frac_bits: 24,
+            slots: slots(),
+        };
+        let x1 = task.plain_input(&[("a", &[1.0, 2.0], 10, 0.5)]).unwrap();
+        let x2 = task
+            .plain_input(&[("a", &[3.0, -2.0], 30, 1.5), ("b", &[0.25], 7, 2.0)])
+            .unwrap();
+        let sum: Vec<f64> = x1.iter().zip(&x2).map(|(a, b)| a + b).collect();
+        let (params, contributions) = decode_slots(&task.slots, &sum);
+        assert_eq!(params[0].values, vec![2.5, -1.0]);
+        assert_eq!(params[1].values, vec![0.25]);
+        assert_eq!(contributions[0].n_devices, 2);
+        assert_eq!(contributions[0].n_days, 40);
+        assert!((contributions[0].mean_local_loss - 1.25).abs() < 1e-12);
+        assert_eq!(contributions[1].n_devices, 1);
+        // No device trained a signal: no entry.
+        let x = task.plain_input(&[("b", &[0.25], 7, 2.0)]).unwrap();
+        assert_eq!(decode_slots(&task.slots, &x).0.len(), 1);
+        assert!(task.plain_input(&[("c", &[0.0], 1, 0.0)]).is_err());
+        assert!(task.plain_input(&[("a", &[0.0], 1, 0.0)]).is_err());
+    }
+}
