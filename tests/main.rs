@@ -21,6 +21,7 @@ mod review_access;
 mod review_browser;
 mod review_login_limits;
 mod review_support;
+mod secure_aggregation;
 mod server_rpc;
 mod simulator;
 mod ss_likelihood;

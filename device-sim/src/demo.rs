@@ -375,6 +375,28 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
     if let Some(line) = &privacy {
         writeln!(out, "{line}")?;
     }
+    if opts.secure_aggregation {
+        // Devices behind each round's sum (the most over the round's signals).
+        let per_round: Vec<u32> = run
+            .history
+            .iter()
+            .skip(1)
+            .map(|p| {
+                p.contributions
+                    .iter()
+                    .map(|c| c.n_devices)
+                    .max()
+                    .unwrap_or(0)
+            })
+            .collect();
+        writeln!(
+            out,
+            "Privacy: secure aggregation in {} rounds; the aggregator saw only each round's sum, over {}–{} devices, and stored no individual update.",
+            per_round.len(),
+            per_round.iter().min().unwrap_or(&0),
+            per_round.iter().max().unwrap_or(&0)
+        )?;
+    }
     writeln!(
         out,
         "Learned shared prior (version {}), in plain units:",

@@ -25,12 +25,16 @@ const STEP_WAIT_MS: u32 = 5_000;
 ///
 /// # Errors
 /// An update for a signal the round has no slot for.
-pub fn plain_input(task: &SecureTask, updates: &[(Signal, LocalUpdate)]) -> anyhow::Result<Vec<f64>> {
+pub fn plain_input(
+    task: &SecureTask,
+    updates: &[(Signal, LocalUpdate)],
+) -> anyhow::Result<Vec<f64>> {
     let rows: Vec<(&str, &[f64], u32, f64)> = updates
         .iter()
         .map(|(s, u)| (s.column(), &u.values[..], u.n_days, u.loss_at_received))
         .collect();
-    task.plain_input(&rows).map_err(|e| anyhow!("secure round input: {e}"))
+    task.plain_input(&rows)
+        .map_err(|e| anyhow!("secure round input: {e}"))
 }
 
 /// Runs round `round_id`'s protocol for `updates`: advertises fresh keys, then answers each

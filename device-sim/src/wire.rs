@@ -85,12 +85,14 @@ pub fn task_from_pb(task: pb::Task) -> Result<TrainingTask, WireError> {
         .map(|(i, p)| params_from_pb(&format!("task.shared[{i}]"), p))
         .collect::<Result<Vec<_>, _>>()?;
     let secure = match task.secure {
-        Some(s) => Some(plimsoll_server::wire::secure_task_from_pb(s).map_err(|e| match e {
-            plimsoll_server::error::AggregatorError::InvalidArgument { field, reason } => {
-                invalid(field, reason)
-            }
-            other => invalid("task.secure", other.to_string()),
-        })?),
+        Some(s) => Some(
+            plimsoll_server::wire::secure_task_from_pb(s).map_err(|e| match e {
+                plimsoll_server::error::AggregatorError::InvalidArgument { field, reason } => {
+                    invalid(field, reason)
+                }
+                other => invalid("task.secure", other.to_string()),
+            })?,
+        ),
         None => None,
     };
     Ok(TrainingTask {

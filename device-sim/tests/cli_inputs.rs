@@ -321,6 +321,54 @@ fn demo_runs_outside_the_repository_checks_settings_first_and_clears_old_devices
     }
 }
 
+/// The demo with secure aggregation runs end to end over gRPC (every round through the four
+/// phases of `SecureStep`) and says what the aggregator saw; it cannot be combined with
+/// differential privacy yet.
+#[test]
+fn demo_with_secure_aggregation_states_what_the_aggregator_saw() {
+    let root = tempfile::tempdir().unwrap();
+    let o = run(
+        &[
+            "demo",
+            "--out",
+            "demo",
+            "--participants",
+            "4",
+            "--rounds",
+            "3",
+            "--secure-aggregation",
+            "--review-port",
+            "0",
+        ],
+        root.path(),
+    );
+    let stdout = text(&o.stdout);
+    assert!(o.status.success(), "{stdout}\n{}", text(&o.stderr));
+    let line = stdout
+        .lines()
+        .find(|l| l.starts_with("Privacy: secure aggregation in 3 rounds"))
+        .unwrap_or_else(|| panic!("{stdout}"));
+    assert!(line.contains("over 4–4 devices"), "{line}");
+
+    let o = run(
+        &[
+            "demo",
+            "--out",
+            "demo2",
+            "--secure-aggregation",
+            "--dp-epsilon",
+            "3",
+        ],
+        root.path(),
+    );
+    assert!(!o.status.success());
+    assert!(
+        text(&o.stderr).contains("cannot be used with"),
+        "{}",
+        text(&o.stderr)
+    );
+}
+
 /// The demo with a differentially private prior runs end to end over gRPC and states the
 /// privacy spent; an ε no noise can reach is refused before simulating.
 #[test]

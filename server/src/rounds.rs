@@ -21,8 +21,8 @@ use crate::aggregate::UpdateInput;
 use crate::detection::{DetectionStage, DetectionStats, StageView, StatsOutcome};
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
-use crate::secure_round::{Advance, DeviceMessage, SecureNext, SecureRound, Slot};
 use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
+use crate::secure_round::{Advance, DeviceMessage, SecureNext, SecureRound, Slot};
 use crate::store::StoredEpisode;
 use crate::store::{CompletedStage, NewDevice, Store, StoredOpenRound};
 use crate::study::{
@@ -1490,7 +1490,13 @@ fn maybe_open_round(
                 })
                 .collect();
             let deadline = now_ms + rt.config.round_deadline_ms as i64;
-            match SecureRound::open(&members, slots, sa.frac_bits, deadline, sa.phase_deadline_ms) {
+            match SecureRound::open(
+                &members,
+                slots,
+                sa.frac_bits,
+                deadline,
+                sa.phase_deadline_ms,
+            ) {
                 Ok(round) => Some(round),
                 Err(e) => {
                     tracing::warn!(study = %rt.config.study_id, round_id, error = %e, "no secure round can open");

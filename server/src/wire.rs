@@ -474,9 +474,9 @@ pub fn secure_task_from_pb(t: pb::SecureRound) -> Result<SecureTask> {
 
 /// Exactly 32 bytes, or a refusal naming `field`.
 fn key32(field: &str, bytes: &[u8]) -> Result<[u8; 32]> {
-    bytes.try_into().map_err(|_| {
-        AggregatorError::invalid(field, format!("{} bytes, expected 32", bytes.len()))
-    })
+    bytes
+        .try_into()
+        .map_err(|_| AggregatorError::invalid(field, format!("{} bytes, expected 32", bytes.len())))
 }
 
 fn ciphertext_to_pb(c: &EncryptedShare) -> pb::SecAggCiphertext {
@@ -624,8 +624,14 @@ pub fn secure_next_from_pb(r: pb::SecureStepResponse) -> Result<SecureNext> {
                 .map(|(i, k)| {
                     Ok(AdvertiseKeys {
                         device: k.device,
-                        c_public: key32(&format!("keys_broadcast.keys[{i}].c_public"), &k.c_public)?,
-                        s_public: key32(&format!("keys_broadcast.keys[{i}].s_public"), &k.s_public)?,
+                        c_public: key32(
+                            &format!("keys_broadcast.keys[{i}].c_public"),
+                            &k.c_public,
+                        )?,
+                        s_public: key32(
+                            &format!("keys_broadcast.keys[{i}].s_public"),
+                            &k.s_public,
+                        )?,
                     })
                 })
                 .collect::<Result<_>>()?,
