@@ -76,6 +76,7 @@ async fn step(
             round_id: d.round_id,
             wait_ms: 5_000,
             message: message.map(device_message_to_pb),
+            stage: 0,
         },
     );
     let answer = server.client().secure_step(r).await?.into_inner();
@@ -112,6 +113,7 @@ async fn run(server: &TestServer, d: &TestDevice, stop: Stop, lie: bool) -> Opti
             }
             SecureNext::Wait(_) => None,
             done @ SecureNext::Finished { .. } => return Some(done),
+            SecureNext::Start(task) => panic!("a training round offered a session: {task:?}"),
         };
     }
 }
@@ -223,6 +225,7 @@ async fn a_secure_round_survives_drops_at_each_phase_and_publishes_fedavg_of_the
                     c_public: vec![0; 31],
                     s_public: vec![0; 32],
                 })),
+                stage: 0,
             },
         ))
         .await
@@ -413,6 +416,7 @@ async fn a_restart_runs_the_secure_round_again_and_robust_rules_are_refused() {
                 round_id: 1,
                 wait_ms: 0,
                 message: None,
+                stage: 0,
             },
         ))
         .await
@@ -444,4 +448,178 @@ async fn a_restart_runs_the_secure_round_again_and_robust_rules_are_refused() {
         delta: 1e-3,
     });
     assert!(dp.validate().unwrap_err().contains("choose one"));
+}
+
+/// The calibration stages under secure aggregation: four devices in two groups send known
+/// statistics through each stage's secure sum. The published sums equal the element-wise
+/// sums of the same statistics (`DetectionStats::add`; integer counts exactly, residual
+/// cross-products to the fixed-point error), each device's histogram sum is its group's
+/// when the study calibrates per group, no device's statistics are stored, and a plain
+/// `SubmitDetectionStats` is refused.
+#[tokio::test(flavor = "multi_thread", worker_threads = 4)]
+async fn calibration_stages_are_summed_securely_per_group() {
+    use plimsoll_device::client::{EnrollmentRequest, enroll, new_device_secret};
+    use plimsoll_server::detection::{DetectionStage, DetectionStats, HISTOGRAM_EDGES};
+
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("agg.db");
+    let mut config = secure_study(4, 1, 2_000);
+    config.subgroups = Some(plimsoll_server::study::Subgroups {
+        column: "site".into(),
+        levels: vec!["north".into(), "south".into()],
+        calibrate_per_group: true,
+        min_devices_per_group: 2,
+    });
+    let server = TestServer::start(&db, vec![config]).await;
+    let mut credentials = Vec::new();
+    for k in 0..4 {
+        credentials.push(
+            enroll(
+                &mut server.client(),
+                EnrollmentRequest {
+                    study_id: STUDY,
+                    enrollment_code: server.code(STUDY),
+                    participant: &format!("p{k}"),
+                    signals: vec!["resting_hr_bpm".into()],
+                    sharing: FlagSharing::Withheld,
+                    device_secret: &new_device_secret(),
+                    sensor_model: "",
+                    group_label: if k % 2 == 0 { "north" } else { "south" },
+                },
+            )
+            .await
+            .unwrap(),
+        );
+    }
+    // The one training round, securely.
+    let initial = server.coordinator.prior(STUDY, None).unwrap().params[0]
+        .values
+        .clone();
+    let server = std::sync::Arc::new(server);
+    let mut tasks = tokio::task::JoinSet::new();
+    for (k, credential) in credentials.iter().enumerate() {
+        let (server, credential) = (server.clone(), credential.clone());
+        let u = update(&initial, k);
+        tasks.spawn(async move {
+            let (round_id, task) = fetch(&server, &credential).await;
+            let plain = task
+                .plain_input(&[("resting_hr_bpm", &u.0, u.1, u.2)])
+                .unwrap();
+            let d = TestDevice {
+                credential,
+                task,
+                round_id,
+                plain,
+            };
+            run(&server, &d, Stop::Never, false).await
+        });
+    }
+    while let Some(j) = tasks.join_next().await {
+        assert!(matches!(
+            j.unwrap(),
+            Some(SecureNext::Finished { included: true, .. })
+        ));
+    }
+
+    // Moments of a made-up residual series (valid by construction): day d, signal i has
+    // residual sin(d + i + k); every pair is observed on all 30 + k days.
+    let moments = |k: usize| {
+        let days = 30 + k;
+        let r = |d: usize, i: usize| ((d + i + k) as f64).sin();
+        DetectionStats::ResidualMoments {
+            cross_products: (0..36)
+                .map(|ij| (0..days).map(|d| r(d, ij / 6) * r(d, ij % 6)).sum())
+                .collect(),
+            pair_days: vec![days as u64; 36],
+        }
+    };
+    let histogram = |k: usize| DetectionStats::EpisodeHistogram {
+        episodes: (0..HISTOGRAM_EDGES as u64)
+            .map(|i| (40u64 + k as u64).saturating_sub(i / 4))
+            .collect(),
+        scored_days: 90 + 10 * k as u64,
+    };
+
+    // A plain submission is refused.
+    let refused = server
+        .coordinator
+        .submit_detection_stats(STUDY, credentials[0].device_id, &moments(0), now())
+        .unwrap_err();
+    assert!(refused.to_string().contains("SecureStep"), "{refused}");
+
+    for stage in DetectionStage::ALL {
+        let stats = |k| match stage {
+            DetectionStage::ResidualMoments => moments(k),
+            DetectionStage::EpisodeHistogram => histogram(k),
+        };
+        let mut tasks = tokio::task::JoinSet::new();
+        for (k, credential) in credentials.iter().enumerate() {
+            let (server, credential, s) = (server.clone(), credential.clone(), stats(k));
+            tasks.spawn(async move {
+                let client = server.client();
+                plimsoll_device::secure::secure_stage_submit(
+                    &client,
+                    &credential,
+                    STUDY,
+                    &s,
+                    &plimsoll_device::retry::Backoff::default(),
+                    k as u64,
+                )
+                .await
+                .unwrap()
+            });
+        }
+        while let Some(j) = tasks.join_next().await {
+            assert!(j.unwrap(), "every device's statistics are in the sum");
+        }
+        let mut total = DetectionStats::zero(stage);
+        for k in 0..4 {
+            total.add(&stats(k));
+        }
+        let view = server
+            .coordinator
+            .detection_stage(STUDY, credentials[1].device_id, stage)
+            .unwrap();
+        assert!(view.complete);
+        assert_eq!(view.devices_submitted, 4);
+        let sum = view.sum.unwrap();
+        match (stage, &sum, &total) {
+            (
+                DetectionStage::ResidualMoments,
+                DetectionStats::ResidualMoments {
+                    cross_products: a,
+                    pair_days: n,
+                },
+                DetectionStats::ResidualMoments {
+                    cross_products: b,
+                    pair_days: m,
+                },
+            ) => {
+                assert_eq!(n, m, "pair counts exactly");
+                for (x, y) in a.iter().zip(b) {
+                    assert!((x - y).abs() < 1e-6, "{x} vs {y}");
+                }
+            }
+            (DetectionStage::EpisodeHistogram, _, _) => {
+                // Device 1 is in "south" with device 3: its sum is theirs.
+                let mut south = histogram(1);
+                south.add(&histogram(3));
+                assert_eq!(sum, south);
+                assert_eq!(view.group, Some(("south".into(), 2)));
+            }
+            other => panic!("{other:?}"),
+        }
+        let store = plimsoll_server::store::Store::open(&db).unwrap();
+        assert!(
+            store
+                .detection_submissions(STUDY, stage)
+                .unwrap()
+                .is_empty(),
+            "no device's statistics are stored"
+        );
+    }
+}
+
+fn now() -> i64 {
+    plimsoll_server::service::now_ms()
 }

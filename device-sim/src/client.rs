@@ -300,10 +300,11 @@ pub async fn calibrate_detection(
         })
         .await??
     };
-    submit_stats(
+    contribute(
         &mut client,
         credential,
         study_id,
+        study.secure_aggregation,
         Stats::ResidualMoments(wire::moments_to_pb(&moments)),
         seed,
     )
@@ -335,10 +336,11 @@ pub async fn calibrate_detection(
         })
         .await??
     };
-    submit_stats(
+    contribute(
         &mut client,
         credential,
         study_id,
+        study.secure_aggregation,
         Stats::EpisodeHistogram(wire::histogram_to_pb(&histogram)),
         seed ^ 1,
     )
@@ -372,6 +374,33 @@ pub async fn calibrate_detection(
     );
     calibration.histogram_group = histogram_group;
     Ok(calibration)
+}
+
+/// Sends one stage's statistics: through the stage's secure sum in a study with secure
+/// aggregation, with `SubmitDetectionStats` otherwise.
+async fn contribute(
+    client: &mut AggregatorClient<Channel>,
+    credential: &DeviceCredential,
+    study_id: &str,
+    secure: bool,
+    stats: pb::submit_detection_stats_request::Stats,
+    seed: u64,
+) -> anyhow::Result<()> {
+    if !secure {
+        submit_stats(client, credential, study_id, stats, seed).await?;
+        return Ok(());
+    }
+    let stats = plimsoll_server::wire::detection_stats_from_pb(Some(stats))?;
+    crate::secure::secure_stage_submit(
+        client,
+        credential,
+        study_id,
+        &stats,
+        &Backoff::default(),
+        seed,
+    )
+    .await?;
+    Ok(())
 }
 
 /// Sends one stage's statistics, retried on transient failures.

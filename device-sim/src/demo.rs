@@ -391,7 +391,7 @@ pub async fn run_demo(opts: &DemoOptions) -> anyhow::Result<()> {
             .collect();
         writeln!(
             out,
-            "Privacy: secure aggregation in {} rounds; the aggregator saw only each round's sum, over {}–{} devices, and stored no individual update.",
+            "Privacy: secure aggregation in {} rounds and both calibration stages; the aggregator saw only sums (each round's over {}–{} devices) and stored no device's update or statistics.",
             per_round.len(),
             per_round.iter().min().unwrap_or(&0),
             per_round.iter().max().unwrap_or(&0)

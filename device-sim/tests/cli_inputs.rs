@@ -346,9 +346,15 @@ fn demo_with_secure_aggregation_states_what_the_aggregator_saw() {
     assert!(o.status.success(), "{stdout}\n{}", text(&o.stderr));
     let line = stdout
         .lines()
-        .find(|l| l.starts_with("Privacy: secure aggregation in 3 rounds"))
+        .find(|l| {
+            l.starts_with("Privacy: secure aggregation in 3 rounds and both calibration stages")
+        })
         .unwrap_or_else(|| panic!("{stdout}"));
     assert!(line.contains("over 4–4 devices"), "{line}");
+    assert!(
+        stdout.contains("Detector calibrated over gRPC from 4 devices' sums"),
+        "{stdout}"
+    );
 
     let o = run(
         &[

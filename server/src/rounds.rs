@@ -22,7 +22,9 @@ use crate::detection::{DetectionStage, DetectionStats, StageView, StatsOutcome};
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
-use crate::secure_round::{Advance, DeviceMessage, SecureNext, SecureRound, Slot};
+use crate::secure_round::{
+    Advance, DeviceMessage, SecureNext, SecureRound, SecureTask, Slot, decode_slots, decode_stage,
+};
 use crate::store::StoredEpisode;
 use crate::store::{CompletedStage, NewDevice, Store, StoredOpenRound};
 use crate::study::{
@@ -78,6 +80,13 @@ struct StudyRuntime {
     /// The last secure round to end: its id, the devices whose input is in its sum and
     /// what happened.
     last_secure: Option<(u64, BTreeSet<u64>, String)>,
+    /// Secure aggregation of the calibration stages: per stage (by
+    /// [`DetectionStage::index`]) the open session, the sessions opened so far and the
+    /// last session to end (as `last_secure`). Memory only: after a restart a stage's
+    /// sum starts again with a new session.
+    stage_sessions: [Option<SecureRound>; 2],
+    stage_session_count: [u64; 2],
+    last_stage_session: [Option<(u64, BTreeSet<u64>, String)>; 2],
 }
 
 impl StudyRuntime {
@@ -261,6 +270,9 @@ impl Coordinator {
                 open,
                 detection_complete,
                 last_secure: None,
+                stage_sessions: [None, None],
+                stage_session_count: [0; 2],
+                last_stage_session: [None, None],
             };
             // A crash between the last accepted submission and the closing
             // transaction leaves a complete round open: finish it now.
@@ -350,6 +362,9 @@ impl Coordinator {
                 labels: HashMap::new(),
                 latest: initial,
                 last_secure: None,
+                stage_sessions: [None, None],
+                stage_session_count: [0; 2],
+                last_stage_session: [None, None],
                 rounds_completed: 0,
                 last_round_id: 0,
                 open: None,
@@ -787,6 +802,13 @@ impl Coordinator {
         let mut changed = false;
         for rt in studies.values_mut() {
             for stage in DetectionStage::ALL {
+                let due = rt.stage_sessions[stage.index()]
+                    .as_ref()
+                    .is_some_and(|s| now_ms > s.deadline_ms());
+                if due {
+                    advance_stage_session(store, rt, stage, now_ms, true)?;
+                    changed = true;
+                }
                 if rt.detection_complete[stage.index()] {
                     continue;
                 }
@@ -853,10 +875,14 @@ impl Coordinator {
         study_id: &str,
         device_id: u64,
         credential: &DeviceCredential,
-        round_id: u64,
+        sum: SecureSum,
         message: Option<DeviceMessage>,
         now_ms: i64,
     ) -> Result<SecureNext> {
+        let (round_id, stage) = match sum {
+            SecureSum::Round(id) => (id, None),
+            SecureSum::Stage(stage, session) => (session, Some(stage)),
+        };
         let mut state = self.lock();
         state.authenticate(study_id, Some(device_id), credential)?;
         let State { store, studies } = &mut *state;
@@ -865,6 +891,15 @@ impl Coordinator {
             return Err(AggregatorError::FailedPrecondition(format!(
                 "study `{study_id}` does not use secure aggregation; send updates with SubmitUpdate"
             )));
+        }
+        if let Some(stage) = stage {
+            let (answer, changed) =
+                secure_stage_step(store, rt, device_id, round_id, stage, message, now_ms)?;
+            drop(state);
+            if changed {
+                self.notify();
+            }
+            return Ok(answer);
         }
         if round_id > rt.last_round_id {
             return Err(AggregatorError::FailedPrecondition(format!(
@@ -1041,20 +1076,13 @@ impl Coordinator {
                 stage.as_str()
             )));
         }
-        if stage_deadline_ms(store, rt, stage)?.is_none() {
+        if rt.config.secure_aggregation.is_some() {
             return Err(AggregatorError::FailedPrecondition(format!(
-                "stage: {} of study `{study_id}` is not open yet ({})",
-                stage.as_str(),
-                match stage {
-                    DetectionStage::ResidualMoments => format!(
-                        "it opens when training ends; {} of {} rounds completed",
-                        rt.rounds_completed, rt.config.rounds
-                    ),
-                    DetectionStage::EpisodeHistogram =>
-                        "it opens when the residual_moments stage is complete".to_owned(),
-                }
+                "study `{study_id}` uses secure aggregation: send the {} statistics with SecureStep",
+                stage.as_str()
             )));
         }
+        stage_open(store, rt, stage)?;
         let mut submitters = store.detection_submitters(study_id, stage)?;
         submitters.insert(device_id);
         let completed = due_completion(store, rt, stage, &submitters, now_ms)?
@@ -1490,13 +1518,17 @@ fn maybe_open_round(
                 })
                 .collect();
             let deadline = now_ms + rt.config.round_deadline_ms as i64;
-            match SecureRound::open(
-                &members,
+            let task = SecureTask {
+                members: members.clone(),
+                threshold: 0,
+                frac_bits: sa.frac_bits,
                 slots,
-                sa.frac_bits,
-                deadline,
-                sa.phase_deadline_ms,
-            ) {
+                stage: None,
+                session: round_id,
+                group_levels: Vec::new(),
+                group_slot: None,
+            };
+            match SecureRound::open(task, deadline, sa.phase_deadline_ms) {
                 Ok(round) => Some(round),
                 Err(e) => {
                     tracing::warn!(study = %rt.config.study_id, round_id, error = %e, "no secure round can open");
@@ -1529,6 +1561,202 @@ fn maybe_open_round(
         secure,
     });
     Ok(true)
+}
+
+/// Which secure sum a `SecureStep` call is about.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SecureSum {
+    /// Training round `id`.
+    Round(u64),
+    /// A calibration stage's session (0: join the current one).
+    Stage(DetectionStage, u64),
+}
+
+/// `Ok` when calibration `stage` accepts contributions now; FAILED_PRECONDITION naming
+/// `stage` and what it waits for otherwise.
+fn stage_open(store: &Store, rt: &StudyRuntime, stage: DetectionStage) -> Result<()> {
+    if stage_deadline_ms(store, rt, stage)?.is_some() {
+        return Ok(());
+    }
+    Err(AggregatorError::FailedPrecondition(format!(
+        "stage: {} of study `{}` is not open yet ({})",
+        stage.as_str(),
+        rt.config.study_id,
+        match stage {
+            DetectionStage::ResidualMoments => format!(
+                "it opens when training ends; {} of {} rounds completed",
+                rt.rounds_completed, rt.config.rounds
+            ),
+            DetectionStage::EpisodeHistogram =>
+                "it opens when the residual_moments stage is complete".to_owned(),
+        }
+    )))
+}
+
+/// One `SecureStep` call for calibration `stage` (the secure replacement of
+/// `SubmitDetectionStats`): `session` 0 asks to join the current session (opened here with
+/// every active device when none is open), another names the session a message belongs to.
+/// Returns the answer and whether anything changed.
+fn secure_stage_step(
+    store: &mut Store,
+    rt: &mut StudyRuntime,
+    device_id: u64,
+    session: u64,
+    stage: DetectionStage,
+    message: Option<DeviceMessage>,
+    now_ms: i64,
+) -> Result<(SecureNext, bool)> {
+    let i = stage.index();
+    let ended = |rt: &StudyRuntime, session: u64| match &rt.last_stage_session[i] {
+        Some((id, included, reason)) if *id == session || session == 0 => SecureNext::Finished {
+            included: included.contains(&device_id),
+            reason: reason.clone(),
+        },
+        _ => SecureNext::Finished {
+            included: false,
+            reason: format!("{} session {session} is over", stage.as_str()),
+        },
+    };
+    if rt.detection_complete[i] {
+        let last = rt.last_stage_session[i].as_ref().map_or(0, |l| l.0);
+        return Ok((ended(rt, if session == 0 { last } else { session }), false));
+    }
+    stage_open(store, rt, stage)?;
+    let mut changed = false;
+    if rt.stage_sessions[i].is_none() {
+        refresh_revocations(store, rt)?;
+        let sa = rt.config.secure_aggregation.expect("checked by the caller");
+        let members: Vec<u64> = rt
+            .devices
+            .iter()
+            .filter(|(_, d)| !d.revoked)
+            .map(|(&id, _)| id)
+            .collect();
+        let per_group = stage == DetectionStage::EpisodeHistogram
+            && rt
+                .config
+                .subgroups
+                .as_ref()
+                .is_some_and(|g| g.calibrate_per_group);
+        let group_levels = match (&rt.config.subgroups, per_group) {
+            (Some(g), true) => g.levels.clone(),
+            _ => Vec::new(),
+        };
+        let stage_deadline = stage_deadline_ms(store, rt, stage)?.unwrap_or(now_ms);
+        let keys_deadline = stage_deadline.max(now_ms + sa.phase_deadline_ms as i64);
+        let number = rt.stage_session_count[i] + 1;
+        let task = SecureTask {
+            members,
+            threshold: 0,
+            frac_bits: sa.frac_bits,
+            slots: Vec::new(),
+            stage: Some(stage),
+            session: number,
+            group_levels,
+            group_slot: None,
+        };
+        let opened = SecureRound::open(task, keys_deadline, sa.phase_deadline_ms)
+            .map_err(|e| AggregatorError::FailedPrecondition(format!("stage: {e}")))?;
+        tracing::info!(study = %rt.config.study_id, stage = stage.as_str(), session = number, members = opened.task().members.len(), "secure calibration session opened");
+        rt.stage_session_count[i] = number;
+        rt.stage_sessions[i] = Some(opened);
+        changed = true;
+    }
+    let current = rt.stage_sessions[i].as_mut().expect("opened above");
+    let number = current.task().session;
+    if session == 0 {
+        if current.accepts_keys_from(device_id)
+            && current.task().members.binary_search(&device_id).is_ok()
+        {
+            let mut task = current.task().clone();
+            let group = rt.devices.get(&device_id).and_then(|d| d.group.as_ref());
+            task.group_slot = group.and_then(|g| task.group_levels.iter().position(|l| l == g));
+            return Ok((SecureNext::Start(task), changed));
+        }
+        return Ok((
+            SecureNext::Wait(format!(
+                "{} session {number} runs without this device; wait for it to end",
+                stage.as_str()
+            )),
+            changed,
+        ));
+    }
+    if session != number {
+        return Ok((ended(rt, session), changed));
+    }
+    if let Some(message) = message {
+        let field = secure_field(&message);
+        if let Some(done) = current
+            .receive(device_id, message)
+            .map_err(|e| secagg_refusal(field, e))?
+        {
+            return Ok((done, changed));
+        }
+    }
+    changed |= advance_stage_session(store, rt, stage, now_ms, false)?;
+    let answer = match &rt.stage_sessions[i] {
+        Some(current) if current.task().session == session => current.next_for(device_id),
+        _ => ended(rt, session),
+    };
+    Ok((answer, changed))
+}
+
+/// [`advance_secure`] for calibration `stage`'s session: after the last phase the decoded
+/// sum completes the stage (stored as a plain stage's would be, without any device's
+/// statistics); a failed session ends and the next `SecureStep` opens a new one.
+fn advance_stage_session(
+    store: &mut Store,
+    rt: &mut StudyRuntime,
+    stage: DetectionStage,
+    now_ms: i64,
+    deadline_passed: bool,
+) -> Result<bool> {
+    let i = stage.index();
+    let min_quorum = rt.config.min_quorum as usize;
+    let Some(session) = rt.stage_sessions[i].as_mut() else {
+        return Ok(false);
+    };
+    let number = session.task().session;
+    match session.advance(now_ms, deadline_passed, min_quorum) {
+        Advance::None => Ok(false),
+        Advance::Next => Ok(true),
+        Advance::Done { sum, included } => {
+            let (n_devices, total, group_sums) =
+                decode_stage(stage, &session.task().group_levels, &sum);
+            let completed = CompletedStage {
+                completed_ms: now_ms,
+                n_devices,
+                sum: total,
+                group_sums,
+            };
+            store.complete_stage(&rt.config.study_id, &completed)?;
+            rt.detection_complete[i] = true;
+            rt.stage_sessions[i] = None;
+            tracing::info!(study = %rt.config.study_id, stage = stage.as_str(), devices = n_devices, "calibration stage complete (secure sum)");
+            rt.last_stage_session[i] = Some((
+                number,
+                included,
+                format!(
+                    "{} complete: the sum of {n_devices} devices' statistics is published",
+                    stage.as_str()
+                ),
+            ));
+            Ok(true)
+        }
+        Advance::Failed(why) => {
+            tracing::warn!(study = %rt.config.study_id, stage = stage.as_str(), session = number, reason = %why, "secure calibration session failed; a new one opens");
+            rt.stage_sessions[i] = None;
+            rt.last_stage_session[i] = Some((
+                number,
+                BTreeSet::new(),
+                format!(
+                    "{} session {number} failed and a new one opens: {why}",
+                    stage.as_str()
+                ),
+            ));
+            Ok(true)
+        }
+    }
 }
 
 /// The `SecureStep` field a message came in, for refusals.
@@ -1586,11 +1814,8 @@ fn advance_secure(
     match secure.advance(now_ms, deadline_passed, min_quorum) {
         Advance::None => Ok(false),
         Advance::Next => Ok(true),
-        Advance::Done {
-            params,
-            contributions,
-            included,
-        } => {
+        Advance::Done { sum, included } => {
+            let (params, contributions) = decode_slots(&secure.task().slots, &sum);
             // A signal no device trained keeps its parameters, as in FedAvg in clear.
             let params = rt
                 .latest

@@ -26,6 +26,7 @@
 
 use std::collections::{BTreeMap, BTreeSet};
 
+use crate::detection::{DetectionStage, DetectionStats, HISTOGRAM_EDGES, MOMENT_SIGNALS};
 use crate::secagg::{
     self, AdvertiseKeys, FixedPoint, KeysBroadcast, MaskedInput, RoundParams, SecAggError,
     ShareKeys, SharesRelay, UnmaskingRequest, UnmaskingResponse,
@@ -42,19 +43,80 @@ pub struct Slot {
     pub n_values: usize,
 }
 
-/// What a device of a secure round needs to know (sent with its task).
+/// What a device of a secure round needs to know (sent with its task, or, for a
+/// calibration stage, by `SecureStep`).
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct SecureTask {
     pub members: Vec<u64>,
     pub threshold: u32,
     pub frac_bits: u32,
+    /// Training: one slot per study signal. Empty for a calibration stage.
     pub slots: Vec<Slot>,
+    /// A calibration stage's secure sum (`None`: a training round).
+    pub stage: Option<DetectionStage>,
+    /// For a stage: the session (a failed session is followed by a new one); the device
+    /// names it in `SecureStep.round_id`.
+    pub session: u64,
+    /// For the histogram stage of a study that calibrates per group: the group levels,
+    /// one block each after the study's total block.
+    pub group_levels: Vec<String>,
+    /// The receiving device's block among `group_levels` (a per-device field).
+    pub group_slot: Option<usize>,
 }
 
 impl SecureTask {
     /// The input vector's length.
     pub fn vector_len(&self) -> usize {
-        vector_len(&self.slots)
+        match self.stage {
+            Some(stage) => stage_block_len(stage) * (1 + self.group_levels.len()),
+            None => vector_len(&self.slots),
+        }
+    }
+
+    /// A device's plain stage input: its statistics and a count of 1 in the total block,
+    /// and again in its group's block ([`Self::group_slot`]); zeros elsewhere.
+    ///
+    /// # Errors
+    /// Not a stage task, or statistics of another stage.
+    pub fn stage_input(&self, stats: &DetectionStats) -> Result<Vec<f64>, String> {
+        let Some(stage) = self.stage else {
+            return Err("a training round takes an update, not calibration statistics".into());
+        };
+        if stats.stage() != stage {
+            return Err(format!(
+                "{} statistics for the {} stage",
+                stats.stage().as_str(),
+                stage.as_str()
+            ));
+        }
+        let mut block = match stats {
+            DetectionStats::ResidualMoments {
+                cross_products,
+                pair_days,
+            } => cross_products
+                .iter()
+                .copied()
+                .chain(pair_days.iter().map(|&d| d as f64))
+                .collect::<Vec<f64>>(),
+            DetectionStats::EpisodeHistogram {
+                episodes,
+                scored_days,
+            } => episodes
+                .iter()
+                .map(|&e| e as f64)
+                .chain([*scored_days as f64])
+                .collect(),
+        };
+        block.push(1.0);
+        let mut out = vec![0.0; self.vector_len()];
+        out[..block.len()].copy_from_slice(&block);
+        if let Some(g) = self.group_slot {
+            let at = block.len() * (1 + g);
+            out.get_mut(at..at + block.len())
+                .ok_or_else(|| format!("group slot {g} outside the task's layout"))?
+                .copy_from_slice(&block);
+        }
+        Ok(out)
     }
 
     /// The round's parameters as both sides build them.
@@ -112,6 +174,52 @@ fn vector_len(slots: &[Slot]) -> usize {
     slots.iter().map(|s| s.n_values + EXTRA_PER_SLOT).sum()
 }
 
+/// Values of one stage block: the statistics and the device count.
+pub fn stage_block_len(stage: DetectionStage) -> usize {
+    match stage {
+        DetectionStage::ResidualMoments => 2 * MOMENT_SIGNALS * MOMENT_SIGNALS + 1,
+        DetectionStage::EpisodeHistogram => HISTOGRAM_EDGES + 2,
+    }
+}
+
+/// A stage's decoded sum: the devices and statistics of the total block and, per group
+/// level, of its block (counts are whole numbers: decoded sums are rounded).
+pub type StageSum = (u32, DetectionStats, BTreeMap<String, (u32, DetectionStats)>);
+
+/// Splits a decoded stage sum into the study's total and the per-group sums.
+pub fn decode_stage(stage: DetectionStage, group_levels: &[String], sum: &[f64]) -> StageSum {
+    let len = stage_block_len(stage);
+    let count = |x: f64| x.round().max(0.0) as u64;
+    let block = |b: &[f64]| -> (u32, DetectionStats) {
+        let n = count(b[len - 1]) as u32;
+        let stats = match stage {
+            DetectionStage::ResidualMoments => {
+                let m = MOMENT_SIGNALS * MOMENT_SIGNALS;
+                DetectionStats::ResidualMoments {
+                    cross_products: b[..m].to_vec(),
+                    pair_days: b[m..2 * m].iter().map(|&x| count(x)).collect(),
+                }
+            }
+            DetectionStage::EpisodeHistogram => DetectionStats::EpisodeHistogram {
+                episodes: b[..HISTOGRAM_EDGES].iter().map(|&x| count(x)).collect(),
+                scored_days: count(b[HISTOGRAM_EDGES]),
+            },
+        };
+        (n, stats)
+    };
+    let (n, total) = block(&sum[..len]);
+    let groups = group_levels
+        .iter()
+        .enumerate()
+        .map(|(g, level)| {
+            let at = len * (1 + g);
+            (level.clone(), block(&sum[at..at + len]))
+        })
+        .filter(|(_, (n, _))| *n > 0)
+        .collect();
+    (n, total, groups)
+}
+
 /// A device's message in one phase.
 #[derive(Debug, Clone)]
 pub enum DeviceMessage {
@@ -145,6 +253,8 @@ pub enum SecureNext {
     Wait(String),
     /// The device's part is over.
     Finished { included: bool, reason: String },
+    /// A calibration stage's session to join: send keys for it.
+    Start(SecureTask),
 }
 
 /// The round's phase, as the coordinator tracks it.
@@ -174,10 +284,9 @@ pub enum Advance {
     None,
     /// The next phase opened.
     Next,
-    /// The round's sum, decoded: the next prior's parameters and contributions.
+    /// The round's sum, decoded from fixed point, and the devices in it.
     Done {
-        params: Vec<SignalParams>,
-        contributions: Vec<Contribution>,
+        sum: Vec<f64>,
         included: BTreeSet<u64>,
     },
     /// The round failed; run it again.
@@ -203,25 +312,17 @@ pub struct SecureRound {
 }
 
 impl SecureRound {
-    /// Opens a round for `members` (at least 2) with the study's slots.
+    /// Opens a round for `task`'s members (at least 2; the threshold is set here).
     ///
     /// # Errors
     /// Fewer than 2 members or an invalid codec.
     pub fn open(
-        members: &[u64],
-        slots: Vec<Slot>,
-        frac_bits: u32,
+        mut task: SecureTask,
         round_deadline_ms: i64,
         phase_length_ms: u64,
     ) -> Result<Self, SecAggError> {
-        let mut sorted = members.to_vec();
-        sorted.sort_unstable();
-        let task = SecureTask {
-            threshold: secagg::default_threshold(sorted.len().max(2)) as u32,
-            members: sorted,
-            frac_bits,
-            slots,
-        };
+        task.members.sort_unstable();
+        task.threshold = secagg::default_threshold(task.members.len().max(2)) as u32;
         let params = task.params()?;
         let codec = task.codec()?;
         Ok(Self {
@@ -397,15 +498,12 @@ impl SecureRound {
             Ok(out) => out,
             Err(e) => return Advance::Failed(e.to_string()),
         };
-        let decoded = match self.codec.decode_sum(&sum, u3.len() as u64) {
-            Ok(d) => d,
-            Err(e) => return Advance::Failed(e.to_string()),
-        };
-        let (params, contributions) = decode_slots(&self.task.slots, &decoded);
-        Advance::Done {
-            params,
-            contributions,
-            included: u3.into_iter().collect(),
+        match self.codec.decode_sum(&sum, u3.len() as u64) {
+            Ok(sum) => Advance::Done {
+                sum,
+                included: u3.into_iter().collect(),
+            },
+            Err(e) => Advance::Failed(e.to_string()),
         }
     }
 }
@@ -475,6 +573,10 @@ mod tests {
             threshold: 2,
             frac_bits: 24,
             slots: slots(),
+            stage: None,
+            session: 0,
+            group_levels: Vec::new(),
+            group_slot: None,
         };
         let x1 = task.plain_input(&[("a", &[1.0, 2.0], 10, 0.5)]).unwrap();
         let x2 = task
@@ -493,5 +595,41 @@ mod tests {
         assert_eq!(decode_slots(&task.slots, &x).0.len(), 1);
         assert!(task.plain_input(&[("c", &[0.0], 1, 0.0)]).is_err());
         assert!(task.plain_input(&[("a", &[0.0], 1, 0.0)]).is_err());
+    }
+
+    /// Two devices' histograms in groups "a" and "b": the total block is their element-wise
+    /// sum ([`DetectionStats::add`]), each group block its own device's.
+    #[test]
+    fn stage_blocks_decode_into_the_total_and_the_group_sums() {
+        let task = |slot| SecureTask {
+            members: vec![1, 2],
+            threshold: 2,
+            frac_bits: 24,
+            slots: Vec::new(),
+            stage: Some(DetectionStage::EpisodeHistogram),
+            session: 1,
+            group_levels: vec!["a".into(), "b".into()],
+            group_slot: Some(slot),
+        };
+        let h = |k: u64| DetectionStats::EpisodeHistogram {
+            episodes: (0..HISTOGRAM_EDGES as u64).map(|i| (i + k) % 7).collect(),
+            scored_days: 100 + k,
+        };
+        let x1 = task(0).stage_input(&h(1)).unwrap();
+        let x2 = task(1).stage_input(&h(2)).unwrap();
+        assert_eq!(x1.len(), 3 * (HISTOGRAM_EDGES + 2));
+        let sum: Vec<f64> = x1.iter().zip(&x2).map(|(a, b)| a + b).collect();
+        let (n, total, groups) = decode_stage(
+            DetectionStage::EpisodeHistogram,
+            &task(0).group_levels,
+            &sum,
+        );
+        let mut expected = h(1);
+        expected.add(&h(2));
+        assert_eq!((n, total), (2, expected));
+        assert_eq!(groups["a"], (1, h(1)));
+        assert_eq!(groups["b"], (1, h(2)));
+        let moments = DetectionStats::zero(DetectionStage::ResidualMoments);
+        assert!(task(0).stage_input(&moments).is_err());
     }
 }

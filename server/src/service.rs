@@ -14,7 +14,7 @@ use tokio_stream::wrappers::TcpListenerStream;
 use tonic::{Request, Response, Status};
 
 use crate::error::AggregatorError;
-use crate::rounds::{Coordinator, Enrollment, Submission};
+use crate::rounds::{Coordinator, Enrollment, SecureSum, Submission};
 use crate::study::{SubmitOutcome, Work};
 use crate::tls::TlsIdentity;
 use crate::wire;
@@ -230,8 +230,16 @@ impl Aggregator for AggregatorService {
             let (study_id, round_id, cred, m) =
                 (r.study_id.clone(), r.round_id, cred.clone(), message.take());
             let claimed = r.device_id;
+            let sum = match r.stage {
+                0 => SecureSum::Round(round_id),
+                s => SecureSum::Stage(
+                    wire::detection_stage_from_pb(s)
+                        .map_err(|e| in_rpc(RPC, wire::to_status(e)))?,
+                    round_id,
+                ),
+            };
             let next = blocking(RPC, move || {
-                c.secure_step(&study_id, claimed, &cred, round_id, m, now_ms())
+                c.secure_step(&study_id, claimed, &cred, sum, m, now_ms())
             })
             .await?;
             let waiting = matches!(next, crate::secure_round::SecureNext::Wait(_));

@@ -447,6 +447,12 @@ pub fn secure_task_to_pb(t: &SecureTask) -> pb::SecureRound {
                 n_values: s.n_values as u32,
             })
             .collect(),
+        stage: t
+            .stage
+            .map_or(pb::DetectionStage::Unspecified, detection_stage_to_pb) as i32,
+        session: t.session,
+        group_levels: t.group_levels.clone(),
+        group_slot: t.group_slot.map_or(0, |g| g as u32 + 1),
     }
 }
 
@@ -464,6 +470,24 @@ pub fn secure_task_from_pb(t: pb::SecureRound) -> Result<SecureTask> {
                 n_values: s.n_values as usize,
             })
             .collect(),
+        stage: match t.stage {
+            0 => None,
+            other => Some(detection_stage_from_pb(other).map_err(|_| {
+                AggregatorError::invalid("task.secure.stage", format!("unknown value {other}"))
+            })?),
+        },
+        session: t.session,
+        group_slot: match t.group_slot {
+            0 => None,
+            g if g as usize <= t.group_levels.len() => Some(g as usize - 1),
+            g => {
+                return Err(AggregatorError::invalid(
+                    "task.secure.group_slot",
+                    format!("{g} outside the {} group levels", t.group_levels.len()),
+                ));
+            }
+        },
+        group_levels: t.group_levels,
     };
     task.params()
         .map_err(|e| AggregatorError::invalid("task.secure", e.to_string()))?;
@@ -608,6 +632,7 @@ pub fn secure_next_to_pb(next: SecureNext, retry_after_ms: u32) -> pb::SecureSte
         SecureNext::Finished { included, reason } => {
             N::Finished(pb::SecAggFinished { included, reason })
         }
+        SecureNext::Start(task) => N::Start(secure_task_to_pb(&task)),
     };
     pb::SecureStepResponse { next: Some(n) }
 }
@@ -646,6 +671,7 @@ pub fn secure_next_from_pb(r: pb::SecureStepResponse) -> Result<SecureNext> {
             included: f.included,
             reason: f.reason,
         },
+        Some(N::Start(task)) => SecureNext::Start(secure_task_from_pb(task)?),
         None => return Err(AggregatorError::invalid("next", "missing")),
     })
 }
