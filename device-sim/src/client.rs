@@ -745,6 +745,11 @@ pub(crate) async fn train_and_submit(
 ) -> anyhow::Result<()> {
     let round_id = task.round_id;
     let secure = task.secure.clone();
+    let current: Vec<(Signal, Vec<f64>)> = task
+        .shared
+        .iter()
+        .map(|p| (p.signal, p.values.to_vec()))
+        .collect();
     let permit = cpu.clone().acquire_owned().await?;
     let updates = tokio::task::spawn_blocking(move || {
         let _permit = permit;
@@ -754,7 +759,17 @@ pub(crate) async fn train_and_submit(
     .context("local training task")??;
     if let Some(secure) = &secure {
         crate::secure::secure_submit(
-            client, credential, study_id, round_id, secure, &updates, backoff, seed,
+            client,
+            credential,
+            study_id,
+            round_id,
+            secure,
+            crate::secure::RoundUpdate {
+                current: &current,
+                updates: &updates,
+            },
+            backoff,
+            seed,
         )
         .await?;
         return Ok(());

@@ -94,10 +94,11 @@ enum Command {
         /// the rounds (δ = 1/participants; the noise multiplier is chosen to reach it).
         #[arg(long)]
         dp_epsilon: Option<f64>,
-        /// Run each round with secure aggregation: the aggregator learns only the sum of
-        /// the round's updates (pairwise masks with Shamir-shared keys; a round survives a
-        /// third of its devices dropping).
-        #[arg(long, conflicts_with = "dp_epsilon")]
+        /// Run each round and the detector's calibration with secure aggregation: the
+        /// aggregator learns only sums (pairwise masks with Shamir-shared keys; a round
+        /// survives a third of its devices dropping). With --dp-epsilon the devices add the
+        /// noise themselves (distributed discrete Gaussian).
+        #[arg(long)]
         secure_aggregation: bool,
         /// What a bad input row does: `quarantine` keeps the good rows, reports every bad one
         /// and copies the bad rows to <out>/quarantine/; `abort` stops at the first.
@@ -162,9 +163,10 @@ enum Command {
         /// δ of the privacy statement, e.g. 1/(expected participants).
         #[arg(long, requires = "dp_epsilon")]
         dp_delta: Option<f64>,
-        /// Run each round with secure aggregation (FedAvg only; no sensor models or
-        /// differential privacy): the aggregator learns only each round's sum.
-        #[arg(long, conflicts_with = "dp_epsilon")]
+        /// Run each round and the detector's calibration with secure aggregation (FedAvg
+        /// only; no sensor models): the aggregator learns only sums. With --dp-epsilon the
+        /// devices add the noise themselves (distributed discrete Gaussian).
+        #[arg(long)]
         secure_aggregation: bool,
         /// How long each secure-aggregation phase after the first waits for the devices
         /// still expected, in seconds.

@@ -38,6 +38,35 @@ pub fn plain_input(
         .map_err(|e| anyhow!("secure round input: {e}"))
 }
 
+/// A device's result of one round: the parameters it received and its trained updates.
+#[derive(Debug, Clone, Copy)]
+pub struct RoundUpdate<'a> {
+    /// The round's shared parameters of the device's signals.
+    pub current: &'a [(Signal, Vec<f64>)],
+    pub updates: &'a [(Signal, LocalUpdate)],
+}
+
+/// The noised input of `updates` (changes from `current`) in a private round.
+///
+/// # Errors
+/// As [`plain_input`], or a trained signal without current parameters.
+pub fn private_input(
+    task: &SecureTask,
+    current: &[(Signal, Vec<f64>)],
+    updates: &[(Signal, LocalUpdate)],
+) -> anyhow::Result<Vec<f64>> {
+    let rows: Vec<(&str, &[f64], u32, f64)> = updates
+        .iter()
+        .map(|(s, u)| (s.column(), &u.values[..], u.n_days, u.loss_at_received))
+        .collect();
+    let current: Vec<(&str, &[f64])> = current
+        .iter()
+        .map(|(s, v)| (s.column(), v.as_slice()))
+        .collect();
+    task.private_input(&current, &rows, &mut rand::rng())
+        .map_err(|e| anyhow!("private secure round input: {e}"))
+}
+
 /// Runs round `round_id`'s protocol for `updates`: advertises fresh keys, then answers each
 /// phase until the aggregator says the device's part is over. Returns whether the device's
 /// input is in the round's sum (false when it missed a phase or the round is run again).
@@ -52,13 +81,19 @@ pub async fn secure_submit(
     study_id: &str,
     round_id: u64,
     task: &SecureTask,
-    updates: &[(Signal, LocalUpdate)],
+    update: RoundUpdate<'_>,
     backoff: &Backoff,
     seed: u64,
 ) -> anyhow::Result<bool> {
+    let RoundUpdate { current, updates } = update;
+    let input = if task.dp.is_some() {
+        private_input(task, current, updates)?
+    } else {
+        plain_input(task, updates)?
+    };
     let encoded = task
         .codec()?
-        .encode(&plain_input(task, updates)?)
+        .encode(&input)
         .context("encoding the update in fixed point")?;
     let call = Call {
         client,

@@ -23,7 +23,8 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
 use crate::secure_round::{
-    Advance, DeviceMessage, SecureNext, SecureRound, SecureTask, Slot, decode_slots, decode_stage,
+    Advance, DeviceMessage, SecureNext, SecureRound, SecureTask, Slot, decode_private_slots,
+    decode_slots, decode_stage,
 };
 use crate::store::StoredEpisode;
 use crate::store::{CompletedStage, NewDevice, Store, StoredOpenRound};
@@ -1518,6 +1519,25 @@ fn maybe_open_round(
                 })
                 .collect();
             let deadline = now_ms + rt.config.round_deadline_ms as i64;
+            let dim = rt.config.signals.iter().map(|l| l.param_names.len()).sum();
+            let threshold = crate::secagg::default_threshold(members.len().max(2));
+            let dp = match &rt.config.dp {
+                Some(dp) => {
+                    match crate::privacy::DistributedNoise::for_round(
+                        dp,
+                        threshold,
+                        dim,
+                        sa.frac_bits,
+                    ) {
+                        Ok(noise) => Some(noise),
+                        Err(e) => {
+                            tracing::warn!(study = %rt.config.study_id, round_id, error = %e, "no private secure round can open");
+                            return Ok(false);
+                        }
+                    }
+                }
+                None => None,
+            };
             let task = SecureTask {
                 members: members.clone(),
                 threshold: 0,
@@ -1527,6 +1547,7 @@ fn maybe_open_round(
                 session: round_id,
                 group_levels: Vec::new(),
                 group_slot: None,
+                dp,
             };
             match SecureRound::open(task, deadline, sa.phase_deadline_ms) {
                 Ok(round) => Some(round),
@@ -1654,6 +1675,7 @@ fn secure_stage_step(
             session: number,
             group_levels,
             group_slot: None,
+            dp: None,
         };
         let opened = SecureRound::open(task, keys_deadline, sa.phase_deadline_ms)
             .map_err(|e| AggregatorError::FailedPrecondition(format!("stage: {e}")))?;
@@ -1804,6 +1826,8 @@ fn advance_secure(
     deadline_passed: bool,
 ) -> Result<bool> {
     let min_quorum = rt.config.min_quorum as usize;
+    // DP-FedAvg's fixed denominator, as in `close_private_round`.
+    let expected = (rt.config.fraction_per_round * rt.active_devices() as f64).max(1.0);
     let Some(open) = rt.open.as_mut() else {
         return Ok(false);
     };
@@ -1815,7 +1839,11 @@ fn advance_secure(
         Advance::None => Ok(false),
         Advance::Next => Ok(true),
         Advance::Done { sum, included } => {
-            let (params, contributions) = decode_slots(&secure.task().slots, &sum);
+            let (params, contributions) = if rt.config.dp.is_some() {
+                decode_private_slots(&secure.task().slots, &sum, &rt.latest.params, expected)
+            } else {
+                decode_slots(&secure.task().slots, &sum)
+            };
             // A signal no device trained keeps its parameters, as in FedAvg in clear.
             let params = rt
                 .latest

@@ -45,7 +45,7 @@ pub struct Slot {
 
 /// What a device of a secure round needs to know (sent with its task, or, for a
 /// calibration stage, by `SecureStep`).
-#[derive(Debug, Clone, PartialEq, Eq)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct SecureTask {
     pub members: Vec<u64>,
     pub threshold: u32,
@@ -62,6 +62,9 @@ pub struct SecureTask {
     pub group_levels: Vec<String>,
     /// The receiving device's block among `group_levels` (a per-device field).
     pub group_slot: Option<usize>,
+    /// A training round of a study with differential privacy: each device sends its clipped,
+    /// rounded and noised change instead of `n·θ` ([`Self::private_input`]).
+    pub dp: Option<crate::privacy::DistributedNoise>,
 }
 
 impl SecureTask {
@@ -71,6 +74,54 @@ impl SecureTask {
             Some(stage) => stage_block_len(stage) * (1 + self.group_levels.len()),
             None => vector_len(&self.slots),
         }
+    }
+
+    /// A device's input in a private round: per slot, its change from `current` (the
+    /// round's parameters of the signals it trains) over every signal at once, clipped,
+    /// in whole units of `2^−frac_bits` with its noise share
+    /// ([`crate::privacy::DistributedNoise::device_units`]), then `n`, `n·ℓ` and 1.
+    ///
+    /// # Errors
+    /// Not a private round, or as [`Self::plain_input`].
+    pub fn private_input<R: rand::Rng + ?Sized>(
+        &self,
+        current: &[(&str, &[f64])],
+        updates: &[(&str, &[f64], u32, f64)],
+        rng: &mut R,
+    ) -> Result<Vec<f64>, String> {
+        let Some(noise) = self.dp else {
+            return Err("the round is not private".into());
+        };
+        let mut plain = self.plain_input(updates)?;
+        let mut delta = Vec::new();
+        for slot in &self.slots {
+            match (
+                updates.iter().find(|u| u.0 == slot.signal),
+                current.iter().find(|c| c.0 == slot.signal),
+            ) {
+                (Some(u), Some(c)) if c.1.len() == slot.n_values => {
+                    delta.extend(u.1.iter().zip(c.1).map(|(v, c)| v - c));
+                }
+                (Some(_), _) => {
+                    return Err(format!(
+                        "{}: no current parameters of its length",
+                        slot.signal
+                    ));
+                }
+                (None, _) => delta.extend(std::iter::repeat_n(0.0, slot.n_values)),
+            }
+        }
+        let units = noise.device_units(&delta, self.frac_bits, rng);
+        let gamma = f64::from(self.frac_bits).exp2().recip();
+        let (mut at, mut from) = (0, 0);
+        for slot in &self.slots {
+            for j in 0..slot.n_values {
+                plain[at + j] = units[from + j] * gamma;
+            }
+            at += slot.n_values + EXTRA_PER_SLOT;
+            from += slot.n_values;
+        }
+        Ok(plain)
     }
 
     /// A device's plain stage input: its statistics and a count of 1 in the total block,
@@ -518,6 +569,37 @@ fn phase_of(phase: Phase) -> secagg::Phase {
     }
 }
 
+/// Splits a private round's decoded sum: each signal's parameters move by its noised,
+/// clipped changes summed over the devices and divided by `expected` (the expected number
+/// of devices, DP-FedAvg's fixed denominator), every coordinate whether or not a device
+/// trained it; contributions as [`decode_slots`].
+pub fn decode_private_slots(
+    slots: &[Slot],
+    sum: &[f64],
+    current: &[SignalParams],
+    expected: f64,
+) -> (Vec<SignalParams>, Vec<Contribution>) {
+    let (_, contributions) = decode_slots(slots, sum);
+    let mut params = Vec::new();
+    let mut at = 0;
+    for slot in slots {
+        let block = &sum[at..at + slot.n_values];
+        at += slot.n_values + EXTRA_PER_SLOT;
+        if let Some(c) = current.iter().find(|c| c.signal == slot.signal) {
+            params.push(SignalParams {
+                signal: slot.signal.clone(),
+                values: c
+                    .values
+                    .iter()
+                    .zip(block)
+                    .map(|(v, s)| v + s / expected)
+                    .collect(),
+            });
+        }
+    }
+    (params, contributions)
+}
+
 /// Splits a decoded sum into per-signal FedAvg parameters and contributions; a signal no
 /// device trained (`Σ n = 0`) gets no entry (the caller keeps its current parameters).
 pub fn decode_slots(slots: &[Slot], sum: &[f64]) -> (Vec<SignalParams>, Vec<Contribution>) {
@@ -577,6 +659,7 @@ mod tests {
             session: 0,
             group_levels: Vec::new(),
             group_slot: None,
+            dp: None,
         };
         let x1 = task.plain_input(&[("a", &[1.0, 2.0], 10, 0.5)]).unwrap();
         let x2 = task
@@ -610,6 +693,7 @@ mod tests {
             session: 1,
             group_levels: vec!["a".into(), "b".into()],
             group_slot: Some(slot),
+            dp: None,
         };
         let h = |k: u64| DetectionStats::EpisodeHistogram {
             episodes: (0..HISTOGRAM_EDGES as u64).map(|i| (i + k) % 7).collect(),

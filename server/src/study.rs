@@ -349,11 +349,6 @@ impl StudyConfig {
                     "secure_aggregation: per-sensor-model terms need each update's model; remove sensor_models or secure_aggregation".into(),
                 );
             }
-            if self.dp.is_some() {
-                return Err(
-                    "secure_aggregation: differential privacy with secure aggregation (distributed noise) is not available yet; choose one".into(),
-                );
-            }
             if self.min_quorum < 2 {
                 return Err("secure_aggregation: min_quorum must be at least 2".into());
             }

@@ -453,6 +453,8 @@ pub fn secure_task_to_pb(t: &SecureTask) -> pb::SecureRound {
         session: t.session,
         group_levels: t.group_levels.clone(),
         group_slot: t.group_slot.map_or(0, |g| g as u32 + 1),
+        dp_clip_norm: t.dp.map_or(0.0, |d| d.clip_norm),
+        dp_noise_stddev_units: t.dp.map_or(0.0, |d| d.device_stddev_units),
     }
 }
 
@@ -488,6 +490,21 @@ pub fn secure_task_from_pb(t: pb::SecureRound) -> Result<SecureTask> {
             }
         },
         group_levels: t.group_levels,
+        dp: match (t.dp_clip_norm, t.dp_noise_stddev_units) {
+            (0.0, 0.0) => None,
+            (c, s) if c.is_finite() && c > 0.0 && s.is_finite() && s > 0.0 => {
+                Some(crate::privacy::DistributedNoise {
+                    clip_norm: c,
+                    device_stddev_units: s,
+                })
+            }
+            (c, s) => {
+                return Err(AggregatorError::invalid(
+                    "task.secure.dp_clip_norm",
+                    format!("clip norm {c} and noise {s} must both be positive and finite"),
+                ));
+            }
+        },
     };
     task.params()
         .map_err(|e| AggregatorError::invalid("task.secure", e.to_string()))?;
