@@ -322,6 +322,7 @@ async fn sensor_aware_prior_fairness_rule_and_comparison() {
         group_column: Some("device_model".into()),
         rule: AggregationRule::GroupRank { lambda: 5.0 },
         dp_epsilon: None,
+        secure_aggregation: false,
     };
     opts.settings.calibrate_column = Some("age_band".into());
     let outcome = run_evaluation(&opts).await.unwrap();

@@ -293,6 +293,10 @@ enum Command {
         /// reach it).
         #[arg(long)]
         dp_epsilon: Option<f64>,
+        /// Learn the prior with secure aggregation in every round (with --dp-epsilon, the
+        /// devices add the noise themselves).
+        #[arg(long, conflicts_with = "screened_prior")]
+        secure_aggregation: bool,
     },
     /// Convert one participant's open mHealth (IEEE 1752.1) JSON data points into daily.csv.
     ///
@@ -694,6 +698,7 @@ async fn main() -> anyhow::Result<()> {
             calibrate_per_group,
             compare_aggregation,
             dp_epsilon,
+            secure_aggregation,
         } => {
             evaluate(EvaluateArgs {
                 cohort,
@@ -712,6 +717,7 @@ async fn main() -> anyhow::Result<()> {
                     group_column,
                     rule: aggregation,
                     dp_epsilon,
+                    secure_aggregation,
                 },
                 calibrate_per_group,
                 compare_aggregation,

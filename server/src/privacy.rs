@@ -48,6 +48,19 @@
 //! in which fewer than `min_quorum` devices submitted by the deadline, is abandoned and drawn
 //! again. The accountant treats each published round as Poisson-sampled: that conditioning is
 //! not accounted for, and it is negligible only when `qN` is far above the quorum.
+//!
+//! # With secure aggregation
+//!
+//! A study with both `dp` and `secure_aggregation` does not trust the aggregator with any
+//! update: each device clips its own change, rounds it to whole units of `2^−24` at random
+//! and adds its share of discrete Gaussian noise ([`DistributedNoise`], Kairouz, Liu &
+//! Steinke 2021), and the aggregator sees only the masked sum, which it divides by `qN` as
+//! above (`secure_round::decode_private_slots`). Each device's share is sized so that a sum
+//! over the round's threshold `t` devices carries the full `(zΔ)²`; a sum over more devices
+//! carries more noise than the accountant assumes (up to `n/t ≤ 1.5` times the variance), so
+//! the stated `ε` is an upper bound. The discrete noise closes the floating-point leak above.
+//! Day counts and losses still travel (masked) for the published contributions, outside `ε`,
+//! and the calibration stages' sums carry no noise in either mode.
 
 use rand_distr::{Distribution, Normal};
 use serde::{Deserialize, Serialize};

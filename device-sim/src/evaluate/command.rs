@@ -74,6 +74,9 @@ pub struct PriorOptions {
     /// User-level differential privacy at this `ε` over the planned rounds (δ = 1/N, clip
     /// [`DP_CLIP_NORM`], the noise multiplier that reaches `ε`; DP-FedAvg, `plimsoll_server::privacy`).
     pub dp_epsilon: Option<f64>,
+    /// Run every round with secure aggregation (`plimsoll_server::secure_round`; with
+    /// `dp_epsilon`, the devices add the noise).
+    pub secure_aggregation: bool,
 }
 
 impl PriorOptions {
@@ -90,6 +93,9 @@ impl PriorOptions {
         }
         if let Some(e) = self.dp_epsilon {
             out.push_str(&format!(", DP ε={e}"));
+        }
+        if self.secure_aggregation {
+            out.push_str(", secure aggregation");
         }
         out
     }
@@ -466,7 +472,9 @@ pub async fn learn_prior(
             rule: groups.rule,
             clip_norm: None,
         },
-        secure_aggregation: None,
+        secure_aggregation: groups
+            .secure_aggregation
+            .then(plimsoll_server::study::SecureAggregation::default),
         alert_budget_per_participant_month:
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
         review_level: plimsoll_server::packets::FlagLevel::Alert,
@@ -514,7 +522,13 @@ pub async fn learn_prior(
     config
         .validate()
         .map_err(|e| anyhow::anyhow!("federated training settings: {e}"))?;
-    let pool = PoolOptions::default();
+    let mut pool = PoolOptions::default();
+    if groups.secure_aggregation {
+        // Every selected device must stay at work through a secure round's phases: room
+        // for twice the expected selection (Poisson selection under differential privacy
+        // varies around it).
+        pool.workers = pool.workers.max(2 * per_round);
+    }
     let first_pass = federated_pass(
         cohort,
         &members,

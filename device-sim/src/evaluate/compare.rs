@@ -43,6 +43,7 @@ pub fn comparison_settings(
         group_column: group.clone(),
         rule,
         dp_epsilon: None,
+        secure_aggregation: false,
     };
     let mut out = vec![PriorOptions {
         group_column: group.clone(),
