@@ -429,6 +429,11 @@ async fn main() -> anyhow::Result<()> {
                         config.rounds
                     );
                 }
+                if config.secure_aggregation.is_some() {
+                    println!(
+                        "  secure aggregation: on (the aggregator sees only each round's and each calibration stage's sum)"
+                    );
+                }
                 // The detector's calibration stages follow training (moments, then the
                 // episode histogram); each line says how far its stage has come.
                 for stage in plimsoll_server::detection::DetectionStage::ALL {

@@ -129,13 +129,20 @@ pub fn studies(session: &Session, titles: &[(String, String)]) -> String {
 
 /// The study's differential-privacy spending as an overview fact (empty without `dp`).
 fn privacy_fact(config: &crate::study::StudyConfig, rounds_completed: u32) -> String {
-    let (Some(dp), Some(eps)) = (&config.dp, config.epsilon_spent(rounds_completed)) else {
-        return String::new();
-    };
-    format!(
-        "\n<div><dt>Privacy spent (user-level)</dt><dd>ε = {eps:.2} of {:.2} (δ = {:.1e}); training stops before the budget is passed</dd></div>",
-        dp.epsilon_budget, dp.delta
-    )
+    let mut out = String::new();
+    if let (Some(dp), Some(eps)) = (&config.dp, config.epsilon_spent(rounds_completed)) {
+        let _ = write!(
+            out,
+            "\n<div><dt>Privacy spent (user-level)</dt><dd>ε = {eps:.2} of {:.2} (δ = {:.1e}); training stops before the budget is passed</dd></div>",
+            dp.epsilon_budget, dp.delta
+        );
+    }
+    if config.secure_aggregation.is_some() {
+        out.push_str(
+            "\n<div><dt>Secure aggregation</dt><dd>on: the aggregator sees only each round's and each calibration stage's sum, never one device's</dd></div>",
+        );
+    }
+    out
 }
 
 pub fn overview(session: &Session, o: &StudyOverview, now_ms: i64) -> String {
@@ -994,5 +1001,12 @@ mod tests {
         let line = privacy_fact(&config, 80);
         assert!(line.contains("ε = 4.99 of 8.00"), "{line}");
         assert!(line.contains("δ = 4.2e-2"), "{line}");
+        assert!(!line.contains("Secure aggregation"), "{line}");
+        config.secure_aggregation = Some(crate::study::SecureAggregation::default());
+        let line = privacy_fact(&config, 80);
+        assert!(
+            line.contains("<dt>Secure aggregation</dt><dd>on:"),
+            "{line}"
+        );
     }
 }
