@@ -30,12 +30,16 @@ pub fn plain_input(
     task: &SecureTask,
     updates: &[(Signal, LocalUpdate)],
 ) -> anyhow::Result<Vec<f64>> {
-    let rows: Vec<(&str, &[f64], u32, f64)> = updates
+    task.plain_input(&rows(updates))
+        .map_err(|e| anyhow!("secure round input: {e}"))
+}
+
+/// `updates` as the rows [`SecureTask::plain_input`] takes: signal, values, days, loss.
+fn rows(updates: &[(Signal, LocalUpdate)]) -> Vec<(&str, &[f64], u32, f64)> {
+    updates
         .iter()
         .map(|(s, u)| (s.column(), &u.values[..], u.n_days, u.loss_at_received))
-        .collect();
-    task.plain_input(&rows)
-        .map_err(|e| anyhow!("secure round input: {e}"))
+        .collect()
 }
 
 /// A device's result of one round: the parameters it received and its trained updates.
@@ -55,15 +59,11 @@ pub fn private_input(
     current: &[(Signal, Vec<f64>)],
     updates: &[(Signal, LocalUpdate)],
 ) -> anyhow::Result<Vec<f64>> {
-    let rows: Vec<(&str, &[f64], u32, f64)> = updates
-        .iter()
-        .map(|(s, u)| (s.column(), &u.values[..], u.n_days, u.loss_at_received))
-        .collect();
     let current: Vec<(&str, &[f64])> = current
         .iter()
         .map(|(s, v)| (s.column(), v.as_slice()))
         .collect();
-    task.private_input(&current, &rows, &mut rand::rng())
+    task.private_input(&current, &rows(updates), &mut rand::rng())
         .map_err(|e| anyhow!("private secure round input: {e}"))
 }
 

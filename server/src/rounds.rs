@@ -1521,35 +1521,30 @@ fn maybe_open_round(
             let deadline = now_ms + rt.config.round_deadline_ms as i64;
             let dim = rt.config.signals.iter().map(|l| l.param_names.len()).sum();
             let threshold = crate::secagg::default_threshold(members.len().max(2));
-            let dp = match &rt.config.dp {
-                Some(dp) => {
-                    match crate::privacy::DistributedNoise::for_round(
+            let opened = rt
+                .config
+                .dp
+                .as_ref()
+                .map(|dp| {
+                    crate::privacy::DistributedNoise::for_round(dp, threshold, dim, sa.frac_bits)
+                })
+                .transpose()
+                .and_then(|dp| {
+                    let task = SecureTask {
+                        members: members.clone(),
+                        threshold: 0,
+                        frac_bits: sa.frac_bits,
+                        slots,
+                        stage: None,
+                        session: round_id,
+                        group_levels: Vec::new(),
+                        group_slot: None,
                         dp,
-                        threshold,
-                        dim,
-                        sa.frac_bits,
-                    ) {
-                        Ok(noise) => Some(noise),
-                        Err(e) => {
-                            tracing::warn!(study = %rt.config.study_id, round_id, error = %e, "no private secure round can open");
-                            return Ok(false);
-                        }
-                    }
-                }
-                None => None,
-            };
-            let task = SecureTask {
-                members: members.clone(),
-                threshold: 0,
-                frac_bits: sa.frac_bits,
-                slots,
-                stage: None,
-                session: round_id,
-                group_levels: Vec::new(),
-                group_slot: None,
-                dp,
-            };
-            match SecureRound::open(task, deadline, sa.phase_deadline_ms) {
+                    };
+                    SecureRound::open(task, deadline, sa.phase_deadline_ms)
+                        .map_err(|e| e.to_string())
+                });
+            match opened {
                 Ok(round) => Some(round),
                 Err(e) => {
                     tracing::warn!(study = %rt.config.study_id, round_id, error = %e, "no secure round can open");
