@@ -23,8 +23,8 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
 use crate::secure_round::{
-    Advance, DeviceMessage, SecureNext, SecureRound, SecureTask, Slot, decode_private_slots,
-    decode_slots, decode_stage,
+    Advance, DeviceMessage, EndedSum, SecureNext, SecureRound, SecureTask, Slot,
+    decode_private_slots, decode_slots, decode_stage,
 };
 use crate::store::StoredEpisode;
 use crate::store::{CompletedStage, NewDevice, Store, StoredOpenRound};
@@ -80,14 +80,14 @@ struct StudyRuntime {
     round_limit: u32,
     /// The last secure round to end: its id, the devices whose input is in its sum and
     /// what happened.
-    last_secure: Option<(u64, BTreeSet<u64>, String)>,
+    last_secure: Option<EndedSum>,
     /// Secure aggregation of the calibration stages: per stage (by
     /// [`DetectionStage::index`]) the open session, the sessions opened so far and the
     /// last session to end (as `last_secure`). Memory only: after a restart a stage's
     /// sum starts again with a new session.
     stage_sessions: [Option<SecureRound>; 2],
     stage_session_count: [u64; 2],
-    last_stage_session: [Option<(u64, BTreeSet<u64>, String)>; 2],
+    last_stage_session: [Option<EndedSum>; 2],
 }
 
 impl StudyRuntime {
@@ -1623,18 +1623,17 @@ fn secure_stage_step(
     now_ms: i64,
 ) -> Result<(SecureNext, bool)> {
     let i = stage.index();
-    let ended = |rt: &StudyRuntime, session: u64| match &rt.last_stage_session[i] {
-        Some((id, included, reason)) if *id == session || session == 0 => SecureNext::Finished {
-            included: included.contains(&device_id),
-            reason: reason.clone(),
-        },
-        _ => SecureNext::Finished {
-            included: false,
-            reason: format!("{} session {session} is over", stage.as_str()),
-        },
+    let ended = |rt: &StudyRuntime, session: u64| {
+        EndedSum::answer(
+            rt.last_stage_session[i].as_ref(),
+            session,
+            device_id,
+            || format!("{} session {session} is over", stage.as_str()),
+        )
     };
     if rt.detection_complete[i] {
-        let last = rt.last_stage_session[i].as_ref().map_or(0, |l| l.0);
+        // Asking to join a complete stage is asking about its last session.
+        let last = rt.last_stage_session[i].as_ref().map_or(0, |l| l.id);
         return Ok((ended(rt, if session == 0 { last } else { session }), false));
     }
     stage_open(store, rt, stage)?;
@@ -1750,27 +1749,27 @@ fn advance_stage_session(
             rt.detection_complete[i] = true;
             rt.stage_sessions[i] = None;
             tracing::info!(study = %rt.config.study_id, stage = stage.as_str(), devices = n_devices, "calibration stage complete (secure sum)");
-            rt.last_stage_session[i] = Some((
-                number,
+            rt.last_stage_session[i] = Some(EndedSum {
+                id: number,
                 included,
-                format!(
+                reason: format!(
                     "{} complete: the sum of {n_devices} devices' statistics is published",
                     stage.as_str()
                 ),
-            ));
+            });
             Ok(true)
         }
         Advance::Failed(why) => {
             tracing::warn!(study = %rt.config.study_id, stage = stage.as_str(), session = number, reason = %why, "secure calibration session failed; a new one opens");
             rt.stage_sessions[i] = None;
-            rt.last_stage_session[i] = Some((
-                number,
-                BTreeSet::new(),
-                format!(
+            rt.last_stage_session[i] = Some(EndedSum {
+                id: number,
+                included: BTreeSet::new(),
+                reason: format!(
                     "{} session {number} failed and a new one opens: {why}",
                     stage.as_str()
                 ),
-            ));
+            });
             Ok(true)
         }
     }
@@ -1799,16 +1798,9 @@ fn secagg_refusal(field: &str, e: crate::secagg::SecAggError) -> AggregatorError
 
 /// The answer to a device asking about secure round `round_id` after it closed or failed.
 fn finished_for(rt: &StudyRuntime, round_id: u64, device_id: u64) -> SecureNext {
-    match &rt.last_secure {
-        Some((id, included, reason)) if *id == round_id => SecureNext::Finished {
-            included: included.contains(&device_id),
-            reason: reason.clone(),
-        },
-        _ => SecureNext::Finished {
-            included: false,
-            reason: format!("round {round_id} is over"),
-        },
-    }
+    EndedSum::answer(rt.last_secure.as_ref(), round_id, device_id, || {
+        format!("round {round_id} is over")
+    })
 }
 
 /// Closes the open secure round's phase when it is complete (or, with `deadline_passed`,
@@ -1858,7 +1850,11 @@ fn advance_secure(
                 included.len(),
                 rt.latest.version
             );
-            rt.last_secure = Some((round_id, included, reason));
+            rt.last_secure = Some(EndedSum {
+                id: round_id,
+                included,
+                reason,
+            });
             maybe_open_round(store, rt, now_ms, None)?;
             Ok(true)
         }
@@ -1869,11 +1865,11 @@ fn advance_secure(
                 rt.open = previous;
                 return Err(e);
             }
-            rt.last_secure = Some((
-                round_id,
-                BTreeSet::new(),
-                format!("round {round_id} failed and is run again: {why}"),
-            ));
+            rt.last_secure = Some(EndedSum {
+                id: round_id,
+                included: BTreeSet::new(),
+                reason: format!("round {round_id} failed and is run again: {why}"),
+            });
             Ok(true)
         }
     }

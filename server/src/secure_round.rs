@@ -308,6 +308,37 @@ pub enum SecureNext {
     Start(SecureTask),
 }
 
+/// A secure sum that has ended: its round (or stage session), the devices whose inputs are
+/// in it (none when it failed) and what happened, in words.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EndedSum {
+    pub id: u64,
+    pub included: BTreeSet<u64>,
+    pub reason: String,
+}
+
+impl EndedSum {
+    /// What `device` asking about sum `id` is told once it is over: `ended`'s outcome when
+    /// `ended` is that sum, otherwise not included, for the reason `over`.
+    pub fn answer(
+        ended: Option<&EndedSum>,
+        id: u64,
+        device: u64,
+        over: impl FnOnce() -> String,
+    ) -> SecureNext {
+        match ended {
+            Some(e) if e.id == id => SecureNext::Finished {
+                included: e.included.contains(&device),
+                reason: e.reason.clone(),
+            },
+            _ => SecureNext::Finished {
+                included: false,
+                reason: over(),
+            },
+        }
+    }
+}
+
 /// The round's phase, as the coordinator tracks it.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
 enum Phase {
