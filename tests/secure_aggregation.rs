@@ -452,8 +452,9 @@ async fn a_restart_runs_the_secure_round_again_and_robust_rules_are_refused() {
     assert!(e.contains("sensor_models"), "{e}");
 }
 
-/// The calibration stages under secure aggregation: four devices in two groups send known
-/// statistics through each stage's secure sum. The published sums equal the element-wise
+/// The calibration stages under secure aggregation: six devices in two groups send known
+/// statistics through each stage's secure sums, in two sessions of three (at most four
+/// devices per session). The published sums equal the element-wise
 /// sums of the same statistics (`DetectionStats::add`; integer counts exactly, residual
 /// cross-products to the fixed-point error), each device's histogram sum is its group's
 /// when the study calibrates per group, no device's statistics are stored, and a plain
@@ -465,7 +466,12 @@ async fn calibration_stages_are_summed_securely_per_group() {
 
     let dir = tempfile::tempdir().unwrap();
     let db = dir.path().join("agg.db");
-    let mut config = secure_study(4, 1, 2_000);
+    let mut config = secure_study(6, 1, 2_000);
+    config.secure_aggregation = Some(SecureAggregation {
+        phase_deadline_ms: 2_000,
+        max_session_devices: 4,
+        ..Default::default()
+    });
     config.subgroups = Some(plimsoll_server::study::Subgroups {
         column: "site".into(),
         levels: vec!["north".into(), "south".into()],
@@ -474,7 +480,7 @@ async fn calibration_stages_are_summed_securely_per_group() {
     });
     let server = TestServer::start(&db, vec![config]).await;
     let mut credentials = Vec::new();
-    for k in 0..4 {
+    for k in 0..6 {
         credentials.push(
             enroll(
                 &mut server.client(),
@@ -575,7 +581,7 @@ async fn calibration_stages_are_summed_securely_per_group() {
             assert!(j.unwrap(), "every device's statistics are in the sum");
         }
         let mut total = DetectionStats::zero(stage);
-        for k in 0..4 {
+        for k in 0..6 {
             total.add(&stats(k));
         }
         let view = server
@@ -583,7 +589,7 @@ async fn calibration_stages_are_summed_securely_per_group() {
             .detection_stage(STUDY, credentials[1].device_id, stage)
             .unwrap();
         assert!(view.complete);
-        assert_eq!(view.devices_submitted, 4);
+        assert_eq!(view.devices_submitted, 6);
         let sum = view.sum.unwrap();
         match (stage, &sum, &total) {
             (
@@ -603,11 +609,13 @@ async fn calibration_stages_are_summed_securely_per_group() {
                 }
             }
             (DetectionStage::EpisodeHistogram, _, _) => {
-                // Device 1 is in "south" with device 3: its sum is theirs.
+                // Device 1 is in "south" with devices 3 and 5 (in both sessions): its sum
+                // is theirs.
                 let mut south = histogram(1);
                 south.add(&histogram(3));
+                south.add(&histogram(5));
                 assert_eq!(sum, south);
-                assert_eq!(view.group, Some(("south".into(), 2)));
+                assert_eq!(view.group, Some(("south".into(), 3)));
             }
             other => panic!("{other:?}"),
         }

@@ -81,13 +81,9 @@ struct StudyRuntime {
     /// The last secure round to end: its id, the devices whose input is in its sum and
     /// what happened.
     last_secure: Option<EndedSum>,
-    /// Secure aggregation of the calibration stages: per stage (by
-    /// [`DetectionStage::index`]) the open session, the sessions opened so far and the
-    /// last session to end (as `last_secure`). Memory only: after a restart a stage's
-    /// sum starts again with a new session.
-    stage_sessions: [Option<SecureRound>; 2],
-    stage_session_count: [u64; 2],
-    last_stage_session: [Option<EndedSum>; 2],
+    /// Secure aggregation of the calibration stages, per stage (by
+    /// [`DetectionStage::index`]). Memory only: after a restart a stage's sums start again.
+    stage_secure: [StageSecure; 2],
 }
 
 impl StudyRuntime {
@@ -271,9 +267,7 @@ impl Coordinator {
                 open,
                 detection_complete,
                 last_secure: None,
-                stage_sessions: [None, None],
-                stage_session_count: [0; 2],
-                last_stage_session: [None, None],
+                stage_secure: Default::default(),
             };
             // A crash between the last accepted submission and the closing
             // transaction leaves a complete round open: finish it now.
@@ -363,9 +357,7 @@ impl Coordinator {
                 labels: HashMap::new(),
                 latest: initial,
                 last_secure: None,
-                stage_sessions: [None, None],
-                stage_session_count: [0; 2],
-                last_stage_session: [None, None],
+                stage_secure: Default::default(),
                 rounds_completed: 0,
                 last_round_id: 0,
                 open: None,
@@ -803,12 +795,12 @@ impl Coordinator {
         let mut changed = false;
         for rt in studies.values_mut() {
             for stage in DetectionStage::ALL {
-                let due = rt.stage_sessions[stage.index()]
-                    .as_ref()
-                    .is_some_and(|s| now_ms > s.deadline_ms());
+                let due = rt.stage_secure[stage.index()]
+                    .running
+                    .iter()
+                    .any(|s| now_ms > s.deadline_ms());
                 if due {
-                    advance_stage_session(store, rt, stage, now_ms, true)?;
-                    changed = true;
+                    changed |= advance_stage_sessions(store, rt, stage, now_ms, true)?;
                 }
                 if rt.detection_complete[stage.index()] {
                     continue;
@@ -1579,6 +1571,27 @@ fn maybe_open_round(
     Ok(true)
 }
 
+#[cfg(test)]
+mod shard_tests {
+    /// 9 devices at most 4 per session: 3 of 3; 10 at most 4: 4, 3, 3; 4 at most 4: one;
+    /// 5 at most 4: 3 and 2 (never a session of one).
+    #[test]
+    fn shards_are_few_and_even() {
+        let ids: Vec<u64> = (1..=10).collect();
+        let sizes =
+            |n: usize| -> Vec<usize> { super::shards(&ids[..n], 4).iter().map(Vec::len).collect() };
+        assert_eq!(sizes(9), vec![3, 3, 3]);
+        assert_eq!(sizes(10), vec![4, 3, 3]);
+        assert_eq!(sizes(4), vec![4]);
+        assert_eq!(sizes(5), vec![3, 2]);
+        assert_eq!(
+            super::shards(&ids, 4).concat(),
+            ids,
+            "every device once, in order"
+        );
+    }
+}
+
 /// Which secure sum a `SecureStep` call is about.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum SecureSum {
@@ -1609,57 +1622,44 @@ fn stage_open(store: &Store, rt: &StudyRuntime, stage: DetectionStage) -> Result
     )))
 }
 
-/// One `SecureStep` call for calibration `stage` (the secure replacement of
-/// `SubmitDetectionStats`): `session` 0 asks to join the current session (opened here with
-/// every active device when none is open), another names the session a message belongs to.
-/// Returns the answer and whether anything changed.
-fn secure_stage_step(
-    store: &mut Store,
-    rt: &mut StudyRuntime,
-    device_id: u64,
-    session: u64,
-    stage: DetectionStage,
-    message: Option<DeviceMessage>,
-    now_ms: i64,
-) -> Result<(SecureNext, bool)> {
-    let i = stage.index();
-    let ended = |rt: &StudyRuntime, session: u64| {
-        EndedSum::answer(
-            rt.last_stage_session[i].as_ref(),
-            session,
-            device_id,
-            || format!("{} session {session} is over", stage.as_str()),
-        )
-    };
-    if rt.detection_complete[i] {
-        // Asking to join a complete stage is asking about its last session.
-        let last = rt.last_stage_session[i].as_ref().map_or(0, |l| l.id);
-        return Ok((ended(rt, if session == 0 { last } else { session }), false));
-    }
-    stage_open(store, rt, stage)?;
-    let mut changed = false;
-    if rt.stage_sessions[i].is_none() {
-        refresh_revocations(store, rt)?;
-        let sa = rt.config.secure_aggregation.expect("checked by the caller");
-        let members: Vec<u64> = rt
-            .devices
-            .iter()
-            .filter(|(_, d)| !d.revoked)
-            .map(|(&id, _)| id)
-            .collect();
+/// The secure sums of one calibration stage. The stage's devices are split into shards of
+/// at most `secure_aggregation.max_session_devices` (the protocol's cost grows with the
+/// square of a session's size), each summed in its own session; the stage completes with
+/// the total of its shards' sums. A failed shard is run again as a new session.
+#[derive(Debug, Default)]
+struct StageSecure {
+    /// Shard sessions still running.
+    running: Vec<SecureRound>,
+    /// The sum of the shards completed so far.
+    summed: Option<crate::secure_round::StageSum>,
+    /// Every ended session, by its number.
+    ended: BTreeMap<u64, EndedSum>,
+    /// Sessions opened so far (the next one's number is one more).
+    opened: u64,
+}
+
+impl StageSecure {
+    /// Opens a session for `members` of `stage`.
+    fn open_session(
+        &mut self,
+        config: &StudyConfig,
+        stage: DetectionStage,
+        members: Vec<u64>,
+        keys_deadline_ms: i64,
+    ) -> Result<()> {
+        let sa = config
+            .secure_aggregation
+            .expect("only a study with secure aggregation has secure sessions");
         let per_group = stage == DetectionStage::EpisodeHistogram
-            && rt
-                .config
+            && config
                 .subgroups
                 .as_ref()
                 .is_some_and(|g| g.calibrate_per_group);
-        let group_levels = match (&rt.config.subgroups, per_group) {
+        let group_levels = match (&config.subgroups, per_group) {
             (Some(g), true) => g.levels.clone(),
             _ => Vec::new(),
         };
-        let stage_deadline = stage_deadline_ms(store, rt, stage)?.unwrap_or(now_ms);
-        let keys_deadline = stage_deadline.max(now_ms + sa.phase_deadline_ms as i64);
-        let number = rt.stage_session_count[i] + 1;
+        let number = self.opened + 1;
         let task = SecureTask {
             members,
             threshold: 0,
@@ -1671,35 +1671,115 @@ fn secure_stage_step(
             group_slot: None,
             dp: None,
         };
-        let opened = SecureRound::open(task, keys_deadline, sa.phase_deadline_ms)
+        let session = SecureRound::open(task, keys_deadline_ms, sa.phase_deadline_ms)
             .map_err(|e| AggregatorError::FailedPrecondition(format!("stage: {e}")))?;
-        tracing::info!(study = %rt.config.study_id, stage = stage.as_str(), session = number, members = opened.task().members.len(), "secure calibration session opened");
-        rt.stage_session_count[i] = number;
-        rt.stage_sessions[i] = Some(opened);
+        tracing::info!(study = %config.study_id, stage = stage.as_str(), session = number, members = session.task().members.len(), "secure calibration session opened");
+        self.opened = number;
+        self.running.push(session);
+        Ok(())
+    }
+}
+
+/// `members` (sorted) in the fewest shards of at most `max` devices (`max` ≥ 4), of sizes
+/// that differ by at most one, so each holds at least 2 when there are at least 2 members.
+fn shards(members: &[u64], max: usize) -> Vec<Vec<u64>> {
+    let count = members.len().div_ceil(max.max(4)).max(1);
+    let (base, extra) = (members.len() / count, members.len() % count);
+    let mut out = Vec::with_capacity(count);
+    let mut at = 0;
+    for k in 0..count {
+        let size = base + usize::from(k < extra);
+        out.push(members[at..at + size].to_vec());
+        at += size;
+    }
+    out
+}
+
+/// One `SecureStep` call for calibration `stage` (the secure replacement of
+/// `SubmitDetectionStats`): `session` 0 asks to join the device's shard session (the stage's
+/// shards are opened here, over every active device, on the first call), another names the
+/// session a message belongs to. Returns the answer and whether anything changed.
+fn secure_stage_step(
+    store: &mut Store,
+    rt: &mut StudyRuntime,
+    device_id: u64,
+    session: u64,
+    stage: DetectionStage,
+    message: Option<DeviceMessage>,
+    now_ms: i64,
+) -> Result<(SecureNext, bool)> {
+    let i = stage.index();
+    let ended = |rt: &StudyRuntime, session: u64| {
+        let found = rt.stage_secure[i].ended.get(&session);
+        EndedSum::answer(found, session, device_id, || {
+            format!("{} session {session} is over", stage.as_str())
+        })
+    };
+    if rt.detection_complete[i] {
+        // Asking to join a complete stage is asking about the device's last session.
+        let last = rt.stage_secure[i]
+            .ended
+            .values()
+            .rev()
+            .find(|e| e.included.contains(&device_id))
+            .map_or(session, |e| e.id);
+        return Ok((ended(rt, if session == 0 { last } else { session }), false));
+    }
+    stage_open(store, rt, stage)?;
+    let mut changed = false;
+    let secure = &rt.stage_secure[i];
+    if secure.running.is_empty() && secure.summed.is_none() && secure.opened == 0 {
+        refresh_revocations(store, rt)?;
+        let sa = rt.config.secure_aggregation.expect("checked by the caller");
+        let members: Vec<u64> = rt
+            .devices
+            .iter()
+            .filter(|(_, d)| !d.revoked)
+            .map(|(&id, _)| id)
+            .collect();
+        let stage_deadline = stage_deadline_ms(store, rt, stage)?.unwrap_or(now_ms);
+        let keys_deadline = stage_deadline.max(now_ms + sa.phase_deadline_ms as i64);
+        for shard in shards(&members, sa.max_session_devices as usize) {
+            rt.stage_secure[i].open_session(&rt.config, stage, shard, keys_deadline)?;
+        }
         changed = true;
     }
-    let current = rt.stage_sessions[i].as_mut().expect("opened above");
-    let number = current.task().session;
     if session == 0 {
-        if current.accepts_keys_from(device_id)
-            && current.task().members.binary_search(&device_id).is_ok()
-        {
-            let mut task = current.task().clone();
-            let group = rt.devices.get(&device_id).and_then(|d| d.group.as_ref());
-            task.group_slot = group.and_then(|g| task.group_levels.iter().position(|l| l == g));
-            return Ok((SecureNext::Start(task), changed));
-        }
-        return Ok((
-            SecureNext::Wait(format!(
-                "{} session {number} runs without this device; wait for it to end",
-                stage.as_str()
-            )),
-            changed,
-        ));
+        let mine = rt.stage_secure[i]
+            .running
+            .iter()
+            .find(|s| s.task().members.binary_search(&device_id).is_ok());
+        return Ok(match mine {
+            Some(s) if s.accepts_keys_from(device_id) => {
+                let mut task = s.task().clone();
+                let group = rt.devices.get(&device_id).and_then(|d| d.group.as_ref());
+                task.group_slot = group.and_then(|g| task.group_levels.iter().position(|l| l == g));
+                (SecureNext::Start(task), changed)
+            }
+            Some(s) => (
+                SecureNext::Wait(format!(
+                    "{} session {} runs without this device; wait for it to end",
+                    stage.as_str(),
+                    s.task().session
+                )),
+                changed,
+            ),
+            None => (
+                SecureNext::Wait(format!(
+                    "no {} session of this device is running; wait for the stage to complete",
+                    stage.as_str()
+                )),
+                changed,
+            ),
+        });
     }
-    if session != number {
+    let Some(current) = rt.stage_secure[i]
+        .running
+        .iter_mut()
+        .find(|s| s.task().session == session)
+    else {
         return Ok((ended(rt, session), changed));
-    }
+    };
     if let Some(message) = message {
         let field = secure_field(&message);
         if let Some(done) = current
@@ -1709,18 +1789,23 @@ fn secure_stage_step(
             return Ok((done, changed));
         }
     }
-    changed |= advance_stage_session(store, rt, stage, now_ms, false)?;
-    let answer = match &rt.stage_sessions[i] {
-        Some(current) if current.task().session == session => current.next_for(device_id),
-        _ => ended(rt, session),
+    changed |= advance_stage_sessions(store, rt, stage, now_ms, false)?;
+    let answer = match rt.stage_secure[i]
+        .running
+        .iter()
+        .find(|s| s.task().session == session)
+    {
+        Some(current) => current.next_for(device_id),
+        None => ended(rt, session),
     };
     Ok((answer, changed))
 }
 
-/// [`advance_secure`] for calibration `stage`'s session: after the last phase the decoded
-/// sum completes the stage (stored as a plain stage's would be, without any device's
-/// statistics); a failed session ends and the next `SecureStep` opens a new one.
-fn advance_stage_session(
+/// [`advance_secure`] for calibration `stage`'s shard sessions: a shard's decoded sum is
+/// added to the stage's; once no shard runs, the total completes the stage (stored as a
+/// plain stage's would be, without any device's statistics); a failed shard is run again
+/// as a new session with its members that are still active.
+fn advance_stage_sessions(
     store: &mut Store,
     rt: &mut StudyRuntime,
     stage: DetectionStage,
@@ -1729,50 +1814,100 @@ fn advance_stage_session(
 ) -> Result<bool> {
     let i = stage.index();
     let min_quorum = rt.config.min_quorum as usize;
-    let Some(session) = rt.stage_sessions[i].as_mut() else {
-        return Ok(false);
-    };
-    let number = session.task().session;
-    match session.advance(now_ms, deadline_passed, min_quorum) {
-        Advance::None => Ok(false),
-        Advance::Next => Ok(true),
-        Advance::Done { sum, included } => {
-            let (n_devices, total, group_sums) =
-                decode_stage(stage, &session.task().group_levels, &sum);
-            let completed = CompletedStage {
-                completed_ms: now_ms,
-                n_devices,
-                sum: total,
-                group_sums,
-            };
-            store.complete_stage(&rt.config.study_id, &completed)?;
-            rt.detection_complete[i] = true;
-            rt.stage_sessions[i] = None;
-            tracing::info!(study = %rt.config.study_id, stage = stage.as_str(), devices = n_devices, "calibration stage complete (secure sum)");
-            rt.last_stage_session[i] = Some(EndedSum {
-                id: number,
-                included,
-                reason: format!(
-                    "{} complete: the sum of {n_devices} devices' statistics is published",
-                    stage.as_str()
-                ),
-            });
-            Ok(true)
-        }
-        Advance::Failed(why) => {
-            tracing::warn!(study = %rt.config.study_id, stage = stage.as_str(), session = number, reason = %why, "secure calibration session failed; a new one opens");
-            rt.stage_sessions[i] = None;
-            rt.last_stage_session[i] = Some(EndedSum {
-                id: number,
-                included: BTreeSet::new(),
-                reason: format!(
-                    "{} session {number} failed and a new one opens: {why}",
-                    stage.as_str()
-                ),
-            });
-            Ok(true)
+    let mut changed = false;
+    let mut k = 0;
+    while k < rt.stage_secure[i].running.len() {
+        let session = &mut rt.stage_secure[i].running[k];
+        let number = session.task().session;
+        let due = deadline_passed && now_ms > session.deadline_ms();
+        match session.advance(now_ms, due, min_quorum) {
+            Advance::None => k += 1,
+            Advance::Next => {
+                changed = true;
+                k += 1;
+            }
+            Advance::Done { sum, included } => {
+                let (n, total, groups) = decode_stage(stage, &session.task().group_levels, &sum);
+                let secure = &mut rt.stage_secure[i];
+                secure.running.remove(k);
+                let summed = secure
+                    .summed
+                    .get_or_insert_with(|| (0, DetectionStats::zero(stage), BTreeMap::new()));
+                summed.0 += n;
+                summed.1.add(&total);
+                for (level, (gn, gs)) in groups {
+                    let entry = summed
+                        .2
+                        .entry(level)
+                        .or_insert_with(|| (0, DetectionStats::zero(stage)));
+                    entry.0 += gn;
+                    entry.1.add(&gs);
+                }
+                secure.ended.insert(
+                    number,
+                    EndedSum {
+                        id: number,
+                        included,
+                        reason: format!(
+                            "{} session {number} summed {n} devices' statistics",
+                            stage.as_str()
+                        ),
+                    },
+                );
+                changed = true;
+            }
+            Advance::Failed(why) => {
+                tracing::warn!(study = %rt.config.study_id, stage = stage.as_str(), session = number, reason = %why, "secure calibration session failed; its shard runs again");
+                let failed = rt.stage_secure[i].running.remove(k);
+                rt.stage_secure[i].ended.insert(
+                    number,
+                    EndedSum {
+                        id: number,
+                        included: BTreeSet::new(),
+                        reason: format!(
+                            "{} session {number} failed and its devices are summed again in a new one: {why}",
+                            stage.as_str()
+                        ),
+                    },
+                );
+                refresh_revocations(store, rt)?;
+                let members: Vec<u64> = failed
+                    .task()
+                    .members
+                    .iter()
+                    .copied()
+                    .filter(|id| rt.devices.get(id).is_some_and(|d| !d.revoked))
+                    .collect();
+                let phase = rt
+                    .config
+                    .secure_aggregation
+                    .map_or(0, |sa| sa.phase_deadline_ms as i64);
+                if let Err(e) =
+                    rt.stage_secure[i].open_session(&rt.config, stage, members, now_ms + phase)
+                {
+                    // Too few devices left in the shard: the stage goes on without it.
+                    tracing::warn!(study = %rt.config.study_id, stage = stage.as_str(), error = %e, "a failed shard cannot run again");
+                }
+                changed = true;
+            }
         }
     }
+    let secure = &mut rt.stage_secure[i];
+    if secure.running.is_empty()
+        && let Some((n_devices, sum, group_sums)) = secure.summed.take()
+    {
+        let completed = CompletedStage {
+            completed_ms: now_ms,
+            n_devices,
+            sum,
+            group_sums,
+        };
+        store.complete_stage(&rt.config.study_id, &completed)?;
+        rt.detection_complete[i] = true;
+        tracing::info!(study = %rt.config.study_id, stage = stage.as_str(), devices = n_devices, "calibration stage complete (secure sums)");
+        changed = true;
+    }
+    Ok(changed)
 }
 
 /// The `SecureStep` field a message came in, for refusals.

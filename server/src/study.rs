@@ -112,6 +112,15 @@ pub struct SecureAggregation {
     /// Fractional bits of the fixed-point encoding of the inputs.
     #[serde(default = "default_frac_bits")]
     pub frac_bits: u32,
+    /// Most devices in one calibration session: a stage's devices are split into sessions
+    /// of at most this many (the protocol's cost grows with the square of a session's
+    /// size), and the aggregator learns each session's sum.
+    #[serde(default = "default_max_session_devices")]
+    pub max_session_devices: u32,
+}
+
+fn default_max_session_devices() -> u32 {
+    500
 }
 
 impl Default for SecureAggregation {
@@ -119,6 +128,7 @@ impl Default for SecureAggregation {
         Self {
             phase_deadline_ms: default_phase_deadline_ms(),
             frac_bits: default_frac_bits(),
+            max_session_devices: default_max_session_devices(),
         }
     }
 }
@@ -351,6 +361,12 @@ impl StudyConfig {
             }
             if self.min_quorum < 2 {
                 return Err("secure_aggregation: min_quorum must be at least 2".into());
+            }
+            if sa.max_session_devices < 4 {
+                return Err(format!(
+                    "secure_aggregation.max_session_devices must be at least 4, got {}",
+                    sa.max_session_devices
+                ));
             }
             if sa.phase_deadline_ms == 0 {
                 return Err("secure_aggregation.phase_deadline_ms must be positive".into());
