@@ -4,6 +4,8 @@
 //! (`plimsoll_server::study::fedavg`, McMahan et al. 2017) and the plain sum of the same
 //! encoded inputs.
 
+use std::sync::Arc;
+
 use plimsoll_device::client::{FlagSharing, authorized};
 use plimsoll_device::signal::Signal;
 use plimsoll_proto::auth::DeviceCredential;
@@ -115,6 +117,41 @@ async fn run(server: &TestServer, d: &TestDevice, stop: Stop, lie: bool) -> Opti
             done @ SecureNext::Finished { .. } => return Some(done),
             SecureNext::Start(task) => panic!("a training round offered a session: {task:?}"),
         };
+    }
+}
+
+/// One secure round run honestly by every device of `credentials`: device `k` fetches its
+/// task, takes `input(k, &task, current)` as its plain input (`current`: the signal's shared
+/// parameters) and runs to the end; every device must end with its input in the sum.
+async fn honest_round<F>(server: &Arc<TestServer>, credentials: &[DeviceCredential], input: F)
+where
+    F: Fn(usize, &SecureTask, &[f64]) -> Vec<f64> + Send + Sync + 'static,
+{
+    let input = Arc::new(input);
+    let mut tasks = tokio::task::JoinSet::new();
+    for (k, credential) in credentials.iter().enumerate() {
+        let (server, credential, input) = (server.clone(), credential.clone(), input.clone());
+        tasks.spawn(async move {
+            let (round_id, task) = fetch(&server, &credential).await;
+            let current = server.coordinator.prior(STUDY, None).unwrap().params[0]
+                .values
+                .clone();
+            let plain = input(k, &task, &current);
+            let d = TestDevice {
+                credential,
+                task,
+                round_id,
+                plain,
+            };
+            run(&server, &d, Stop::Never, false).await
+        });
+    }
+    while let Some(joined) = tasks.join_next().await {
+        let answer = joined.unwrap();
+        assert!(
+            matches!(answer, Some(SecureNext::Finished { included: true, .. })),
+            "{answer:?}"
+        );
     }
 }
 
@@ -244,8 +281,8 @@ async fn a_secure_round_survives_drops_at_each_phase_and_publishes_fedavg_of_the
         Stop::Never,
         Stop::Never,
     ];
-    let server = std::sync::Arc::new(server);
-    let devs = std::sync::Arc::new(devs);
+    let server = Arc::new(server);
+    let devs = Arc::new(devs);
     let mut tasks = tokio::task::JoinSet::new();
     for (k, stop) in stops.into_iter().enumerate() {
         let (server, devs) = (server.clone(), devs.clone());
@@ -322,8 +359,8 @@ async fn a_lying_share_fails_the_round_safely_and_the_round_runs_again() {
     let server =
         TestServer::start(&dir.path().join("agg.db"), vec![secure_study(4, 1, 2_000)]).await;
     let (devs, _) = devices(&server, 4).await;
-    let server = std::sync::Arc::new(server);
-    let devs = std::sync::Arc::new(devs);
+    let server = Arc::new(server);
+    let devs = Arc::new(devs);
     let mut tasks = tokio::task::JoinSet::new();
     for k in 0..4 {
         let (server, devs) = (server.clone(), devs.clone());
@@ -346,30 +383,10 @@ async fn a_lying_share_fails_the_round_safely_and_the_round_runs_again() {
     );
     assert_eq!(status.current_round, 2, "the round runs again");
 
-    // The rerun, everyone honest.
-    let mut again = Vec::new();
-    for d in devs.iter() {
-        let (round_id, task) = fetch(&server, &d.credential).await;
-        again.push(TestDevice {
-            credential: d.credential.clone(),
-            task,
-            round_id,
-            plain: d.plain.clone(),
-        });
-    }
-    let again = std::sync::Arc::new(again);
-    let mut tasks = tokio::task::JoinSet::new();
-    for k in 0..4 {
-        let (server, again) = (server.clone(), again.clone());
-        tasks.spawn(async move { run(&server, &again[k], Stop::Never, false).await });
-    }
-    while let Some(joined) = tasks.join_next().await {
-        let answer = joined.unwrap();
-        assert!(
-            matches!(answer, Some(SecureNext::Finished { included: true, .. })),
-            "{answer:?}"
-        );
-    }
+    // The rerun, everyone honest, with the same inputs.
+    let credentials: Vec<DeviceCredential> = devs.iter().map(|d| d.credential.clone()).collect();
+    let plains: Vec<Vec<f64>> = devs.iter().map(|d| d.plain.clone()).collect();
+    honest_round(&server, &credentials, move |k, _, _| plains[k].clone()).await;
     let prior = server.coordinator.prior(STUDY, None).unwrap();
     assert_eq!((prior.version, prior.round_id), (1, 2));
     assert_eq!(prior.contributions[0].n_devices, 4);
@@ -397,7 +414,7 @@ async fn a_restart_runs_the_secure_round_again_and_robust_rules_are_refused() {
     assert!(matches!(first, SecureNext::Wait(_)), "{first:?}");
     server.stop().await;
 
-    let coordinator = std::sync::Arc::new(plimsoll_server::Coordinator::open(&db).unwrap());
+    let coordinator = Arc::new(plimsoll_server::Coordinator::open(&db).unwrap());
     let status = coordinator.status(STUDY).unwrap();
     assert_eq!(
         status.current_round, 2,
@@ -503,31 +520,13 @@ async fn calibration_stages_are_summed_securely_per_group() {
     let initial = server.coordinator.prior(STUDY, None).unwrap().params[0]
         .values
         .clone();
-    let server = std::sync::Arc::new(server);
-    let mut tasks = tokio::task::JoinSet::new();
-    for (k, credential) in credentials.iter().enumerate() {
-        let (server, credential) = (server.clone(), credential.clone());
+    let server = Arc::new(server);
+    honest_round(&server, &credentials, move |k, task, _| {
         let u = update(&initial, k);
-        tasks.spawn(async move {
-            let (round_id, task) = fetch(&server, &credential).await;
-            let plain = task
-                .plain_input(&[("resting_hr_bpm", &u.0, u.1, u.2)])
-                .unwrap();
-            let d = TestDevice {
-                credential,
-                task,
-                round_id,
-                plain,
-            };
-            run(&server, &d, Stop::Never, false).await
-        });
-    }
-    while let Some(j) = tasks.join_next().await {
-        assert!(matches!(
-            j.unwrap(),
-            Some(SecureNext::Finished { included: true, .. })
-        ));
-    }
+        task.plain_input(&[("resting_hr_bpm", &u.0, u.1, u.2)])
+            .unwrap()
+    })
+    .await;
 
     // Moments of a made-up residual series (valid by construction): day d, signal i has
     // residual sin(d + i + k); every pair is observed on all 30 + k days.
@@ -665,7 +664,7 @@ async fn a_private_secure_round_carries_the_noise_the_accountant_assumes() {
                 .await,
         );
     }
-    let server = std::sync::Arc::new(server);
+    let server = Arc::new(server);
     // Direction (0.6, 0.8, 0, …) at norm 2: clipped to (0.3, 0.4, 0, …).
     let change = [1.2, 1.6, 0.0, 0.0, 0.0, 0.0, 0.0];
     let mut residuals = Vec::new();
@@ -673,37 +672,16 @@ async fn a_private_secure_round_carries_the_noise_the_accountant_assumes() {
         .values
         .clone();
     for round in 1..=20u32 {
-        let mut tasks = tokio::task::JoinSet::new();
-        for credential in &credentials {
-            let (server, credential) = (server.clone(), credential.clone());
-            tasks.spawn(async move {
-                let (round_id, task) = fetch(&server, &credential).await;
-                let current = server.coordinator.prior(STUDY, None).unwrap().params[0]
-                    .values
-                    .clone();
-                let values: Vec<f64> = current.iter().zip(&change).map(|(c, d)| c + d).collect();
-                let plain = task
-                    .private_input(
-                        &[("resting_hr_bpm", &current)],
-                        &[("resting_hr_bpm", &values, 30, 0.5)],
-                        &mut rand::rng(),
-                    )
-                    .unwrap();
-                let d = TestDevice {
-                    credential,
-                    task,
-                    round_id,
-                    plain,
-                };
-                run(&server, &d, Stop::Never, false).await
-            });
-        }
-        while let Some(j) = tasks.join_next().await {
-            assert!(matches!(
-                j.unwrap(),
-                Some(SecureNext::Finished { included: true, .. })
-            ));
-        }
+        honest_round(&server, &credentials, move |_, task, current| {
+            let values: Vec<f64> = current.iter().zip(&change).map(|(c, d)| c + d).collect();
+            task.private_input(
+                &[("resting_hr_bpm", current)],
+                &[("resting_hr_bpm", &values, 30, 0.5)],
+                &mut rand::rng(),
+            )
+            .unwrap()
+        })
+        .await;
         let after = server.coordinator.prior(STUDY, None).unwrap();
         assert_eq!(after.version, round);
         assert_eq!(after.contributions[0].n_devices, 5);

@@ -116,12 +116,7 @@ pub fn likelihood_engine(series: &LocalSeries) -> LikelihoodEngine {
 /// As [`crate::gp::GpRegression::nlml_grad`]; a `values` of the wrong length is a
 /// [`GpError::Shape`].
 pub fn nlml_grad(values: &[f64], series: &LocalSeries) -> gp::Result<(f64, [f64; N_PARAMS])> {
-    let params: &[f64; N_PARAMS] = values.try_into().map_err(|_| {
-        GpError::Shape(format!(
-            "{} parameters given, the prior has {N_PARAMS}",
-            values.len()
-        ))
-    })?;
+    let params = as_params(values)?;
     if let Ok(days) = whole_days(&series.t) {
         match gp_ss::nlml_grad(params, &days, &series.z) {
             Err(GpError::NotPositiveDefinite { .. }) => {}
@@ -132,18 +127,23 @@ pub fn nlml_grad(values: &[f64], series: &LocalSeries) -> gp::Result<(f64, [f64;
     Ok((nlml, gradient_to_wire(&engine_grad)))
 }
 
+/// `values` as the prior's parameter array ([`GpError::Shape`] for another length).
+fn as_params(values: &[f64]) -> gp::Result<&[f64; N_PARAMS]> {
+    values.try_into().map_err(|_| {
+        GpError::Shape(format!(
+            "{} parameters given, the prior has {N_PARAMS}",
+            values.len()
+        ))
+    })
+}
+
 /// NLML of one series without its gradient, from the same engines as [`nlml_grad`] (for
 /// reporting a prior's fit, where the gradient would be work thrown away).
 ///
 /// # Errors
 /// As [`nlml_grad`].
 pub fn nlml(values: &[f64], series: &LocalSeries) -> gp::Result<f64> {
-    let params: &[f64; N_PARAMS] = values.try_into().map_err(|_| {
-        GpError::Shape(format!(
-            "{} parameters given, the prior has {N_PARAMS}",
-            values.len()
-        ))
-    })?;
+    let params = as_params(values)?;
     if let Ok(days) = whole_days(&series.t) {
         match gp_ss::nlml(params, &days, &series.z) {
             Err(GpError::NotPositiveDefinite { .. }) => {}

@@ -34,7 +34,7 @@ use crate::study::{
 };
 
 /// Suggested pause before a device asks again when it has nothing to do.
-const RETRY_AFTER_MS: u32 = 250;
+pub(crate) const RETRY_AFTER_MS: u32 = 250;
 
 #[derive(Debug)]
 struct Device {
@@ -900,7 +900,6 @@ impl Coordinator {
                 rt.last_round_id
             )));
         }
-        let field = message.as_ref().map(secure_field);
         let Some(secure) = rt
             .open
             .as_mut()
@@ -909,14 +908,8 @@ impl Coordinator {
         else {
             return Ok(finished_for(rt, round_id, device_id));
         };
-        if let Some(message) = message {
-            let field = field.unwrap_or_default();
-            if let Some(done) = secure
-                .receive(device_id, message)
-                .map_err(|e| secagg_refusal(field, e))?
-            {
-                return Ok(done);
-            }
+        if let Some(done) = take_message(secure, device_id, message)? {
+            return Ok(done);
         }
         let changed = advance_secure(store, rt, now_ms, false)?;
         let answer = match rt
@@ -1780,14 +1773,8 @@ fn secure_stage_step(
     else {
         return Ok((ended(rt, session), changed));
     };
-    if let Some(message) = message {
-        let field = secure_field(&message);
-        if let Some(done) = current
-            .receive(device_id, message)
-            .map_err(|e| secagg_refusal(field, e))?
-        {
-            return Ok((done, changed));
-        }
+    if let Some(done) = take_message(current, device_id, message)? {
+        return Ok((done, changed));
     }
     changed |= advance_stage_sessions(store, rt, stage, now_ms, false)?;
     let answer = match rt.stage_secure[i]
@@ -1908,6 +1895,22 @@ fn advance_stage_sessions(
         changed = true;
     }
     Ok(changed)
+}
+
+/// Gives `device`'s `message` (if any) to `session` ([`SecureRound::receive`]): `Some`
+/// when the device's part is over (the message came too late); a refusal names the field.
+fn take_message(
+    session: &mut SecureRound,
+    device: u64,
+    message: Option<DeviceMessage>,
+) -> Result<Option<SecureNext>> {
+    let Some(message) = message else {
+        return Ok(None);
+    };
+    let field = secure_field(&message);
+    session
+        .receive(device, message)
+        .map_err(|e| secagg_refusal(field, e))
 }
 
 /// The `SecureStep` field a message came in, for refusals.

@@ -72,6 +72,36 @@ impl AggregatorService {
     }
 }
 
+impl AggregatorService {
+    /// A long-poll of RPC `rpc`: runs the coordinator call `call()` makes (off the async
+    /// threads) until `settled` accepts its answer or `wait_ms` (capped at [`MAX_WAIT_MS`])
+    /// has passed, sleeping between calls until the coordinator publishes a change.
+    async fn long_poll<T, F>(
+        &self,
+        rpc: &'static str,
+        wait_ms: u32,
+        mut call: impl FnMut() -> F,
+        settled: impl Fn(&T) -> bool,
+    ) -> Result<T, Status>
+    where
+        T: Send + 'static,
+        F: FnOnce() -> crate::error::Result<T> + Send + 'static,
+    {
+        let wait = Duration::from_millis(u64::from(wait_ms.min(MAX_WAIT_MS)));
+        let until = tokio::time::Instant::now() + wait;
+        let mut changes = self.coordinator.subscribe();
+        loop {
+            changes.borrow_and_update();
+            let answer = blocking(rpc, call()).await?;
+            if settled(&answer) || tokio::time::Instant::now() >= until {
+                return Ok(answer);
+            }
+            // Sleep until something changes, or the long-poll ends.
+            let _ = tokio::time::timeout_at(until, changes.changed()).await;
+        }
+    }
+}
+
 /// Writes queued `SubmitUpdate` calls: takes every call waiting (up to [`MAX_SUBMIT_BATCH`]),
 /// checks and records them with one [`Coordinator::submit_batch`] off the async threads, answers
 /// each, and repeats. While one batch is written the next one gathers, so under load calls
@@ -190,21 +220,18 @@ impl Aggregator for AggregatorService {
             c.authenticate(&study_id, Some(device_id), &cred)
         })
         .await?;
-        let wait = Duration::from_millis(u64::from(r.wait_ms.min(MAX_WAIT_MS)));
-        let until = tokio::time::Instant::now() + wait;
-        let mut changes = self.coordinator.subscribe();
-        loop {
-            changes.borrow_and_update();
-            let c = self.coordinator.clone();
-            let study_id = r.study_id.clone();
-            let work = blocking("FetchTask", move || c.work_for(&study_id, r.device_id)).await?;
-            let waiting = matches!(work, Work::Wait { .. });
-            if !waiting || tokio::time::Instant::now() >= until {
-                return Ok(Response::new(wire::work_to_pb(work)));
-            }
-            // Sleep until a round opens or closes, or the long-poll ends.
-            let _ = tokio::time::timeout_at(until, changes.changed()).await;
-        }
+        let work = self
+            .long_poll(
+                "FetchTask",
+                r.wait_ms,
+                || {
+                    let (c, study_id) = (self.coordinator.clone(), r.study_id.clone());
+                    move || c.work_for(&study_id, r.device_id)
+                },
+                |work| !matches!(work, Work::Wait { .. }),
+            )
+            .await?;
+        Ok(Response::new(wire::work_to_pb(work)))
     }
 
     async fn secure_step(
@@ -221,34 +248,34 @@ impl Aggregator for AggregatorService {
             ),
             None => None,
         };
-        let wait = Duration::from_millis(u64::from(r.wait_ms.min(MAX_WAIT_MS)));
-        let until = tokio::time::Instant::now() + wait;
-        let mut changes = self.coordinator.subscribe();
-        loop {
-            changes.borrow_and_update();
-            let c = self.coordinator.clone();
-            let (study_id, round_id, cred, m) =
-                (r.study_id.clone(), r.round_id, cred.clone(), message.take());
-            let claimed = r.device_id;
-            let sum = match r.stage {
-                0 => SecureSum::Round(round_id),
-                s => SecureSum::Stage(
-                    wire::detection_stage_from_pb(s)
-                        .map_err(|e| in_rpc(RPC, wire::to_status(e)))?,
-                    round_id,
-                ),
-            };
-            let next = blocking(RPC, move || {
-                c.secure_step(&study_id, claimed, &cred, sum, m, now_ms())
-            })
+        let sum = match r.stage {
+            0 => SecureSum::Round(r.round_id),
+            s => SecureSum::Stage(
+                wire::detection_stage_from_pb(s).map_err(|e| in_rpc(RPC, wire::to_status(e)))?,
+                r.round_id,
+            ),
+        };
+        // The message goes with the first call only; later ones ask what comes next.
+        let next = self
+            .long_poll(
+                RPC,
+                r.wait_ms,
+                || {
+                    let (c, study_id, cred, m) = (
+                        self.coordinator.clone(),
+                        r.study_id.clone(),
+                        cred.clone(),
+                        message.take(),
+                    );
+                    move || c.secure_step(&study_id, r.device_id, &cred, sum, m, now_ms())
+                },
+                |next| !matches!(next, crate::secure_round::SecureNext::Wait(_)),
+            )
             .await?;
-            let waiting = matches!(next, crate::secure_round::SecureNext::Wait(_));
-            if !waiting || tokio::time::Instant::now() >= until {
-                return Ok(Response::new(wire::secure_next_to_pb(next, 250)));
-            }
-            // Sleep until a phase closes, or the long-poll ends.
-            let _ = tokio::time::timeout_at(until, changes.changed()).await;
-        }
+        Ok(Response::new(wire::secure_next_to_pb(
+            next,
+            crate::rounds::RETRY_AFTER_MS,
+        )))
     }
 
     async fn submit_update(
@@ -364,23 +391,18 @@ impl Aggregator for AggregatorService {
             wire::detection_stage_from_pb(r.stage)
         })
         .await?;
-        let wait = Duration::from_millis(u64::from(r.wait_ms.min(MAX_WAIT_MS)));
-        let until = tokio::time::Instant::now() + wait;
-        let mut changes = self.coordinator.subscribe();
-        loop {
-            changes.borrow_and_update();
-            let c = self.coordinator.clone();
-            let study_id = r.study_id.clone();
-            let view = blocking(RPC, move || {
-                c.detection_stage(&study_id, r.device_id, stage)
-            })
+        let view = self
+            .long_poll(
+                RPC,
+                r.wait_ms,
+                || {
+                    let (c, study_id) = (self.coordinator.clone(), r.study_id.clone());
+                    move || c.detection_stage(&study_id, r.device_id, stage)
+                },
+                |view| view.complete,
+            )
             .await?;
-            if view.complete || tokio::time::Instant::now() >= until {
-                return Ok(Response::new(wire::stage_view_to_pb(view)));
-            }
-            // Sleep until something completes, or the long-poll ends.
-            let _ = tokio::time::timeout_at(until, changes.changed()).await;
-        }
+        Ok(Response::new(wire::stage_view_to_pb(view)))
     }
 }
 
