@@ -160,12 +160,14 @@ async fn a_multi_day_departure_is_one_episode_row_updated_in_place_and_reviewed(
         .await
         .unwrap();
     {
-        let mut store = Store::open(&db_path).unwrap();
+        let mut store = Store::open(&crate::support::db_location(&db_path)).unwrap();
         accounts::add_reviewer(&mut store, REVIEWER, PASSWORD, now_ms()).unwrap();
         accounts::assign(&mut store, REVIEWER, STUDY).unwrap();
     }
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-    let review = serve_review(&db_path, listener).await.unwrap();
+    let review = serve_review(&crate::support::db_location(&db_path), listener)
+        .await
+        .unwrap();
     let addr = review.addr;
     let cookie = login(addr, REVIEWER, PASSWORD).await;
     let page = http(addr, "GET", &format!("/flag/{first}"), Some(&cookie), None).await;
@@ -193,7 +195,7 @@ async fn a_multi_day_departure_is_one_episode_row_updated_in_place_and_reviewed(
         .await
         .unwrap();
     assert_eq!(first, second, "the new version replaces the old one");
-    let store = Store::open(&db_path).unwrap();
+    let store = Store::open(&crate::support::db_location(&db_path)).unwrap();
     let rows = db::queue(&store, STUDY, &db::QueueFilter::default()).unwrap();
     assert_eq!(rows.len(), 1, "one queue row per episode: {rows:#?}");
     assert_eq!(rows[0].revisions, 2);

@@ -58,7 +58,7 @@ async fn a_reviewed_episode_exports_as_a_valid_r4_bundle() {
     let f = ReviewFixture::start(dir.path()).await;
     let (alert, _, other) = f.packets;
     {
-        let store = Store::open(&dir.path().join("agg.db")).unwrap();
+        let store = Store::open(&crate::support::db_location(&dir.path().join("agg.db"))).unwrap();
         db::record_action(
             &store,
             alert,
@@ -91,9 +91,12 @@ async fn a_reviewed_episode_exports_as_a_valid_r4_bundle() {
 
     let counts = validate_r4(&r.body);
     let bundle: Value = serde_json::from_str(&r.body).unwrap();
-    let record = db::flag(&Store::open(&dir.path().join("agg.db")).unwrap(), alert)
-        .unwrap()
-        .unwrap();
+    let record = db::flag(
+        &Store::open(&crate::support::db_location(&dir.path().join("agg.db"))).unwrap(),
+        alert,
+    )
+    .unwrap()
+    .unwrap();
     let days: usize = record.packet.signals.iter().map(|w| w.days.len()).sum();
     assert_eq!(
         counts["Observation"], days as u64,

@@ -54,7 +54,7 @@ async fn submit(
 }
 
 fn stored(dir: &std::path::Path) -> Vec<db::QueueEntry> {
-    let store = Store::open(&dir.join("agg.db")).unwrap();
+    let store = Store::open(&crate::support::db_location(&dir.join("agg.db"))).unwrap();
     db::queue(&store, STUDY, &db::QueueFilter::default()).unwrap()
 }
 
@@ -88,7 +88,7 @@ async fn consenting_device_packet_is_stored_and_resending_is_idempotent() {
         ]
     );
     assert_eq!(rows[0].revisions, 1);
-    let store = Store::open(&dir.path().join("agg.db")).unwrap();
+    let store = Store::open(&crate::support::db_location(&dir.path().join("agg.db"))).unwrap();
     let record = db::flag(&store, first).unwrap().unwrap();
     // The involved signals come first, and the window is the 28 days before
     // the episode's start through the last scored day.

@@ -17,6 +17,7 @@ mod pooled;
 mod privacy;
 mod prospective;
 mod python_device;
+mod replicas;
 mod review_access;
 mod review_browser;
 mod review_login_limits;

@@ -92,9 +92,13 @@ async fn metrics_parse_with_the_reference_parser_and_count_what_happened() {
     let server =
         TestServer::start(&db, vec![study_config(STUDY, &[Signal::RestingHr], 2, 2)]).await;
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-    let metrics = serve_metrics(listener, server.server.metrics.clone(), &db)
-        .await
-        .unwrap();
+    let metrics = serve_metrics(
+        listener,
+        server.server.metrics.clone(),
+        &crate::support::db_location(&db),
+    )
+    .await
+    .unwrap();
     let signals = ["resting_hr_bpm"];
     let a = server
         .enroll(STUDY, "p-a", &signals, FlagSharing::Withheld)
@@ -160,7 +164,7 @@ async fn metrics_parse_with_the_reference_parser_and_count_what_happened() {
     );
     // Revoked through the database, as the operator's command line does.
     {
-        let mut store = Store::open(&db).unwrap();
+        let mut store = Store::open(&crate::support::db_location(&db)).unwrap();
         store
             .revoke_device(b.device_id, plimsoll_server::service::now_ms())
             .unwrap();
@@ -203,7 +207,7 @@ async fn metrics_parse_with_the_reference_parser_and_count_what_happened() {
         1.0
     );
     // Every round opened is closed or still open here (none was abandoned).
-    let store = Store::open(&db).unwrap();
+    let store = Store::open(&crate::support::db_location(&db)).unwrap();
     let opened_in_db = store.rounds_completed(STUDY).unwrap()
         + u32::from(store.open_round(STUDY).unwrap().is_some());
     drop(store);

@@ -87,7 +87,9 @@ async fn a_revoked_device_is_dropped_and_the_others_finish() {
     // The round that selected the revoked device closes at its deadline with a quorum.
     config.min_quorum = 3;
     config.round_deadline_ms = 300;
-    let coordinator = Arc::new(Coordinator::open(&dir.path().join("agg.db")).unwrap());
+    let coordinator = Arc::new(
+        Coordinator::open(&crate::support::db_location(&dir.path().join("agg.db"))).unwrap(),
+    );
     let code = coordinator.create_study(config, now_ms()).unwrap();
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let server = plimsoll_server::serve(coordinator.clone(), listener)
@@ -194,7 +196,8 @@ async fn a_device_that_cannot_enrol_is_dropped_and_the_study_starts_without_it()
 #[test]
 fn a_study_cannot_be_started_early_below_its_quorum_or_twice() {
     let dir = tempfile::tempdir().unwrap();
-    let coordinator = Coordinator::open(&dir.path().join("agg.db")).unwrap();
+    let coordinator =
+        Coordinator::open(&crate::support::db_location(&dir.path().join("agg.db"))).unwrap();
     let mut config = study_config("early", &[plimsoll_device::signal::Signal::RestingHr], 4, 2);
     config.min_quorum = 2;
     let code = coordinator.create_study(config, now_ms()).unwrap();
@@ -233,7 +236,8 @@ fn a_study_cannot_be_started_early_below_its_quorum_or_twice() {
     assert!(err.to_string().contains("already started"), "{err}");
     // The new threshold is stored: a restarted aggregator keeps it.
     drop(coordinator);
-    let reopened = Coordinator::open(&dir.path().join("agg.db")).unwrap();
+    let reopened =
+        Coordinator::open(&crate::support::db_location(&dir.path().join("agg.db"))).unwrap();
     assert_eq!(
         reopened.status("early").unwrap().config.start_when_enrolled,
         2

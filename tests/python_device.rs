@@ -119,7 +119,9 @@ async fn a_python_device_takes_part_in_every_round_beside_rust_devices_over_tls(
     )
     .unwrap();
     let identity = TlsIdentity::load(&files.cert, &files.key).unwrap();
-    let coordinator = Arc::new(Coordinator::open(&dir.path().join("agg.db")).unwrap());
+    let coordinator = Arc::new(
+        Coordinator::open(&crate::support::db_location(&dir.path().join("agg.db"))).unwrap(),
+    );
     // Three devices, all needed for a round; two rounds.
     let code = coordinator
         .create_study(

@@ -46,7 +46,7 @@ fn short(account: u32, address: u32) -> LoginLimits {
 }
 
 fn events(dir: &std::path::Path) -> Vec<(String, String, String, String)> {
-    let store = Store::open(&dir.join("agg.db")).unwrap();
+    let store = Store::open(&crate::support::db_location(&dir.join("agg.db"))).unwrap();
     limits::records(&store)
         .unwrap()
         .into_iter()

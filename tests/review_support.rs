@@ -353,16 +353,17 @@ impl ReviewFixture {
         let other = other_sender.send(&scenario_packet()).await.unwrap();
 
         {
-            let mut store = Store::open(&db).unwrap();
+            let mut store = Store::open(&crate::support::db_location(&db)).unwrap();
             accounts::add_reviewer(&mut store, REVIEWER, PASSWORD, now_ms()).unwrap();
             accounts::assign(&mut store, REVIEWER, STUDY).unwrap();
             accounts::add_reviewer(&mut store, OUTSIDER, PASSWORD, now_ms()).unwrap();
             accounts::assign(&mut store, OUTSIDER, OTHER_STUDY).unwrap();
         }
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-        let review = serve_review_limited(&db, listener, None, limits)
-            .await
-            .unwrap();
+        let review =
+            serve_review_limited(&crate::support::db_location(&db), listener, None, limits)
+                .await
+                .unwrap();
         ReviewFixture {
             grpc,
             review,

@@ -340,7 +340,7 @@ async fn a_secure_round_survives_drops_at_each_phase_and_publishes_fedavg_of_the
     assert!((prior.contributions[0].mean_local_loss - loss).abs() < 1e-6);
 
     // The aggregator stored no individual update.
-    let store = plimsoll_server::store::Store::open(&db).unwrap();
+    let store = plimsoll_server::store::Store::open(&crate::support::db_location(&db)).unwrap();
     for d in devs.iter() {
         assert_eq!(
             store.submission(STUDY, 1, d.credential.device_id).unwrap(),
@@ -414,7 +414,8 @@ async fn a_restart_runs_the_secure_round_again_and_robust_rules_are_refused() {
     assert!(matches!(first, SecureNext::Wait(_)), "{first:?}");
     server.stop().await;
 
-    let coordinator = Arc::new(plimsoll_server::Coordinator::open(&db).unwrap());
+    let coordinator =
+        Arc::new(plimsoll_server::Coordinator::open(&crate::support::db_location(&db)).unwrap());
     let status = coordinator.status(STUDY).unwrap();
     assert_eq!(
         status.current_round, 2,
@@ -618,7 +619,7 @@ async fn calibration_stages_are_summed_securely_per_group() {
             }
             other => panic!("{other:?}"),
         }
-        let store = plimsoll_server::store::Store::open(&db).unwrap();
+        let store = plimsoll_server::store::Store::open(&crate::support::db_location(&db)).unwrap();
         assert!(
             store
                 .detection_submissions(STUDY, stage)

@@ -580,7 +580,10 @@ async fn a_batch_of_submissions_is_answered_call_by_call() {
 
     // What was recorded survives a restart: the same prior, and device a's retry of its
     // accepted call is still answered as accepted (its row is in the database).
-    let reopened = plimsoll_server::Coordinator::open(&dir.path().join("agg.db")).unwrap();
+    let reopened = plimsoll_server::Coordinator::open(&crate::support::db_location(
+        &dir.path().join("agg.db"),
+    ))
+    .unwrap();
     assert_eq!(reopened.prior(STUDY, None).unwrap(), prior);
     let retry = reopened.submit_batch(vec![call(&a, 1.0, 10)], plimsoll_server::service::now_ms());
     assert!(retry[0].as_ref().unwrap().round_closed);
@@ -640,7 +643,7 @@ async fn a_data_summary_is_kept_replaced_and_refused_when_it_cannot_be_true() {
     );
     assert_eq!(e.code(), Code::PermissionDenied, "{}", e.message());
     // Nothing was stored by the refusals.
-    let store = plimsoll_server::store::Store::open(&db).unwrap();
+    let store = plimsoll_server::store::Store::open(&crate::support::db_location(&db)).unwrap();
     assert!(store.data_summaries(STUDY).unwrap().is_empty());
     drop(store);
 
@@ -652,7 +655,7 @@ async fn a_data_summary_is_kept_replaced_and_refused_when_it_cannot_be_true() {
         .submit_data_summary(authorized(&a, summary(&a, 25, "2024-01-31")))
         .await
         .unwrap();
-    let store = plimsoll_server::store::Store::open(&db).unwrap();
+    let store = plimsoll_server::store::Store::open(&crate::support::db_location(&db)).unwrap();
     let kept = store.data_summaries(STUDY).unwrap();
     assert_eq!(kept.len(), 1, "the newer summary replaces the older");
     assert_eq!(kept[0].0, a.device_id);

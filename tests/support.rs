@@ -2,7 +2,7 @@
 //! configurations, and a gRPC client.
 
 use std::collections::BTreeMap;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use plimsoll_device::client::{EnrollmentRequest, FlagSharing, enroll, new_device_secret};
@@ -14,6 +14,29 @@ use plimsoll_proto::v1::aggregator_client::AggregatorClient;
 use plimsoll_server::service::now_ms;
 use plimsoll_server::{Coordinator, LocalTraining, RunningServer, StudyConfig};
 use tonic::transport::Channel;
+
+/// Where a test's aggregator database lives: `path` (a SQLite file), or, when the suite
+/// runs against PostgreSQL (`PLIMSOLL_TEST_STORE=postgres`, see `scripts/test`), a database
+/// on the test cluster named after `path`, created on first use, so that every test that
+/// opens the same path reaches the same database.
+pub fn db_location(path: &Path) -> PathBuf {
+    let already_postgres = path
+        .to_str()
+        .is_some_and(plimsoll_server::db::is_postgres_url);
+    if already_postgres || std::env::var("PLIMSOLL_TEST_STORE").as_deref() != Ok("postgres") {
+        return path.to_path_buf();
+    }
+    use std::hash::{Hash, Hasher};
+    let mut h = std::collections::hash_map::DefaultHasher::new();
+    path.hash(&mut h);
+    let name = format!("t_{:016x}", h.finish());
+    PathBuf::from(plimsoll_server::db::test_database_named(&name))
+}
+
+/// A new database for one test on the PostgreSQL test cluster, or `None` (skipped).
+pub fn fresh_postgres_database(test: &str) -> Option<String> {
+    plimsoll_server::db::test_database(test)
+}
 
 /// A study over `signals` with `devices` expected devices, all selected each round.
 pub fn study_config(id: &str, signals: &[Signal], devices: u32, rounds: u32) -> StudyConfig {
@@ -49,7 +72,7 @@ pub struct TestServer {
 
 impl TestServer {
     pub async fn start(db: &Path, studies: Vec<StudyConfig>) -> TestServer {
-        let coordinator = Arc::new(Coordinator::open(db).expect("open database"));
+        let coordinator = Arc::new(Coordinator::open(&db_location(db)).expect("open database"));
         let mut codes = BTreeMap::new();
         for s in studies {
             let id = s.study_id.clone();

@@ -47,7 +47,9 @@ fn address(url: String, ca: &Path) -> AggregatorAddress {
 async fn devices_train_over_grpc_with_tls_and_untrusted_clients_get_nothing() {
     let dir = tempfile::tempdir().unwrap();
     let (files, identity) = dev_cert(&dir.path().join("certs"));
-    let coordinator = Arc::new(Coordinator::open(&dir.path().join("agg.db")).unwrap());
+    let coordinator = Arc::new(
+        Coordinator::open(&crate::support::db_location(&dir.path().join("agg.db"))).unwrap(),
+    );
     let code = coordinator
         .create_study(study_config(STUDY, &[Signal::RestingHr], 1, 1), now_ms())
         .unwrap();
@@ -189,16 +191,16 @@ async fn review_pages_are_served_over_https_with_secure_cookies() {
     let (files, identity) = dev_cert(&dir.path().join("certs"));
     let db = dir.path().join("agg.db");
     {
-        let coordinator = Coordinator::open(&db).unwrap();
+        let coordinator = Coordinator::open(&crate::support::db_location(&db)).unwrap();
         coordinator
             .create_study(study_config(STUDY, &[Signal::RestingHr], 1, 1), now_ms())
             .unwrap();
-        let mut store = Store::open(&db).unwrap();
+        let mut store = Store::open(&crate::support::db_location(&db)).unwrap();
         accounts::add_reviewer(&mut store, "rev-tls", "a long enough password", now_ms()).unwrap();
         accounts::assign(&mut store, "rev-tls", STUDY).unwrap();
     }
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-    let review = serve_review_with(&db, listener, Some(&identity))
+    let review = serve_review_with(&crate::support::db_location(&db), listener, Some(&identity))
         .await
         .unwrap();
     assert!(review.url().starts_with("https://"), "{}", review.url());

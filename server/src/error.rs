@@ -24,19 +24,28 @@ pub enum AggregatorError {
     /// of another study, a request for another device (PERMISSION_DENIED).
     #[error("{0}")]
     PermissionDenied(String),
-    /// The embedded database failed.
+    /// The database (SQLite or PostgreSQL) failed.
     #[error("database: {0}")]
-    Database(#[from] rusqlite::Error),
+    Database(crate::db::DbError),
     /// The transaction this call's change shared with others (a group commit) failed, so
     /// nothing of it was applied; the message is the database's.
     #[error("database: {0}")]
     Unapplied(String),
+    /// Another aggregator process on the same database changed the state first (closed the
+    /// round, opened the next one); this one re-reads the state (ABORTED: try again).
+    #[error("{0}")]
+    Superseded(String),
     /// Stored state could not be decoded.
     #[error("stored state is corrupt: {0}")]
     Corrupt(String),
 }
 
 impl AggregatorError {
+    /// Whether this is a database uniqueness violation (another writer inserted the row).
+    pub fn is_unique_violation(&self) -> bool {
+        matches!(self, AggregatorError::Database(e) if e.unique_violation)
+    }
+
     pub fn invalid(field: impl Into<String>, reason: impl Into<String>) -> Self {
         AggregatorError::InvalidArgument {
             field: field.into(),

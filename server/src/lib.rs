@@ -12,6 +12,7 @@
 
 pub mod aggregate;
 pub mod coverage;
+pub mod db;
 pub mod detection;
 pub mod error;
 pub mod fhir;

@@ -42,6 +42,7 @@ use tonic::Code;
 use tonic::codegen::http;
 
 use crate::error::Result;
+use crate::params;
 use crate::store::Store;
 
 /// Services whose paths are counted by name.
@@ -235,15 +236,13 @@ impl Metrics {
             let label = StudyLabels {
                 study: study.study_id.clone(),
             };
-            let mut stmt = store.conn().prepare_cached(
+            let rows = store.db().query_map(
                 "SELECT state, COUNT(*) FROM rounds WHERE study_id = ?1 GROUP BY state",
+                &params![study.study_id],
+                |r| Ok((r.get::<String>(0)?, r.get::<i64>(1)?)),
             )?;
-            let rows = stmt.query_map([&study.study_id], |r| {
-                Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)?))
-            })?;
             let (mut opened, mut closed, mut abandoned) = (0u64, 0u64, 0u64);
-            for row in rows {
-                let (state, n) = row?;
+            for (state, n) in rows {
                 let n = n.max(0) as u64;
                 opened += n;
                 match state.as_str() {

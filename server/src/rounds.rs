@@ -18,6 +18,7 @@ use tokio::sync::watch;
 use plimsoll_proto::auth::{DeviceCredential, check_secret};
 
 use crate::aggregate::UpdateInput;
+use crate::db::Dialect;
 use crate::detection::{DetectionStage, DetectionStats, StageView, StatsOutcome};
 use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
@@ -27,7 +28,7 @@ use crate::secure_round::{
     decode_private_slots, decode_slots, decode_stage,
 };
 use crate::store::StoredEpisode;
-use crate::store::{CompletedStage, NewDevice, Store, StoredOpenRound};
+use crate::store::{Closing, CompletedStage, NewDevice, Store, StoredOpenRound, StudyStamp};
 use crate::study::{
     Contribution, PriorVersion, SensorTerms, SignalParams, SignalUpdate, StudyConfig, StudyStatus,
     SubmitOutcome, Work, valid_id,
@@ -84,6 +85,10 @@ struct StudyRuntime {
     /// Secure aggregation of the calibration stages, per stage (by
     /// [`DetectionStage::index`]). Memory only: after a restart a stage's sums start again.
     stage_secure: [StageSecure; 2],
+    /// On a shared (PostgreSQL) store: the study's stamp when this process last read it, and
+    /// when (see [`sync_study`]).
+    stamp: Option<StudyStamp>,
+    synced_ms: i64,
 }
 
 impl StudyRuntime {
@@ -224,53 +229,12 @@ impl Coordinator {
         let mut studies = BTreeMap::new();
         for config in store.studies()? {
             let id = config.study_id.clone();
-            let mut devices = BTreeMap::new();
-            let mut labels = HashMap::new();
-            for d in store.devices(&id)? {
-                labels.insert(d.label.clone(), d.device_id);
-                devices.insert(
-                    d.device_id,
-                    Device {
-                        signals: d.signals,
-                        consent_share_flags: d.consent_share_flags,
-                        revoked: d.revoked,
-                        sensor_model: d.sensor_model,
-                        group: d.group,
-                    },
-                );
-            }
-            let latest = store
-                .priors(&id)?
-                .pop()
-                .ok_or_else(|| AggregatorError::Corrupt(format!("study {id} has no prior")))?;
-            let open = store.open_round(&id)?.map(|r| OpenRound {
-                round_id: r.round_id,
-                deadline_ms: r.deadline_ms,
-                members: r.members.into_iter().collect(),
-                submissions: r.submissions.into_iter().collect(),
-                secure: None,
-            });
-            let mut detection_complete = [false; 2];
-            for stage in DetectionStage::ALL {
-                detection_complete[stage.index()] = store.completed_stage(&id, stage)?.is_some();
-            }
-            let revoked = devices.values().filter(|d| d.revoked).count();
-            let mut runtime = StudyRuntime {
-                revoked,
-                rounds_completed: store.rounds_completed(&id)?,
-                last_round_id: store.last_round_id(&id)?,
-                round_limit: config.round_limit(),
-                config,
-                devices,
-                labels,
-                latest,
-                open,
-                detection_complete,
-                last_secure: None,
-                stage_secure: Default::default(),
-            };
+            let mut runtime = load_runtime(&store, config)?;
             // A crash between the last accepted submission and the closing
             // transaction leaves a complete round open: finish it now.
+            if shared(&store) {
+                refresh_submissions(&store, &mut runtime)?;
+            }
             if runtime
                 .open
                 .as_ref()
@@ -278,7 +242,7 @@ impl Coordinator {
             {
                 let now = crate::service::now_ms();
                 close_round(&mut store, &mut runtime, now)?;
-                maybe_open_round(&mut store, &mut runtime, now, None)?;
+                open_next(&mut store, &mut runtime, now, None)?;
             }
             // A secure round's protocol state lived in memory only: run it again.
             if runtime.config.secure_aggregation.is_some()
@@ -286,7 +250,7 @@ impl Coordinator {
             {
                 tracing::info!(study = %id, round_id = open.round_id, "restart: running the secure round again");
                 let now = crate::service::now_ms();
-                maybe_open_round(&mut store, &mut runtime, now, Some(open.round_id))?;
+                open_next(&mut store, &mut runtime, now, Some(open.round_id))?;
             }
             studies.insert(id, runtime);
         }
@@ -304,6 +268,34 @@ impl Coordinator {
 
     fn notify(&self) {
         self.changed.send_modify(|n| *n += 1);
+    }
+
+    /// The lock, with `study_id` re-read first when another process may have moved it on
+    /// (a shared store; see [`sync_study`]). A study another process created is read in.
+    fn lock_synced(
+        &self,
+        study_id: &str,
+        max_age_ms: i64,
+    ) -> Result<std::sync::MutexGuard<'_, State>> {
+        let mut state = self.lock();
+        if shared(&state.store) {
+            let State { store, studies } = &mut *state;
+            let now = crate::service::now_ms();
+            let changed = match studies.get_mut(study_id) {
+                Some(rt) => sync_study(store, rt, now, max_age_ms)?,
+                None => match store.study_config(study_id)? {
+                    Some(config) => {
+                        studies.insert(study_id.to_owned(), load_runtime(store, config)?);
+                        true
+                    }
+                    None => false,
+                },
+            };
+            if changed {
+                self.notify();
+            }
+        }
+        Ok(state)
     }
 
     fn lock(&self) -> std::sync::MutexGuard<'_, State> {
@@ -362,6 +354,8 @@ impl Coordinator {
                 last_round_id: 0,
                 open: None,
                 detection_complete: [false; 2],
+                stamp: None,
+                synced_ms: 0,
             },
         );
         Ok(code)
@@ -383,7 +377,7 @@ impl Coordinator {
     /// call it makes is refused and it is never selected for a round again.
     /// An update it submitted before stays in its round. Returns the id.
     pub fn revoke(&self, study_id: &str, device: &str, now_ms: i64) -> Result<u64> {
-        let mut state = self.lock();
+        let mut state = self.lock_synced(study_id, 0)?;
         let State { store, studies } = &mut *state;
         let rt = study_mut(studies, study_id)?;
         let id = store.resolve_device(study_id, device)?;
@@ -422,7 +416,7 @@ impl Coordinator {
     }
 
     pub fn status(&self, study_id: &str) -> Result<StudyStatus> {
-        let state = self.lock();
+        let state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         let rt = study(&state.studies, study_id)?;
         Ok(StudyStatus {
             config: rt.config.clone(),
@@ -437,7 +431,7 @@ impl Coordinator {
     /// submitted), or `None` when no round is open. Lets an in-process scheduler wake only
     /// the devices a round selected, as a push service would.
     pub fn open_round_members(&self, study_id: &str) -> Result<Option<(u64, Vec<u64>)>> {
-        let state = self.lock();
+        let state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         let rt = study(&state.studies, study_id)?;
         Ok(rt
             .open
@@ -454,7 +448,7 @@ impl Coordinator {
     /// No such study; the study already started (FAILED_PRECONDITION); fewer active devices
     /// than its `min_quorum` (FAILED_PRECONDITION); the database.
     pub fn start_with_enrolled(&self, study_id: &str, now_ms: i64) -> Result<u32> {
-        let mut state = self.lock();
+        let mut state = self.lock_synced(study_id, 0)?;
         let State { store, studies } = &mut *state;
         let rt = study_mut(studies, study_id)?;
         if rt.last_round_id != 0 {
@@ -475,7 +469,7 @@ impl Coordinator {
         config.start_when_enrolled = active;
         store.update_study_config(&config)?;
         rt.config = config;
-        let opened = maybe_open_round(store, rt, now_ms, None)?;
+        let opened = open_next(store, rt, now_ms, None)?;
         drop(state);
         if opened {
             self.notify();
@@ -511,7 +505,7 @@ impl Coordinator {
                 "at least one signal is needed",
             ));
         }
-        let mut state = self.lock();
+        let mut state = self.lock_synced(study_id, 0)?;
         let State { store, studies } = &mut *state;
         let rt = study_mut(studies, study_id)?;
         let mut seen = BTreeSet::new();
@@ -609,7 +603,7 @@ impl Coordinator {
                 group,
             },
         );
-        let opened = maybe_open_round(store, rt, now_ms, None)?;
+        let opened = open_next(store, rt, now_ms, None)?;
         drop(state);
         if opened {
             self.notify();
@@ -640,7 +634,18 @@ impl Coordinator {
 
     /// What `device_id` should do now.
     pub fn work_for(&self, study_id: &str, device_id: u64) -> Result<Work> {
-        let state = self.lock();
+        let mut state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
+        if shared(&state.store)
+            && let Some(rt) = state.studies.get(study_id)
+            && !rt.devices.contains_key(&device_id)
+        {
+            // Enrolled through another process since this one last read the study.
+            let State { store, studies } = &mut *state;
+            let rt = studies.get_mut(study_id).expect("checked above");
+            if sync_study(store, rt, crate::service::now_ms(), 0)? {
+                self.notify();
+            }
+        }
         let rt = study(&state.studies, study_id)?;
         let device = rt
             .devices
@@ -714,10 +719,33 @@ impl Coordinator {
         let mut answers: Vec<Option<Result<SubmitOutcome>>> = Vec::with_capacity(batch.len());
         // New submissions that passed every check, by position in `batch`.
         let mut fresh: Vec<usize> = Vec::new();
+        let shared = shared(&state.store);
+        // Whether devices waiting on a change must be woken: a round closed, or this process
+        // re-read a study another process moved on.
+        let mut closed = false;
         for s in &batch {
-            let answer = state
-                .authenticate(&s.study_id, Some(s.device_id), &s.credential)
-                .and_then(|()| check_submission(&mut state, s, &batch, &fresh, now_ms));
+            let check = |state: &mut State| {
+                state
+                    .authenticate(&s.study_id, Some(s.device_id), &s.credential)
+                    .and_then(|()| check_submission(state, s, &batch, &fresh, now_ms))
+            };
+            let mut answer = check(&mut state);
+            // On a shared store a round or device this process has not seen yet may be
+            // another process's doing: re-read the study and check again.
+            if shared
+                && matches!(
+                    answer,
+                    Err(AggregatorError::FailedPrecondition(_) | AggregatorError::NotFound(_))
+                )
+            {
+                let State { store, studies } = &mut *state;
+                if let Some(rt) = studies.get_mut(&s.study_id)
+                    && sync_study(store, rt, crate::service::now_ms(), 0).unwrap_or(false)
+                {
+                    closed = true;
+                    answer = check(&mut state);
+                }
+            }
             match answer {
                 Ok(None) => {
                     fresh.push(answers.len());
@@ -727,7 +755,6 @@ impl Coordinator {
                 Err(e) => answers.push(Some(Err(e))),
             }
         }
-        let mut closed = false;
         if !fresh.is_empty() {
             let State { store, studies } = &mut *state;
             let rows: Vec<_> = fresh
@@ -743,6 +770,12 @@ impl Coordinator {
                 })
                 .collect();
             match store.insert_updates(&rows, now_ms) {
+                Err(AggregatorError::FailedPrecondition(why)) => {
+                    // Another process closed the round first: nothing was recorded.
+                    for &i in &fresh {
+                        answers[i] = Some(Err(AggregatorError::FailedPrecondition(why.clone())));
+                    }
+                }
                 Err(e) => {
                     let message = e.to_string();
                     for &i in &fresh {
@@ -752,24 +785,48 @@ impl Coordinator {
                 Ok(()) => {
                     drop(rows);
                     let mut batch: Vec<Option<Submission>> = batch.into_iter().map(Some).collect();
-                    for &i in &fresh {
+                    for (k, &i) in fresh.iter().enumerate() {
                         let s = batch[i].take().expect("each submission is applied once");
                         let rt = studies.get_mut(&s.study_id).expect("checked above");
                         let open = rt.open.as_mut().expect("checked above");
                         open.submissions.insert(s.device_id, s.updates);
-                        let accepted = open.submissions.len() as u32;
-                        let complete = open.submissions.len() == open.members.len();
+                        let mut accepted = open.submissions.len() as u32;
+                        if shared {
+                            // Other processes take submissions to the same round: count the
+                            // stored ones once, at this batch's last submission to the study.
+                            let later = fresh[k + 1..].iter().any(|&j| {
+                                batch[j].as_ref().is_some_and(|o| o.study_id == s.study_id)
+                            });
+                            if later {
+                                answers[i] = Some(Ok(SubmitOutcome {
+                                    accepted_in_round: accepted,
+                                    round_closed: false,
+                                }));
+                                continue;
+                            }
+                            match store.count_updates(&s.study_id, open.round_id) {
+                                Ok(n) => accepted = n,
+                                Err(e) => {
+                                    answers[i] = Some(Err(e));
+                                    continue;
+                                }
+                            }
+                        }
+                        let complete = accepted as usize >= open.members.len();
                         let mut answer = Ok(SubmitOutcome {
                             accepted_in_round: accepted,
                             round_closed: false,
                         });
                         if complete {
-                            answer = close_round(store, rt, now_ms)
-                                .and_then(|()| maybe_open_round(store, rt, now_ms, None))
-                                .map(|_| SubmitOutcome {
+                            answer = close_round(store, rt, now_ms).and_then(|closed_here| {
+                                open_next(store, rt, now_ms, None)?;
+                                Ok(SubmitOutcome {
                                     accepted_in_round: accepted,
-                                    round_closed: true,
-                                });
+                                    // Two processes completing a round at once: the one
+                                    // that closed it says so.
+                                    round_closed: closed_here,
+                                })
+                            });
                             closed = true;
                         }
                         answers[i] = Some(answer);
@@ -794,6 +851,9 @@ impl Coordinator {
         let State { store, studies } = &mut *state;
         let mut changed = false;
         for rt in studies.values_mut() {
+            // Another process may have moved the study on (and may have stopped: its
+            // deadlines are this one's to keep).
+            changed |= sync_study(store, rt, now_ms, 0)?;
             for stage in DetectionStage::ALL {
                 let due = rt.stage_secure[stage.index()]
                     .running
@@ -826,11 +886,15 @@ impl Coordinator {
             if now_ms <= open.deadline_ms {
                 continue;
             }
+            if shared(store) {
+                refresh_submissions(store, rt)?;
+            }
+            let Some(open) = &rt.open else { continue };
             let round_id = open.round_id;
             if open.submissions.len() as u32 >= rt.config.min_quorum {
                 tracing::info!(study = %rt.config.study_id, round_id, "deadline passed; closing with quorum");
                 close_round(store, rt, now_ms)?;
-                maybe_open_round(store, rt, now_ms, None)?;
+                open_next(store, rt, now_ms, None)?;
             } else {
                 tracing::warn!(
                     study = %rt.config.study_id,
@@ -840,7 +904,7 @@ impl Coordinator {
                     "deadline passed without quorum; retrying the round"
                 );
                 let previous = rt.open.take();
-                if let Err(e) = maybe_open_round(store, rt, now_ms, Some(round_id)) {
+                if let Err(e) = open_next(store, rt, now_ms, Some(round_id)) {
                     rt.open = previous;
                     return Err(e);
                 }
@@ -876,7 +940,7 @@ impl Coordinator {
             SecureSum::Round(id) => (id, None),
             SecureSum::Stage(stage, session) => (session, Some(stage)),
         };
-        let mut state = self.lock();
+        let mut state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         state.authenticate(study_id, Some(device_id), credential)?;
         let State { store, studies } = &mut *state;
         let rt = study_mut(studies, study_id)?;
@@ -930,7 +994,7 @@ impl Coordinator {
 
     /// A published prior; version `None` is the latest.
     pub fn prior(&self, study_id: &str, version: Option<u32>) -> Result<PriorVersion> {
-        let state = self.lock();
+        let state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         let rt = study(&state.studies, study_id)?;
         match version {
             None => Ok(rt.latest.clone()),
@@ -958,7 +1022,7 @@ impl Coordinator {
         device_id: u64,
     ) -> Result<(PriorVersion, Option<String>)> {
         let mut prior = self.prior(study_id, version)?;
-        let state = self.lock();
+        let state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         let model = study(&state.studies, study_id)?
             .devices
             .get(&device_id)
@@ -970,7 +1034,7 @@ impl Coordinator {
 
     /// Every published prior, oldest first (for convergence reports).
     pub fn prior_history(&self, study_id: &str) -> Result<Vec<PriorVersion>> {
-        let state = self.lock();
+        let state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         study(&state.studies, study_id)?;
         state.store.priors(study_id)
     }
@@ -987,7 +1051,7 @@ impl Coordinator {
         packet: &FlagPacket,
         now_ms: i64,
     ) -> Result<StoredEpisode> {
-        let mut state = self.lock();
+        let mut state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         let State { store, studies } = &mut *state;
         let rt = study(studies, study_id)?;
         check_flag_consent(rt, study_id, device_id)?;
@@ -1004,7 +1068,7 @@ impl Coordinator {
         summary: &crate::coverage::DataSummary,
         now_ms: i64,
     ) -> Result<()> {
-        let mut state = self.lock();
+        let mut state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         let State { store, studies } = &mut *state;
         let rt = study(studies, study_id)?;
         let device = rt
@@ -1018,7 +1082,7 @@ impl Coordinator {
     /// `Ok` when `device_id` is enrolled in `study_id` with consent to share
     /// flags; FAILED_PRECONDITION naming `consent_share_flags` otherwise.
     pub fn require_flag_consent(&self, study_id: &str, device_id: u64) -> Result<()> {
-        let state = self.lock();
+        let state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         let rt = study(&state.studies, study_id)?;
         check_flag_consent(rt, study_id, device_id)
     }
@@ -1039,7 +1103,7 @@ impl Coordinator {
     ) -> Result<StatsOutcome> {
         stats.validate()?;
         let stage = stats.stage();
-        let mut state = self.lock();
+        let mut state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         let State { store, studies } = &mut *state;
         let rt = study_mut(studies, study_id)?;
         if !rt.devices.contains_key(&device_id) {
@@ -1074,8 +1138,22 @@ impl Coordinator {
         let completed = due_completion(store, rt, stage, &submitters, now_ms)?
             .then(|| summed(store, rt, stage, Some((device_id, stats)), now_ms))
             .transpose()?;
-        store.put_detection_stats(study_id, device_id, stats, completed.as_ref(), now_ms)?;
-        let stage_complete = completed.is_some();
+        let stage_complete =
+            match store.put_detection_stats(study_id, device_id, stats, completed.as_ref(), now_ms)
+            {
+                Ok(()) => completed.is_some(),
+                // Another process published the stage's sum first (a shared store): nothing
+                // was stored, and the device is answered as any late submission is.
+                Err(e) if e.is_unique_violation() => {
+                    rt.detection_complete[stage.index()] = true;
+                    return Err(AggregatorError::FailedPrecondition(format!(
+                        "stage: {} of study `{study_id}` was completed by another aggregator \
+                     process; it takes no new or changed submission",
+                        stage.as_str()
+                    )));
+                }
+                Err(e) => return Err(e),
+            };
         if stage_complete {
             rt.detection_complete[stage.index()] = true;
             tracing::info!(study = %study_id, stage = stage.as_str(), devices = submitters.len(), "calibration stage complete");
@@ -1098,7 +1176,7 @@ impl Coordinator {
         device_id: u64,
         stage: DetectionStage,
     ) -> Result<StageView> {
-        let state = self.lock();
+        let state = self.lock_synced(study_id, SYNC_MAX_AGE_MS)?;
         let rt = study(&state.studies, study_id)?;
         let store = &state.store;
         let devices_expected = rt.active_devices() as u32;
@@ -1302,7 +1380,11 @@ fn complete_stage_if_due(
         return Ok(false);
     }
     let completed = summed(store, rt, stage, None, now_ms)?;
-    store.complete_stage(&study_id, &completed)?;
+    match store.complete_stage(&study_id, &completed) {
+        // Another process published the stage's sum first (a shared store).
+        Err(e) if e.is_unique_violation() => {}
+        other => other?,
+    }
     rt.detection_complete[stage.index()] = true;
     tracing::info!(study = %study_id, stage = stage.as_str(), devices = completed.n_devices, "calibration stage complete");
     Ok(true)
@@ -1432,7 +1514,19 @@ fn check_submission(
         .map(|&i| &batch[i])
         .find(|e| e.study_id == study_id && e.device_id == device_id)
         .map(|e| &e.updates);
-    if let Some(previous) = open.submissions.get(&device_id).or(earlier) {
+    // On a shared store the device may have sent it through another process.
+    let stored = if shared(store) && !open.submissions.contains_key(&device_id) && earlier.is_none()
+    {
+        store.submission(study_id, round_id, device_id)?
+    } else {
+        None
+    };
+    if let Some(previous) = open
+        .submissions
+        .get(&device_id)
+        .or(earlier)
+        .or(stored.as_ref())
+    {
         if previous == updates {
             return Ok(Some(SubmitOutcome {
                 accepted_in_round: open.submissions.len() as u32,
@@ -1449,6 +1543,142 @@ fn check_submission(
         )));
     }
     Ok(None)
+}
+
+/// Whether other aggregator processes may serve the same studies from this store (a
+/// PostgreSQL store: replicas). Each then re-reads what the others may have changed
+/// ([`sync_study`]) and the database decides every race ([`Store::close_round`],
+/// [`Store::open_new_round`], [`Store::insert_updates`]).
+fn shared(store: &Store) -> bool {
+    store.dialect() == Dialect::Postgres
+}
+
+/// A study's in-memory state, read from the store.
+fn load_runtime(store: &Store, config: StudyConfig) -> Result<StudyRuntime> {
+    let id = config.study_id.clone();
+    let mut devices = BTreeMap::new();
+    let mut labels = HashMap::new();
+    for d in store.devices(&id)? {
+        labels.insert(d.label.clone(), d.device_id);
+        devices.insert(
+            d.device_id,
+            Device {
+                signals: d.signals,
+                consent_share_flags: d.consent_share_flags,
+                revoked: d.revoked,
+                sensor_model: d.sensor_model,
+                group: d.group,
+            },
+        );
+    }
+    let latest = store
+        .priors(&id)?
+        .pop()
+        .ok_or_else(|| AggregatorError::Corrupt(format!("study {id} has no prior")))?;
+    let open = store.open_round(&id)?.map(|r| OpenRound {
+        round_id: r.round_id,
+        deadline_ms: r.deadline_ms,
+        members: r.members.into_iter().collect(),
+        submissions: r.submissions.into_iter().collect(),
+        secure: None,
+    });
+    let mut detection_complete = [false; 2];
+    for stage in DetectionStage::ALL {
+        detection_complete[stage.index()] = store.completed_stage(&id, stage)?.is_some();
+    }
+    let revoked = devices.values().filter(|d| d.revoked).count();
+    Ok(StudyRuntime {
+        revoked,
+        rounds_completed: store.rounds_completed(&id)?,
+        last_round_id: store.last_round_id(&id)?,
+        round_limit: config.round_limit(),
+        config,
+        devices,
+        labels,
+        latest,
+        open,
+        detection_complete,
+        last_secure: None,
+        stage_secure: Default::default(),
+        stamp: if shared(store) {
+            Some(store.study_stamp(&id)?)
+        } else {
+            None
+        },
+        synced_ms: crate::service::now_ms(),
+    })
+}
+
+/// How stale (ms) a replica's picture of a study may be when it answers a device; races are
+/// decided by the database, so staleness only delays what a device is told.
+const SYNC_MAX_AGE_MS: i64 = 100;
+
+/// On a shared store, re-reads the study when another process may have moved it on: when
+/// the last read is older than `max_age_ms` and the stored stamp changed. The open round's
+/// in-memory protocol state (secure aggregation) is kept while the round stays the same.
+/// Returns true when the picture changed.
+fn sync_study(store: &Store, rt: &mut StudyRuntime, now_ms: i64, max_age_ms: i64) -> Result<bool> {
+    if !shared(store) || now_ms - rt.synced_ms < max_age_ms {
+        return Ok(false);
+    }
+    let study_id = rt.config.study_id.clone();
+    let stamp = store.study_stamp(&study_id)?;
+    rt.synced_ms = now_ms;
+    if rt.stamp == Some(stamp) {
+        return Ok(false);
+    }
+    reload_runtime(store, rt)?;
+    Ok(true)
+}
+
+/// Replaces a study's in-memory state with the stored one (keeping the protocol state of
+/// a secure round that is still the open one).
+fn reload_runtime(store: &Store, rt: &mut StudyRuntime) -> Result<()> {
+    let config = store
+        .study_config(&rt.config.study_id)?
+        .unwrap_or_else(|| rt.config.clone());
+    let mut fresh = load_runtime(store, config)?;
+    if let (Some(old), Some(new)) = (rt.open.as_mut(), fresh.open.as_mut())
+        && old.round_id == new.round_id
+    {
+        new.secure = old.secure.take();
+    }
+    fresh.last_secure = rt.last_secure.take();
+    fresh.stage_secure = std::mem::take(&mut rt.stage_secure);
+    tracing::debug!(study = %rt.config.study_id, round = fresh.last_round_id, "re-read the study from the shared store");
+    *rt = fresh;
+    Ok(())
+}
+
+/// On a shared store, the open round's submissions as stored by every process.
+fn refresh_submissions(store: &Store, rt: &mut StudyRuntime) -> Result<()> {
+    let Some(open) = rt.open.as_mut() else {
+        return Ok(());
+    };
+    if let Some(stored) = store.open_round(&rt.config.study_id)?
+        && stored.round_id == open.round_id
+    {
+        open.submissions = stored.submissions.into_iter().collect();
+    }
+    Ok(())
+}
+
+/// [`maybe_open_round`], where another process opening the round first is no error: this
+/// one re-reads the study instead.
+fn open_next(
+    store: &mut Store,
+    rt: &mut StudyRuntime,
+    now_ms: i64,
+    abandon: Option<u64>,
+) -> Result<bool> {
+    match maybe_open_round(store, rt, now_ms, abandon) {
+        Err(AggregatorError::Superseded(why)) => {
+            tracing::info!(study = %rt.config.study_id, %why, "another aggregator process moved the study on");
+            reload_runtime(store, rt)?;
+            Ok(true)
+        }
+        other => other,
+    }
 }
 
 /// Marks the devices revoked in the database as revoked in memory (revocations may come from
@@ -1982,7 +2212,12 @@ fn advance_secure(
                         .unwrap_or_else(|| current.clone())
                 })
                 .collect();
-            publish(store, rt, params, contributions, Vec::new(), now_ms)?;
+            // A secure round stores no individual update: nothing to count.
+            if publish(store, rt, params, contributions, Vec::new(), 0, now_ms)? != Closing::Closed
+            {
+                reload_runtime(store, rt)?;
+                return Ok(true);
+            }
             let reason = format!(
                 "round {round_id} closed: the sum of {} devices' inputs made prior version {}",
                 included.len(),
@@ -1993,13 +2228,13 @@ fn advance_secure(
                 included,
                 reason,
             });
-            maybe_open_round(store, rt, now_ms, None)?;
+            open_next(store, rt, now_ms, None)?;
             Ok(true)
         }
         Advance::Failed(why) => {
             tracing::warn!(study = %rt.config.study_id, round_id, reason = %why, "secure round failed; running it again");
             let previous = rt.open.take();
-            if let Err(e) = maybe_open_round(store, rt, now_ms, Some(round_id)) {
+            if let Err(e) = open_next(store, rt, now_ms, Some(round_id)) {
                 rt.open = previous;
                 return Err(e);
             }
@@ -2021,7 +2256,7 @@ fn close_private_round(
     rt: &mut StudyRuntime,
     dp: &crate::privacy::DpSettings,
     now_ms: i64,
-) -> Result<()> {
+) -> Result<Closing> {
     let open = rt.open.as_ref().expect("close_round needs an open round");
     // The concatenated layout: every signal's coordinates in the prior's order.
     let offsets: Vec<(usize, &SignalParams)> = rt
@@ -2072,7 +2307,16 @@ fn close_private_round(
             .collect();
         contributions.extend(contribution(&current.signal, &entries));
     }
-    publish(store, rt, params, contributions, Vec::new(), now_ms)
+    let aggregated = open.submissions.len();
+    publish(
+        store,
+        rt,
+        params,
+        contributions,
+        Vec::new(),
+        aggregated,
+        now_ms,
+    )
 }
 
 /// What one signal's accepted submissions contributed to a round: devices, summed day
@@ -2105,8 +2349,9 @@ fn publish(
     params: Vec<SignalParams>,
     contributions: Vec<Contribution>,
     sensor_terms: Vec<SensorTerms>,
+    aggregated: usize,
     now_ms: i64,
-) -> Result<()> {
+) -> Result<Closing> {
     let open = rt.open.as_ref().expect("publish needs an open round");
     let prior = PriorVersion {
         version: rt.latest.version + 1,
@@ -2116,7 +2361,16 @@ fn publish(
         created_unix_ms: now_ms,
         sensor_terms,
     };
-    store.close_round(&rt.config.study_id, open.round_id, &prior, now_ms)?;
+    let closing = store.close_round(
+        &rt.config.study_id,
+        open.round_id,
+        &prior,
+        aggregated,
+        now_ms,
+    )?;
+    if closing != Closing::Closed {
+        return Ok(closing);
+    }
     tracing::info!(
         study = %rt.config.study_id,
         round_id = open.round_id,
@@ -2128,7 +2382,10 @@ fn publish(
     rt.latest = prior;
     rt.rounds_completed += 1;
     rt.open = None;
-    Ok(())
+    if shared(store) {
+        rt.stamp = None;
+    }
+    Ok(Closing::Closed)
 }
 
 /// Most devices behind any signal of a round (for the log).
@@ -2192,8 +2449,34 @@ fn select_members(config: &StudyConfig, enrolled: Vec<u64>, round_id: u64) -> Ve
     chosen
 }
 
+/// Closes the open round with every stored submission and publishes the result. On a
+/// shared store the submissions are re-read first (other processes take them too); if
+/// another process stored one meanwhile the prior is computed again, and if another process
+/// closed the round first this one re-reads the study instead. Returns whether this process
+/// closed it.
+fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<bool> {
+    for _ in 0..8 {
+        if shared(store) {
+            refresh_submissions(store, rt)?;
+        }
+        match close_round_once(store, rt, now_ms)? {
+            Closing::Closed => return Ok(true),
+            Closing::NotOpen => {
+                tracing::info!(study = %rt.config.study_id, "another aggregator process ended the round");
+                reload_runtime(store, rt)?;
+                return Ok(false);
+            }
+            Closing::Stale => continue,
+        }
+    }
+    Err(AggregatorError::Superseded(format!(
+        "study {}: submissions kept arriving through other aggregator processes while closing",
+        rt.config.study_id
+    )))
+}
+
 /// FedAvg per signal over the open round's submissions; publishes the result.
-fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<()> {
+fn close_round_once(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<Closing> {
     let open = rt.open.as_ref().expect("close_round needs an open round");
     if let Some(dp) = rt.config.dp {
         return close_private_round(store, rt, &dp, now_ms);
@@ -2276,5 +2559,14 @@ fn close_round(store: &mut Store, rt: &mut StudyRuntime, now_ms: i64) -> Result<
             None => params.push(current.clone()),
         }
     }
-    publish(store, rt, params, contributions, sensor_terms, now_ms)
+    let aggregated = open.submissions.len();
+    publish(
+        store,
+        rt,
+        params,
+        contributions,
+        sensor_terms,
+        aggregated,
+        now_ms,
+    )
 }

@@ -32,6 +32,7 @@ pub fn to_status(err: AggregatorError) -> Status {
             tracing::error!(error = %m, "database error in a group commit");
             Status::internal("the aggregator's database failed; the request was not applied")
         }
+        AggregatorError::Superseded(m) => Status::aborted(m),
         AggregatorError::Corrupt(m) => {
             tracing::error!(error = %m, "corrupt state");
             Status::internal("the aggregator's stored state is inconsistent")

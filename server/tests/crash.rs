@@ -2,8 +2,10 @@
 //! round — before aggregation (SIGKILL with submissions pending), during the
 //! aggregation write (an injected abort inside the closing transaction), and
 //! after it (SIGKILL right after the round closed) — and restarted on the same
-//! database. Each time the database passes SQLite's integrity check, no
-//! completed round is lost, the open round completes and devices carry on.
+//! database. Each time the database passes its integrity check, no completed
+//! round is lost, the open round completes and devices carry on. The same
+//! scenario runs on SQLite and on PostgreSQL (the test cluster `scripts/test`
+//! starts).
 //!
 //! This lives in the server package (not `tests/`) because it runs the real
 //! `plimsoll-aggregator` binary as a child process.
@@ -63,12 +65,11 @@ impl Aggregator {
     }
 }
 
+/// SQLite's `PRAGMA integrity_check`, or on PostgreSQL the invariants a crash must not
+/// break (`Store::integrity_check`).
 fn integrity_ok(db: &Path) {
-    let conn = rusqlite::Connection::open(db).unwrap();
-    let report: String = conn
-        .query_row("PRAGMA integrity_check", [], |r| r.get(0))
-        .unwrap();
-    assert_eq!(report, "ok");
+    let store = plimsoll_server::store::Store::open(db).unwrap();
+    assert_eq!(store.integrity_check().unwrap(), ["ok"]);
 }
 
 async fn enroll(c: &mut AggregatorClient<Channel>, code: &str, label: &str) -> DeviceCredential {
@@ -159,8 +160,21 @@ async fn latest(
 #[tokio::test]
 async fn killed_aggregator_resumes_without_losing_rounds() {
     let dir = tempfile::tempdir().unwrap();
-    let db = dir.path().join("agg.db");
-    let code = create_study(&db, dir.path(), STUDY, 3, 2);
+    killed_and_resumed(&dir.path().join("agg.db"), dir.path()).await;
+}
+
+#[tokio::test]
+async fn killed_aggregator_resumes_without_losing_rounds_on_postgres() {
+    let Some(url) = plimsoll_server::db::test_database("crash") else {
+        return;
+    };
+    let dir = tempfile::tempdir().unwrap();
+    killed_and_resumed(Path::new(&url), dir.path()).await;
+}
+
+async fn killed_and_resumed(db: &Path, dir: &Path) {
+    let db = db.to_path_buf();
+    let code = create_study(&db, dir, STUDY, 3, 2);
 
     // 1. Killed before aggregation: one of two submissions is in.
     let mut agg = start(&db, None).await;

@@ -11,9 +11,9 @@
 use argon2::Argon2;
 use argon2::password_hash::phc::PasswordHash;
 use argon2::password_hash::{PasswordHasher, PasswordVerifier};
-use rusqlite::{OptionalExtension, params};
 
 use crate::error::{AggregatorError, Result};
+use crate::params;
 pub use crate::secrets::constant_time_eq;
 use crate::secrets::{random_readable, random_token, secret_hash};
 use crate::store::Store;
@@ -67,9 +67,10 @@ pub fn add_reviewer(store: &mut Store, name: &str, password: &str, now_ms: i64) 
         ));
     }
     let hash = hash_password(password)?;
-    let inserted = store.conn().execute(
-        "INSERT OR IGNORE INTO reviewers (name, password_hash, created_ms) VALUES (?1, ?2, ?3)",
-        params![name, hash, now_ms],
+    let inserted = store.db().execute(
+        "INSERT INTO reviewers (name, password_hash, created_ms) VALUES (?1, ?2, ?3)
+         ON CONFLICT DO NOTHING",
+        &params![name, hash, now_ms],
     )?;
     if inserted == 0 {
         return Err(AggregatorError::AlreadyExists(format!(
@@ -88,27 +89,30 @@ pub fn set_password(store: &mut Store, name: &str, password: &str) -> Result<()>
         ));
     }
     let hash = hash_password(password)?;
-    let tx = store.conn_mut().transaction()?;
+    let tx = store.db_mut().transaction()?;
     let changed = tx.execute(
         "UPDATE reviewers SET password_hash = ?2 WHERE name = ?1",
-        params![name, hash],
+        &params![name, hash],
     )?;
     if changed == 0 {
         return Err(AggregatorError::NotFound(format!(
             "name: no reviewer `{name}`"
         )));
     }
-    tx.execute("DELETE FROM review_sessions WHERE reviewer = ?1", [name])?;
+    tx.execute(
+        "DELETE FROM review_sessions WHERE reviewer = ?1",
+        &params![name],
+    )?;
     tx.commit()?;
     Ok(())
 }
 
 /// Lets `name` review `study_id`.
 pub fn assign(store: &mut Store, name: &str, study_id: &str) -> Result<()> {
-    let conn = store.conn();
-    let known: bool = conn.query_row(
+    let db = store.db();
+    let known: bool = db.query_row(
         "SELECT EXISTS (SELECT 1 FROM reviewers WHERE name = ?1)",
-        [name],
+        &params![name],
         |r| r.get(0),
     )?;
     if !known {
@@ -116,9 +120,9 @@ pub fn assign(store: &mut Store, name: &str, study_id: &str) -> Result<()> {
             "name: no reviewer `{name}`"
         )));
     }
-    let study: bool = conn.query_row(
+    let study: bool = db.query_row(
         "SELECT EXISTS (SELECT 1 FROM studies WHERE study_id = ?1)",
-        [study_id],
+        &params![study_id],
         |r| r.get(0),
     )?;
     if !study {
@@ -126,33 +130,30 @@ pub fn assign(store: &mut Store, name: &str, study_id: &str) -> Result<()> {
             "study_id: no study `{study_id}`"
         )));
     }
-    conn.execute(
-        "INSERT OR IGNORE INTO reviewer_studies (name, study_id) VALUES (?1, ?2)",
-        params![name, study_id],
+    db.execute(
+        "INSERT INTO reviewer_studies (name, study_id) VALUES (?1, ?2) ON CONFLICT DO NOTHING",
+        &params![name, study_id],
     )?;
     Ok(())
 }
 
 /// Whether a reviewer account exists.
 pub fn reviewer_exists(store: &Store, name: &str) -> Result<bool> {
-    Ok(store.conn().query_row(
+    store.db().query_row(
         "SELECT EXISTS (SELECT 1 FROM reviewers WHERE name = ?1)",
-        [name],
+        &params![name],
         |r| r.get(0),
-    )?)
+    )
 }
 
 /// Checks a login. Unknown names cost one hash verification too, so the
 /// answer time does not tell which names exist.
 pub fn verify_login(store: &Store, name: &str, password: &str) -> Result<bool> {
-    let stored: Option<String> = store
-        .conn()
-        .query_row(
-            "SELECT password_hash FROM reviewers WHERE name = ?1",
-            [name],
-            |r| r.get(0),
-        )
-        .optional()?;
+    let stored: Option<String> = store.db().query_opt(
+        "SELECT password_hash FROM reviewers WHERE name = ?1",
+        &params![name],
+        |r| r.get(0),
+    )?;
     // A hash of a random password, verified against when the name is unknown.
     static DECOY: std::sync::LazyLock<String> = std::sync::LazyLock::new(|| {
         hash_password(&random_token()).expect("hashing a random token succeeds")
@@ -169,15 +170,15 @@ pub fn verify_login(store: &Store, name: &str, password: &str) -> Result<bool> {
 /// Starts a session for `name`; returns the cookie token (never stored).
 pub fn create_session(store: &Store, name: &str, now_ms: i64) -> Result<String> {
     let token = random_token();
-    let conn = store.conn();
-    conn.execute(
+    let db = store.db();
+    db.execute(
         "DELETE FROM review_sessions WHERE expires_ms <= ?1",
-        [now_ms],
+        &params![now_ms],
     )?;
-    conn.execute(
+    db.execute(
         "INSERT INTO review_sessions (token_hash, reviewer, csrf_token, created_ms, expires_ms)
          VALUES (?1, ?2, ?3, ?4, ?5)",
-        params![
+        &params![
             token_hash(&token),
             name,
             random_token(),
@@ -190,23 +191,21 @@ pub fn create_session(store: &Store, name: &str, now_ms: i64) -> Result<String> 
 
 /// The live session for a cookie token, if any.
 pub fn session(store: &Store, token: &str, now_ms: i64) -> Result<Option<Session>> {
-    let conn = store.conn();
-    let row: Option<(String, String)> = conn
-        .query_row(
-            "SELECT reviewer, csrf_token FROM review_sessions
-             WHERE token_hash = ?1 AND expires_ms > ?2",
-            params![token_hash(token), now_ms],
-            |r| Ok((r.get(0)?, r.get(1)?)),
-        )
-        .optional()?;
+    let db = store.db();
+    let row: Option<(String, String)> = db.query_opt(
+        "SELECT reviewer, csrf_token FROM review_sessions
+         WHERE token_hash = ?1 AND expires_ms > ?2",
+        &params![token_hash(token), now_ms],
+        |r| Ok((r.get(0)?, r.get(1)?)),
+    )?;
     let Some((reviewer, csrf_token)) = row else {
         return Ok(None);
     };
-    let mut stmt =
-        conn.prepare("SELECT study_id FROM reviewer_studies WHERE name = ?1 ORDER BY study_id")?;
-    let studies = stmt
-        .query_map([&reviewer], |r| r.get::<_, String>(0))?
-        .collect::<rusqlite::Result<Vec<_>>>()?;
+    let studies = db.query_map(
+        "SELECT study_id FROM reviewer_studies WHERE name = ?1 ORDER BY study_id",
+        &params![reviewer],
+        |r| r.get::<String>(0),
+    )?;
     Ok(Some(Session {
         reviewer,
         csrf_token,
@@ -216,9 +215,9 @@ pub fn session(store: &Store, token: &str, now_ms: i64) -> Result<Option<Session
 
 /// Ends the session of a cookie token.
 pub fn end_session(store: &Store, token: &str) -> Result<()> {
-    store.conn().execute(
+    store.db().execute(
         "DELETE FROM review_sessions WHERE token_hash = ?1",
-        [token_hash(token)],
+        &params![token_hash(token)],
     )?;
     Ok(())
 }

@@ -4,10 +4,9 @@
 //! other in place), so an action recorded on a packet id applies to the
 //! episode, whatever version the device sends next.
 
-use rusqlite::{OptionalExtension, params};
-
 use crate::error::{AggregatorError, Result};
 use crate::packets::{FlagKind, FlagLevel, FlagPacket, PatternDirection, SignalDirection};
+use crate::params;
 use crate::store::Store;
 use crate::study::{PriorVersion, StudyConfig};
 
@@ -191,11 +190,13 @@ pub fn overview(store: &Store, study_id: &str) -> Result<Option<StudyOverview>> 
         return Ok(None);
     };
     let devices = store.devices(study_id)?;
-    let (flags_total, flags_new): (i64, i64) = store.conn().query_row(
+    let (flags_total, flags_new): (i64, i64) = store.db().query_row(
         "SELECT COUNT(*),
-                COALESCE(SUM(NOT EXISTS (SELECT 1 FROM review_actions a WHERE a.packet_id = p.packet_id)), 0)
+                COALESCE(CAST(SUM(CASE WHEN NOT EXISTS
+                    (SELECT 1 FROM review_actions a WHERE a.packet_id = p.packet_id)
+                    THEN 1 ELSE 0 END) AS BIGINT), 0)
          FROM flag_packets p WHERE p.study_id = ?1",
-        [study_id],
+        &params![study_id],
         |r| Ok((r.get(0)?, r.get(1)?)),
     )?;
     Ok(Some(StudyOverview {
@@ -238,15 +239,15 @@ fn queue_columns() -> String {
     )
 }
 
-fn queue_entry(r: &rusqlite::Row<'_>) -> rusqlite::Result<Result<QueueEntry>> {
-    let packet_id = r.get::<_, i64>(0)? as u64;
+fn queue_entry(r: &crate::db::Row) -> Result<QueueEntry> {
+    let packet_id = r.get::<i64>(0)? as u64;
     let payload: String = r.get(2)?;
     let latest_ms: Option<i64> = r.get(4)?;
     let updated_ms: i64 = r.get(6)?;
-    let revisions = r.get::<_, i64>(5)? as u32;
+    let revisions = r.get::<i64>(5)? as u32;
     let status = ReviewStatus::from_latest(r.get(3)?);
     let participant: String = r.get(1)?;
-    Ok(serde_json::from_str::<FlagPacket>(&payload)
+    serde_json::from_str::<FlagPacket>(&payload)
         .map_err(|e| corrupt(format!("flag packet {packet_id}"), e))
         .map(|p| QueueEntry {
             packet_id,
@@ -276,17 +277,7 @@ fn queue_entry(r: &rusqlite::Row<'_>) -> rusqlite::Result<Result<QueueEntry>> {
             // (the safe side: the reviewer looks again).
             updated_since_review: latest_ms.is_some_and(|at| at <= updated_ms) && revisions > 1,
             signal: p.signal,
-        }))
-}
-
-fn collect_entries(
-    rows: impl Iterator<Item = rusqlite::Result<Result<QueueEntry>>>,
-) -> Result<Vec<QueueEntry>> {
-    let mut out = Vec::new();
-    for row in rows {
-        out.push(row??);
-    }
-    Ok(out)
+        })
 }
 
 /// The study's episodes, Alert before Watch, then newest peak first,
@@ -299,8 +290,9 @@ pub fn queue(store: &Store, study_id: &str, filter: &QueueFilter) -> Result<Vec<
          ORDER BY (p.level = 'alert') DESC, p.flag_date DESC, p.packet_id DESC",
         queue_columns()
     );
-    let mut stmt = store.conn().prepare(&sql)?;
-    let entries = collect_entries(stmt.query_map([study_id], queue_entry)?)?;
+    let entries = store
+        .db()
+        .query_map(&sql, &params![study_id], queue_entry)?;
     Ok(entries
         .into_iter()
         .filter(|entry| {
@@ -327,49 +319,47 @@ pub fn flagged_signals(store: &Store, study_id: &str) -> Result<Vec<String>> {
 
 /// One flag with its audit trail, or `None` when it does not exist.
 pub fn flag(store: &Store, packet_id: u64) -> Result<Option<FlagRecord>> {
-    let conn = store.conn();
+    let db = store.db();
     type Row = (String, i64, String, String, i64, Option<i64>, i64);
-    let row: Option<Row> = conn
-        .query_row(
-            "SELECT p.study_id, p.device_id, d.label, p.payload_json, p.received_ms,
-                    p.updated_ms, p.revisions
-             FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
-             WHERE p.packet_id = ?1",
-            [packet_id as i64],
-            |r| {
-                Ok((
-                    r.get(0)?,
-                    r.get(1)?,
-                    r.get(2)?,
-                    r.get(3)?,
-                    r.get(4)?,
-                    r.get(5)?,
-                    r.get(6)?,
-                ))
-            },
-        )
-        .optional()?;
+    let row: Option<Row> = db.query_opt(
+        "SELECT p.study_id, p.device_id, d.label, p.payload_json, p.received_ms,
+                p.updated_ms, p.revisions
+         FROM flag_packets p JOIN devices d ON d.device_id = p.device_id
+         WHERE p.packet_id = ?1",
+        &params![packet_id as i64],
+        |r| {
+            Ok((
+                r.get(0)?,
+                r.get(1)?,
+                r.get(2)?,
+                r.get(3)?,
+                r.get(4)?,
+                r.get(5)?,
+                r.get(6)?,
+            ))
+        },
+    )?;
     let Some((study_id, device_id, participant, payload, received_ms, updated_ms, revisions)) = row
     else {
         return Ok(None);
     };
     let packet: FlagPacket = serde_json::from_str(&payload)
         .map_err(|e| corrupt(format!("flag packet {packet_id}"), e))?;
-    let mut stmt = conn.prepare(
+    let rows = db.query_map(
         "SELECT reviewer, action, note, at_ms FROM review_actions
          WHERE packet_id = ?1 ORDER BY action_id",
+        &params![packet_id as i64],
+        |r| {
+            Ok((
+                r.get::<String>(0)?,
+                r.get::<String>(1)?,
+                r.get::<String>(2)?,
+                r.get::<i64>(3)?,
+            ))
+        },
     )?;
-    let rows = stmt.query_map([packet_id as i64], |r| {
-        Ok((
-            r.get::<_, String>(0)?,
-            r.get::<_, String>(1)?,
-            r.get::<_, String>(2)?,
-            r.get::<_, i64>(3)?,
-        ))
-    })?;
     let mut history = Vec::new();
-    for row in rows {
-        let (reviewer, action, note, at_ms) = row?;
+    for (reviewer, action, note, at_ms) in rows {
         let action = ReviewAction::parse(&action)
             .ok_or_else(|| corrupt(format!("action on flag {packet_id}"), action))?;
         history.push(ActionRecord {
@@ -401,17 +391,16 @@ pub fn related_flags(store: &Store, record: &FlagRecord) -> Result<Vec<QueueEntr
          ORDER BY p.flag_date, p.packet_id",
         queue_columns()
     );
-    let mut stmt = store.conn().prepare(&sql)?;
-    let rows = stmt.query_map(
-        params![
+    store.db().query_map(
+        &sql,
+        &params![
             record.device_id as i64,
             record.packet_id as i64,
             record.packet.window_start.to_string(),
             record.packet.window_end.to_string()
         ],
         queue_entry,
-    )?;
-    collect_entries(rows)
+    )
 }
 
 /// Appends a reviewer's action to an episode's audit trail (it applies to
@@ -438,10 +427,10 @@ pub fn record_action(
             format!("a note is needed to {}", action.as_str()),
         ));
     }
-    store.conn().execute(
+    store.db().execute(
         "INSERT INTO review_actions (packet_id, reviewer, action, note, at_ms)
          VALUES (?1, ?2, ?3, ?4, ?5)",
-        params![packet_id as i64, reviewer, action.as_str(), note, now_ms],
+        &params![packet_id as i64, reviewer, action.as_str(), note, now_ms],
     )?;
     Ok(())
 }
@@ -517,16 +506,10 @@ fn queue_with_devices(store: &Store, study_id: &str) -> Result<Vec<(u64, QueueEn
          ORDER BY p.flag_date DESC, p.packet_id DESC",
         queue_columns()
     );
-    let mut stmt = store.conn().prepare(&sql)?;
-    let rows = stmt.query_map([study_id], |r| {
-        let device = r.get::<_, i64>(7)? as u64;
-        Ok(queue_entry(r)?.map(|e| (device, e)))
-    })?;
-    let mut out = Vec::new();
-    for row in rows {
-        out.push(row??);
-    }
-    Ok(out)
+    store.db().query_map(&sql, &params![study_id], |r| {
+        let device = r.get::<i64>(7)? as u64;
+        Ok((device, queue_entry(r)?))
+    })
 }
 
 /// One participant of `study_id` by label with every episode they sent
@@ -557,17 +540,15 @@ pub fn backlog(store: &Store, study_id: &str) -> Result<Backlog> {
         "SELECT {LATEST_ACTION_MS}, COALESCE(p.updated_ms, p.received_ms), p.received_ms, p.revisions
          FROM flag_packets p WHERE p.study_id = ?1"
     );
-    let mut stmt = store.conn().prepare(&sql)?;
-    let rows = stmt.query_map([study_id], |r| {
+    let rows = store.db().query_map(&sql, &params![study_id], |r| {
         Ok((
-            r.get::<_, Option<i64>>(0)?,
-            r.get::<_, i64>(1)?,
-            r.get::<_, i64>(2)?,
-            r.get::<_, i64>(3)?,
+            r.get::<Option<i64>>(0)?,
+            r.get::<i64>(1)?,
+            r.get::<i64>(2)?,
+            r.get::<i64>(3)?,
         ))
     })?;
-    for row in rows {
-        let (latest_action_ms, updated_ms, received_ms, revisions) = row?;
+    for (latest_action_ms, updated_ms, received_ms, revisions) in rows {
         match latest_action_ms {
             None => {
                 b.new += 1;

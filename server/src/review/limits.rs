@@ -43,9 +43,8 @@ use std::net::IpAddr;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use rusqlite::params;
-
 use crate::error::Result;
+use crate::params;
 use crate::store::Store;
 
 /// How failed sign-ins are limited. [`LoginLimits::default`] is the
@@ -443,10 +442,10 @@ pub fn record(
     event: LoginEvent,
     detail: &str,
 ) -> Result<()> {
-    store.conn().execute(
+    store.db().execute(
         "INSERT INTO review_login_events (at_ms, name, source, event, detail)
          VALUES (?1, ?2, ?3, ?4, ?5)",
-        params![
+        &params![
             at_ms,
             counted_name(name),
             source.to_string(),
@@ -459,11 +458,10 @@ pub fn record(
 
 /// The login record, oldest first.
 pub fn records(store: &Store) -> Result<Vec<LoginRecord>> {
-    let mut stmt = store.conn().prepare(
+    store.db().query_map(
         "SELECT at_ms, name, source, event, detail FROM review_login_events ORDER BY event_id",
-    )?;
-    let rows = stmt
-        .query_map([], |r| {
+        &params![],
+        |r| {
             Ok(LoginRecord {
                 at_ms: r.get(0)?,
                 name: r.get(1)?,
@@ -471,9 +469,8 @@ pub fn records(store: &Store) -> Result<Vec<LoginRecord>> {
                 event: r.get(3)?,
                 detail: r.get(4)?,
             })
-        })?
-        .collect::<rusqlite::Result<Vec<_>>>()?;
-    Ok(rows)
+        },
+    )
 }
 
 /// The text stored and logged for a lockout.
@@ -606,11 +603,17 @@ mod tests {
             "name cut to 64"
         );
         assert_eq!(got[0].source, "192.0.2.12");
-        let c = store.conn();
+        let db = store.db();
         assert!(
-            c.execute("UPDATE review_login_events SET event = 'success'", [])
+            db.execute(
+                "UPDATE review_login_events SET event = 'success'",
+                &params![]
+            )
+            .is_err()
+        );
+        assert!(
+            db.execute("DELETE FROM review_login_events", &params![])
                 .is_err()
         );
-        assert!(c.execute("DELETE FROM review_login_events", []).is_err());
     }
 }
