@@ -7,7 +7,8 @@
 #
 # Installs Debian's `postgresql` package when no server binaries are found.
 # The cluster trusts local connections, skips fsync (it lives for one test
-# run) and listens on 127.0.0.1 only.
+# run; PLIMSOLL_PG_DURABLE=1 keeps PostgreSQL's defaults, fsync on, as for the
+# load example's figures) and listens on 127.0.0.1 only.
 set -euo pipefail
 
 server_bin() {
@@ -45,8 +46,10 @@ start)
   as_owner "$bin/initdb" -D "$dir/data" -U postgres -A trust --no-sync >"$dir/initdb.log" 2>&1 \
     || { cat "$dir/initdb.log" >&2; exit 1; }
   port=$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')
+  nosync="-F"
+  [ "${PLIMSOLL_PG_DURABLE:-0}" = 1 ] && nosync=""
   as_owner "$bin/pg_ctl" -D "$dir/data" -l "$dir/server.log" -w -t 60 \
-    -o "-h 127.0.0.1 -p $port -k $dir -F -c max_connections=400" start >&2 \
+    -o "-h 127.0.0.1 -p $port -k $dir $nosync -c max_connections=400" start >&2 \
     || { cat "$dir/server.log" >&2; exit 1; }
   echo "export PLIMSOLL_TEST_POSTGRES=postgres://postgres@127.0.0.1:$port/postgres"
   echo "export PLIMSOLL_PG_CLUSTER=$dir"

@@ -13,7 +13,13 @@
 //! read from the threads' own counters (`/proc/self/task/*/stat`) and printed too: on a shared
 //! machine it is steadier than the wall-clock rate.
 //!
-//! `cargo run --release -p plimsoll-server --example load -- [DEVICES] [CONCURRENCY]`
+//! With `--postgres URL` (a PostgreSQL server the run may create databases on), the runs are
+//! instead: SQLite (the named baseline), PostgreSQL behind one aggregator, and PostgreSQL behind
+//! two aggregators (replicas, each with its own gRPC server; devices alternate between them for
+//! every call), all in plaintext, each on a fresh database, with each run's rate as a ratio of
+//! SQLite's.
+//!
+//! `cargo run --release -p plimsoll-server --example load -- [DEVICES] [CONCURRENCY] [--postgres URL]`
 
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -95,10 +101,30 @@ struct Measured {
     client_cpu_s: f64,
 }
 
+/// Where a run keeps the aggregator's state.
+#[derive(Clone, Copy)]
+enum Store<'a> {
+    Sqlite,
+    /// A fresh database on this PostgreSQL server, behind this many aggregators.
+    Postgres {
+        admin_url: &'a str,
+        replicas: usize,
+    },
+}
+
 fn main() -> anyhow::Result<()> {
-    let args: Vec<String> = std::env::args().collect();
-    let n: usize = args.get(1).map_or(Ok(10_000), |s| s.parse())?;
-    let concurrency: usize = args.get(2).map_or(Ok(256), |s| s.parse())?;
+    let mut args: Vec<String> = std::env::args().skip(1).collect();
+    let postgres = match args.iter().position(|a| a == "--postgres") {
+        Some(i) => {
+            anyhow::ensure!(i + 1 < args.len(), "--postgres needs a URL");
+            let url = args.remove(i + 1);
+            args.remove(i);
+            Some(url)
+        }
+        None => None,
+    };
+    let n: usize = args.first().map_or(Ok(10_000), |s| s.parse())?;
+    let concurrency: usize = args.get(1).map_or(Ok(256), |s| s.parse())?;
     let runtime = |name: &str| {
         tokio::runtime::Builder::new_multi_thread()
             .worker_threads(2)
@@ -112,9 +138,24 @@ fn main() -> anyhow::Result<()> {
     // An unmeasured warm-up run (its own aggregator, a fifth of the devices): without it the
     // first measured run carried the process's start-up costs (thread pools, allocator growth,
     // page faults) and came out slower whichever transport went first.
-    client_rt.block_on(run(server_rt.handle(), n.div_ceil(5), concurrency, false))?;
-    let plain = client_rt.block_on(run(server_rt.handle(), n, concurrency, false))?;
-    let tls = client_rt.block_on(run(server_rt.handle(), n, concurrency, true))?;
+    client_rt.block_on(run(
+        server_rt.handle(),
+        n.div_ceil(5),
+        concurrency,
+        false,
+        Store::Sqlite,
+    ))?;
+    if let Some(admin_url) = &postgres {
+        return compare_stores(&server_rt, &client_rt, n, concurrency, admin_url);
+    }
+    let plain = client_rt.block_on(run(
+        server_rt.handle(),
+        n,
+        concurrency,
+        false,
+        Store::Sqlite,
+    ))?;
+    let tls = client_rt.block_on(run(server_rt.handle(), n, concurrency, true, Store::Sqlite))?;
     println!(
         "transport   enrolments/s   updates/s   ratio to target   p50 ms   p99 ms   \
          aggregator CPU µs/update   devices CPU µs/update"
@@ -142,15 +183,110 @@ fn main() -> anyhow::Result<()> {
     Ok(())
 }
 
-/// One load run: a fresh aggregator, `n` devices enrolling and submitting one update each.
+/// SQLite, then PostgreSQL behind one and behind two aggregators, in plaintext.
+fn compare_stores(
+    server_rt: &tokio::runtime::Runtime,
+    client_rt: &tokio::runtime::Runtime,
+    n: usize,
+    concurrency: usize,
+    admin_url: &str,
+) -> anyhow::Result<()> {
+    let admin = plimsoll_server::db::Db::postgres(admin_url)?;
+    let setting = |name: &str| -> anyhow::Result<String> {
+        Ok(admin.query_row(
+            "SELECT setting FROM pg_settings WHERE name = ?1",
+            &plimsoll_server::params![name],
+            |r| r.get::<String>(0),
+        )?)
+    };
+    let version = admin.query_row("SELECT version()", &plimsoll_server::params![], |r| {
+        r.get::<String>(0)
+    })?;
+    println!(
+        "PostgreSQL: {version}; fsync {}, synchronous_commit {}",
+        setting("fsync")?,
+        setting("synchronous_commit")?
+    );
+    let mut rows = Vec::new();
+    for (name, store) in [
+        ("SQLite (baseline)", Store::Sqlite),
+        (
+            "PostgreSQL, 1 aggregator",
+            Store::Postgres {
+                admin_url,
+                replicas: 1,
+            },
+        ),
+        (
+            "PostgreSQL, 2 aggregators",
+            Store::Postgres {
+                admin_url,
+                replicas: 2,
+            },
+        ),
+    ] {
+        let m = client_rt.block_on(run(server_rt.handle(), n, concurrency, false, store))?;
+        rows.push((name, m));
+    }
+    println!(
+        "store                        enrolments/s   updates/s   ratio to SQLite   p50 ms   p99 ms   \
+         aggregator CPU µs/update"
+    );
+    let baseline = n as f64 / rows[0].1.submit_s;
+    for (name, m) in &rows {
+        let rate = n as f64 / m.submit_s;
+        println!(
+            "{name:<27}   {:>12.0}   {rate:>9.0}   {:>14.2}×   {:>6.2}   {:>6.2}   {:>24.0}",
+            n as f64 / m.enroll_s,
+            rate / baseline,
+            m.p50_ms,
+            m.p99_ms,
+            m.server_cpu_s / n as f64 * 1e6,
+        );
+    }
+    println!(
+        "(aggregator CPU counts the aggregators' threads only; PostgreSQL's own processes are not \
+         in it)"
+    );
+    Ok(())
+}
+
+/// A fresh, empty database on the PostgreSQL server at `admin_url`; its URL.
+fn fresh_database(admin_url: &str) -> anyhow::Result<String> {
+    let name = format!(
+        "plimsoll_load_{}_{}",
+        std::process::id(),
+        random_token()[..12].to_owned()
+    );
+    plimsoll_server::db::Db::postgres(admin_url)?
+        .execute_batch(&format!("CREATE DATABASE {name}"))?;
+    let (base, _) = admin_url
+        .rsplit_once('/')
+        .ok_or_else(|| anyhow::anyhow!("--postgres: a URL ending in a database name"))?;
+    Ok(format!("{base}/{name}"))
+}
+
+/// One load run: a fresh aggregator (or several on one PostgreSQL database), `n` devices
+/// enrolling and submitting one update each.
 async fn run(
     server_rt: &tokio::runtime::Handle,
     n: usize,
     concurrency: usize,
     tls: bool,
+    store: Store<'_>,
 ) -> anyhow::Result<Measured> {
     let dir = tempfile::tempdir()?;
-    let coordinator = Arc::new(Coordinator::open(&dir.path().join("load.db"))?);
+    let (location, replicas) = match store {
+        Store::Sqlite => (dir.path().join("load.db"), 1),
+        Store::Postgres {
+            admin_url,
+            replicas,
+        } => (
+            std::path::PathBuf::from(fresh_database(admin_url)?),
+            replicas,
+        ),
+    };
+    let coordinator = Arc::new(Coordinator::open(&location)?);
     let code = coordinator.create_study(
         StudyConfig {
             study_id: "load".into(),
@@ -187,23 +323,34 @@ async fn run(
     } else {
         None
     };
-    let identity = certs.as_ref().map(|(_, identity)| identity.clone());
-    let served = coordinator.clone();
-    let server = server_rt
-        .spawn(async move {
-            serve_with(
-                served,
-                tokio::net::TcpListener::bind("127.0.0.1:0").await?,
-                identity.as_ref(),
-            )
-            .await
-        })
-        .await??;
+    // The first aggregator serves the study it created; the others open the same database.
+    let mut coordinators = vec![coordinator.clone()];
+    for _ in 1..replicas {
+        coordinators.push(Arc::new(Coordinator::open(&location)?));
+    }
+    let mut servers = Vec::new();
+    for served in coordinators {
+        let identity = certs.as_ref().map(|(_, identity)| identity.clone());
+        servers.push(
+            server_rt
+                .spawn(async move {
+                    serve_with(
+                        served,
+                        tokio::net::TcpListener::bind("127.0.0.1:0").await?,
+                        identity.as_ref(),
+                    )
+                    .await
+                })
+                .await??,
+        );
+    }
     // A few HTTP/2 connections, many streams each, as a fleet behind a
-    // gateway would look; every call is a real gRPC request on loopback.
-    let port = server.addr.port();
+    // gateway would look; every call is a real gRPC request on loopback. With replicas the
+    // connections alternate between them, so consecutive devices reach different ones.
     let channels: Vec<Channel> = (0..8)
-        .map(|_| -> anyhow::Result<Channel> {
+        .map(|k| -> anyhow::Result<Channel> {
+            let server = &servers[k % servers.len()];
+            let port = server.addr.port();
             Ok(match &certs {
                 Some((ca, _)) => Endpoint::from_shared(format!("https://localhost:{port}"))?
                     .tls_config(
@@ -298,7 +445,9 @@ async fn run(
     let pct =
         |q: f64| latencies[((q * (n - 1) as f64).round() as usize).min(n - 1)].as_secs_f64() * 1e3;
     let status = coordinator.status("load")?;
-    server.shutdown().await?;
+    for server in servers {
+        server.shutdown().await?;
+    }
     anyhow::ensure!(status.rounds_completed == 1, "the round did not close");
     Ok(Measured {
         enroll_s,

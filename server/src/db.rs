@@ -489,7 +489,8 @@ struct Pg {
 impl Pg {
     fn connect(url: &str) -> Result<Pg> {
         let config: tokio_postgres::Config = url.parse().map_err(|e| {
-            AggregatorError::invalid("--db", format!("not a PostgreSQL URL ({e}): {url}"))
+            // The URL may hold a password: it is not repeated.
+            AggregatorError::invalid("--db", format!("not a valid PostgreSQL URL: {e}"))
         })?;
         let (tx, rx) = std::sync::mpsc::channel();
         std::thread::Builder::new()

@@ -850,6 +850,17 @@ impl Coordinator {
         let mut state = self.lock();
         let State { store, studies } = &mut *state;
         let mut changed = false;
+        if shared(store) {
+            // A study another process created: its deadlines are this one's too.
+            for id in store.study_ids()? {
+                if !studies.contains_key(&id)
+                    && let Some(config) = store.study_config(&id)?
+                {
+                    studies.insert(id, load_runtime(store, config)?);
+                    changed = true;
+                }
+            }
+        }
         for rt in studies.values_mut() {
             // Another process may have moved the study on (and may have stopped: its
             // deadlines are this one's to keep).

@@ -1340,6 +1340,15 @@ impl Store {
         )
     }
 
+    /// Every study's id, sorted.
+    pub fn study_ids(&self) -> Result<Vec<String>> {
+        self.db.query_map(
+            "SELECT study_id FROM studies ORDER BY study_id",
+            &params![],
+            |r| r.get::<String>(0),
+        )
+    }
+
     /// One study's stored settings.
     pub fn study_config(&self, study_id: &str) -> Result<Option<StudyConfig>> {
         self.db
