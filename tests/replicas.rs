@@ -232,6 +232,52 @@ async fn a_stopped_replica_leaves_its_round_and_deadline_to_the_other() {
 }
 
 /// `join_all` without another dependency: runs the futures concurrently on the runtime.
+/// A device that submitted through B and asks A for work at once, before A has read the
+/// submission by any sync, is told to wait, not handed the same round's task again (a
+/// second task would have it train again and send a second update).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_submission_through_one_replica_counts_at_the_other_at_once() {
+    let Some(url) = fresh_postgres_database("replicas_seen") else {
+        return;
+    };
+    let servers = two_replicas(&url, study_config(STUDY, &[Signal::RestingHr], 2, 1)).await;
+    let mut devices = Vec::new();
+    for (i, server) in servers.iter().enumerate() {
+        devices.push(
+            server
+                .enroll(
+                    STUDY,
+                    &format!("p-{i}"),
+                    &["resting_hr_bpm"],
+                    FlagSharing::Withheld,
+                )
+                .await,
+        );
+    }
+    let [mut a, mut b] = [servers[0].client(), servers[1].client()];
+    let t = task(&mut a, &devices[0]).await;
+    submit(&mut b, &devices[0], t.round_id, 1.0, 30).await;
+    let request = pb::FetchTaskRequest {
+        study_id: STUDY.into(),
+        device_id: devices[0].device_id,
+        wait_ms: 0,
+    };
+    let work = a
+        .fetch_task(authorized(&devices[0], request))
+        .await
+        .unwrap()
+        .into_inner()
+        .work;
+    match work {
+        Some(pb::fetch_task_response::Work::Wait(w)) => assert!(
+            w.reason.contains("received"),
+            "unexpected reason: {}",
+            w.reason
+        ),
+        other => panic!("expected to wait, got {other:?}"),
+    }
+}
+
 async fn futures_join_all<F>(futures: impl Iterator<Item = F>) -> Vec<F::Output>
 where
     F: std::future::Future + Send + 'static,

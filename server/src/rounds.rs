@@ -97,6 +97,34 @@ impl StudyRuntime {
         self.devices.len() - self.revoked
     }
 
+    /// Adds a device read from the store.
+    fn add_device(&mut self, d: crate::store::StoredDevice) {
+        self.labels.insert(d.label, d.device_id);
+        let old = self.devices.insert(
+            d.device_id,
+            Device {
+                signals: d.signals,
+                consent_share_flags: d.consent_share_flags,
+                revoked: d.revoked,
+                sensor_model: d.sensor_model,
+                group: d.group,
+            },
+        );
+        let was_revoked = old.is_some_and(|o| o.revoked);
+        self.revoked = self.revoked + usize::from(d.revoked) - usize::from(was_revoked);
+    }
+
+    /// The device terms of [`crate::store::StudyStamp`] computed from the devices held in memory.
+    fn device_terms(&self) -> [i64; 3] {
+        let consenting = self
+            .devices
+            .iter()
+            .filter(|(_, d)| d.consent_share_flags)
+            .map(|(&id, _)| id as i64)
+            .sum();
+        [self.devices.len() as i64, self.revoked as i64, consenting]
+    }
+
     /// Marks device `id` revoked in memory (the database already says so).
     fn mark_revoked(&mut self, id: u64) {
         if let Some(d) = self.devices.get_mut(&id)
@@ -683,7 +711,14 @@ impl Coordinator {
                 ),
             });
         }
-        if open.submissions.contains_key(&device_id) {
+        // On a shared store the update may have come in through another process.
+        if open.submissions.contains_key(&device_id)
+            || (shared(&state.store)
+                && state
+                    .store
+                    .submission(study_id, open.round_id, device_id)?
+                    .is_some())
+        {
             return Ok(Work::Wait {
                 retry_after_ms: RETRY_AFTER_MS,
                 reason: format!(
@@ -1567,21 +1602,14 @@ fn shared(store: &Store) -> bool {
 /// A study's in-memory state, read from the store.
 fn load_runtime(store: &Store, config: StudyConfig) -> Result<StudyRuntime> {
     let id = config.study_id.clone();
-    let mut devices = BTreeMap::new();
-    let mut labels = HashMap::new();
-    for d in store.devices(&id)? {
-        labels.insert(d.label.clone(), d.device_id);
-        devices.insert(
-            d.device_id,
-            Device {
-                signals: d.signals,
-                consent_share_flags: d.consent_share_flags,
-                revoked: d.revoked,
-                sensor_model: d.sensor_model,
-                group: d.group,
-            },
-        );
-    }
+    // The stamp first: what changes while the rest is read then shows as a stamp that
+    // differs at the next sync, never as a change the stamp already counts but this
+    // picture misses.
+    let stamp = if shared(store) {
+        Some(store.study_stamp(&id)?)
+    } else {
+        None
+    };
     let latest = store
         .priors(&id)?
         .pop()
@@ -1597,27 +1625,26 @@ fn load_runtime(store: &Store, config: StudyConfig) -> Result<StudyRuntime> {
     for stage in DetectionStage::ALL {
         detection_complete[stage.index()] = store.completed_stage(&id, stage)?.is_some();
     }
-    let revoked = devices.values().filter(|d| d.revoked).count();
-    Ok(StudyRuntime {
-        revoked,
+    let mut rt = StudyRuntime {
+        revoked: 0,
         rounds_completed: store.rounds_completed(&id)?,
         last_round_id: store.last_round_id(&id)?,
         round_limit: config.round_limit(),
         config,
-        devices,
-        labels,
+        devices: BTreeMap::new(),
+        labels: HashMap::new(),
         latest,
         open,
         detection_complete,
         last_secure: None,
         stage_secure: Default::default(),
-        stamp: if shared(store) {
-            Some(store.study_stamp(&id)?)
-        } else {
-            None
-        },
+        stamp,
         synced_ms: crate::service::now_ms(),
-    })
+    };
+    for d in store.devices(&id)? {
+        rt.add_device(d);
+    }
+    Ok(rt)
 }
 
 /// How stale (ms) a replica's picture of a study may be when it answers a device; races are
@@ -1635,8 +1662,39 @@ fn sync_study(store: &Store, rt: &mut StudyRuntime, now_ms: i64, max_age_ms: i64
     let study_id = rt.config.study_id.clone();
     let stamp = store.study_stamp(&study_id)?;
     rt.synced_ms = now_ms;
-    if rt.stamp == Some(stamp) {
+    let Some(held) = rt.stamp else {
+        reload_runtime(store, rt)?;
+        return Ok(true);
+    };
+    if held == stamp {
         return Ok(false);
+    }
+    // Only devices enrolled (the common change while a cohort enrols, here or through
+    // another process): read just the devices after the newest one held. Ids may commit out
+    // of order (two processes enrolling at once), leaving a gap below it: then read the ids
+    // and the devices from the lowest missing one on. The device terms recomputed from memory
+    // must then equal the stored ones; anything else (a revocation, a consent change, a
+    // round) re-reads the whole study.
+    if held.with_devices(stamp.devices()) == stamp {
+        let after = rt.devices.keys().next_back().copied().unwrap_or(0);
+        for d in store.devices_after(&study_id, after)? {
+            rt.add_device(d);
+        }
+        if rt.device_terms()[0] != stamp.devices()[0] {
+            let missing = store
+                .device_ids(&study_id)?
+                .into_iter()
+                .find(|id| !rt.devices.contains_key(id));
+            if let Some(first) = missing {
+                for d in store.devices_after(&study_id, first - 1)? {
+                    rt.add_device(d);
+                }
+            }
+        }
+        if rt.device_terms() == stamp.devices() {
+            rt.stamp = Some(stamp);
+            return Ok(true);
+        }
     }
     reload_runtime(store, rt)?;
     Ok(true)

@@ -192,6 +192,22 @@ pub enum Closing {
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct StudyStamp([i64; 6]);
 
+impl StudyStamp {
+    /// The device terms: how many devices, how many revoked, and the sum of the ids of the
+    /// devices that consent to share flag packets (a sum, not a count, so that one device
+    /// withdrawing consent while another gives it still changes the stamp).
+    pub fn devices(&self) -> [i64; 3] {
+        [self.0[2], self.0[3], self.0[4]]
+    }
+
+    /// The same stamp with other device terms.
+    #[must_use]
+    pub fn with_devices(mut self, devices: [i64; 3]) -> Self {
+        self.0[2..5].copy_from_slice(&devices);
+        self
+    }
+}
+
 /// A completed calibration stage as stored.
 #[derive(Debug, Clone, PartialEq)]
 pub struct CompletedStage {
@@ -747,11 +763,25 @@ impl Store {
     }
 
     pub fn devices(&self, study_id: &str) -> Result<Vec<StoredDevice>> {
+        self.devices_after(study_id, 0)
+    }
+
+    /// The ids of the study's devices, in order.
+    pub fn device_ids(&self, study_id: &str) -> Result<Vec<u64>> {
+        self.db.query_map(
+            "SELECT device_id FROM devices WHERE study_id = ?1 ORDER BY device_id",
+            &params![study_id],
+            |r| r.get::<i64>(0).map(|id| id as u64),
+        )
+    }
+
+    /// The study's devices whose id is greater than `after` (ids start at 1), in id order.
+    pub fn devices_after(&self, study_id: &str, after: u64) -> Result<Vec<StoredDevice>> {
         let rows = self.db.query_map(
             "SELECT device_id, label, signals_json, consent_share_flags, revoked_ms,
                     sensor_model, group_label
-             FROM devices WHERE study_id = ?1 ORDER BY device_id",
-            &params![study_id],
+             FROM devices WHERE study_id = ?1 AND device_id > ?2 ORDER BY device_id",
+            &params![study_id, i64::try_from(after).unwrap_or(i64::MAX)],
             |r| {
                 Ok((
                     r.get::<i64>(0)?,
@@ -1317,15 +1347,22 @@ impl Store {
 
     /// What changes when another process serving the same study moves it on: rounds
     /// opened and ended, devices enrolled, revoked or changing consent, stages completed.
-    /// Equal stamps mean this process's picture of the study is still current.
+    /// Equal stamps mean this process's picture of the study is still current. The device
+    /// part ([`StudyStamp::devices`]) can be computed from the devices held in memory, so a
+    /// process can tell whether reading the newly enrolled ones brought it up to date.
     pub fn study_stamp(&self, study_id: &str) -> Result<StudyStamp> {
+        // One pass over the study's devices for the three device terms.
         self.db.query_row(
             "SELECT (SELECT COALESCE(MAX(round_id), 0) FROM rounds WHERE study_id = ?1),
                     (SELECT COUNT(*) FROM rounds WHERE study_id = ?1 AND state <> 'open'),
-                    (SELECT COUNT(*) FROM devices WHERE study_id = ?1),
-                    (SELECT COUNT(*) FROM devices WHERE study_id = ?1 AND revoked_ms IS NOT NULL),
-                    (SELECT COUNT(*) FROM devices WHERE study_id = ?1 AND consent_share_flags = 1),
-                    (SELECT COUNT(*) FROM detection_stages WHERE study_id = ?1)",
+                    d.n, d.revoked, d.consenting,
+                    (SELECT COUNT(*) FROM detection_stages WHERE study_id = ?1)
+             FROM (SELECT COUNT(*) AS n,
+                          CAST(COALESCE(SUM(CASE WHEN revoked_ms IS NOT NULL THEN 1 ELSE 0 END),
+                                        0) AS BIGINT) AS revoked,
+                          CAST(COALESCE(SUM(CASE WHEN consent_share_flags = 1 THEN device_id
+                                                 ELSE 0 END), 0) AS BIGINT) AS consenting
+                   FROM devices WHERE study_id = ?1) AS d",
             &params![study_id],
             |r| {
                 Ok(StudyStamp([
