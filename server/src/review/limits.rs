@@ -24,9 +24,11 @@
 //!
 //! Where the state lives: **in memory**, in the review server's process.
 //! Counters are written on every failed attempt and read on every attempt;
-//! keeping them in SQLite would add a write transaction per guess to the
-//! aggregator's database during an attack, for no gain in a single-process
-//! server. A restart forgets them (an attacker cannot restart the server).
+//! keeping them in the database would add a write transaction per guess to
+//! the aggregator's database during an attack. A restart forgets them (an
+//! attacker cannot restart the server). With several review servers on one
+//! PostgreSQL database, each counts its own: a guesser spread over `k`
+//! servers gets up to `k` times the free failures (stated in the README).
 //! Memory is bounded by forgetting idle counters; a flood of distinct names
 //! from one address stops at that address's limit.
 //!
