@@ -2112,6 +2112,47 @@ mod tests {
         }
     }
 
+    /// The two schemas hold the same tables with the same columns (the invariant that a
+    /// schema change goes to both databases; DEVELOPERS.md, "Architecture invariants").
+    #[test]
+    fn both_databases_have_the_same_tables_and_columns() {
+        let Some(postgres) = postgres_store("schema_parity") else {
+            return;
+        };
+        let sqlite = Store::in_memory().unwrap();
+        let columns = |store: &Store, sql: &str| -> std::collections::BTreeSet<(String, String)> {
+            store
+                .db()
+                .query_map(sql, &params![], |r| {
+                    Ok((r.get::<String>(0)?, r.get::<String>(1)?))
+                })
+                .unwrap()
+                .into_iter()
+                .collect()
+        };
+        let on_sqlite = columns(
+            &sqlite,
+            "SELECT m.name, p.name FROM sqlite_master m, pragma_table_info(m.name) p
+             WHERE m.type = 'table' AND m.name NOT LIKE 'sqlite_%'",
+        );
+        let on_postgres = columns(
+            &postgres,
+            "SELECT CAST(table_name AS TEXT), CAST(column_name AS TEXT)
+             FROM information_schema.columns WHERE table_schema = 'public'",
+        );
+        assert!(on_sqlite.len() > 40, "too few columns read: {on_sqlite:?}");
+        assert_eq!(
+            on_sqlite.difference(&on_postgres).collect::<Vec<_>>(),
+            Vec::<&(String, String)>::new(),
+            "on SQLite only"
+        );
+        assert_eq!(
+            on_postgres.difference(&on_sqlite).collect::<Vec<_>>(),
+            Vec::<&(String, String)>::new(),
+            "on PostgreSQL only"
+        );
+    }
+
     #[test]
     fn review_actions_are_append_only() {
         let store = Store::in_memory().unwrap();
