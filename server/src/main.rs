@@ -69,16 +69,8 @@ enum Command {
         /// Plain HTTP: counts and latencies only, no participant data.
         #[arg(long)]
         metrics_listen: Option<SocketAddr>,
-        /// Server certificate chain (PEM), e.g. from `dev-certificate`.
-        #[arg(long, requires = "tls_key")]
-        tls_cert: Option<PathBuf>,
-        /// Private key of the server certificate (PEM).
-        #[arg(long, requires = "tls_cert")]
-        tls_key: Option<PathBuf>,
-        /// Serve plaintext on a non-loopback address anyway (only behind a
-        /// TLS-terminating proxy on the same host or network segment).
-        #[arg(long, conflicts_with = "tls_cert")]
-        insecure_plaintext: bool,
+        #[command(flatten)]
+        transport: Transport,
     },
     /// Serve only the clinician review pages, apart from the gRPC service (on
     /// another host, say, reading the same PostgreSQL database). Off loopback
@@ -87,16 +79,8 @@ enum Command {
         /// Address to listen on, e.g. 0.0.0.0:8443.
         #[arg(long, default_value = "127.0.0.1:8080")]
         listen: SocketAddr,
-        /// Server certificate chain (PEM).
-        #[arg(long, requires = "tls_key")]
-        tls_cert: Option<PathBuf>,
-        /// Private key of the server certificate (PEM).
-        #[arg(long, requires = "tls_cert")]
-        tls_key: Option<PathBuf>,
-        /// Serve plaintext on a non-loopback address anyway (only behind a
-        /// TLS-terminating proxy).
-        #[arg(long, conflicts_with = "tls_cert")]
-        insecure_plaintext: bool,
+        #[command(flatten)]
+        transport: Transport,
     },
     /// Write a development certificate authority (ca.pem, for devices and
     /// browsers to trust) and a server certificate it signed
@@ -227,28 +211,43 @@ fn shown(db: &std::path::Path) -> String {
     }
 }
 
-/// Refuses plaintext on a non-loopback address unless `insecure_plaintext`.
-fn check_plaintext(
-    tls: bool,
+/// How `serve` and `review` take their TLS identity.
+#[derive(Debug, clap::Args)]
+struct Transport {
+    /// Server certificate chain (PEM), e.g. from `dev-certificate`.
+    #[arg(long, requires = "tls_key")]
+    tls_cert: Option<PathBuf>,
+    /// Private key of the server certificate (PEM).
+    #[arg(long, requires = "tls_cert")]
+    tls_key: Option<PathBuf>,
+    /// Serve plaintext on a non-loopback address anyway (only behind a
+    /// TLS-terminating proxy on the same host or network segment).
+    #[arg(long, conflicts_with = "tls_cert")]
     insecure_plaintext: bool,
-    listeners: &[(&str, SocketAddr)],
-) -> anyhow::Result<()> {
-    if tls || insecure_plaintext {
-        if insecure_plaintext {
+}
+
+impl Transport {
+    /// The TLS identity to serve with, or `None` for plaintext; plaintext on a
+    /// non-loopback address of `listeners` is refused unless `--insecure-plaintext`.
+    fn identity(&self, listeners: &[(&str, SocketAddr)]) -> anyhow::Result<Option<TlsIdentity>> {
+        if let (Some(cert), Some(key)) = (&self.tls_cert, &self.tls_key) {
+            return Ok(Some(TlsIdentity::load(cert, key)?));
+        }
+        if self.insecure_plaintext {
             tracing::warn!("serving plaintext as asked (--insecure-plaintext)");
+            return Ok(None);
         }
-        return Ok(());
-    }
-    for (what, addr) in listeners {
-        if !addr.ip().is_loopback() {
-            bail!(
-                "refusing to serve {what} in plaintext on non-loopback address {addr}: \
-                 give --tls-cert and --tls-key (`plimsoll-aggregator dev-certificate` \
-                 makes a development pair), or --insecure-plaintext behind a TLS proxy"
-            );
+        for (what, addr) in listeners {
+            if !addr.ip().is_loopback() {
+                bail!(
+                    "refusing to serve {what} in plaintext on non-loopback address {addr}: \
+                     give --tls-cert and --tls-key (`plimsoll-aggregator dev-certificate` \
+                     makes a development pair), or --insecure-plaintext behind a TLS proxy"
+                );
+            }
         }
+        Ok(None)
     }
-    Ok(())
 }
 
 fn reviewer_command(db: &std::path::Path, command: ReviewerCommand) -> anyhow::Result<()> {
@@ -306,18 +305,12 @@ async fn main() -> anyhow::Result<()> {
             listen,
             review_listen,
             metrics_listen,
-            tls_cert,
-            tls_key,
-            insecure_plaintext,
+            transport,
         } => {
-            let tls = match (tls_cert, tls_key) {
-                (Some(cert), Some(key)) => Some(TlsIdentity::load(&cert, &key)?),
-                _ => None,
-            };
             let listeners: Vec<_> = std::iter::once(("gRPC", listen))
                 .chain(review_listen.map(|a| ("review pages", a)))
                 .collect();
-            check_plaintext(tls.is_some(), insecure_plaintext, &listeners)?;
+            let tls = transport.identity(&listeners)?;
             let listener = tokio::net::TcpListener::bind(listen)
                 .await
                 .with_context(|| format!("binding {listen}"))?;
@@ -360,21 +353,8 @@ async fn main() -> anyhow::Result<()> {
             }
             server.shutdown().await?;
         }
-        Command::Review {
-            listen,
-            tls_cert,
-            tls_key,
-            insecure_plaintext,
-        } => {
-            let tls = match (tls_cert, tls_key) {
-                (Some(cert), Some(key)) => Some(TlsIdentity::load(&cert, &key)?),
-                _ => None,
-            };
-            check_plaintext(
-                tls.is_some(),
-                insecure_plaintext,
-                &[("review pages", listen)],
-            )?;
+        Command::Review { listen, transport } => {
+            let tls = transport.identity(&[("review pages", listen)])?;
             let listener = tokio::net::TcpListener::bind(listen)
                 .await
                 .with_context(|| format!("binding {listen}"))?;

@@ -257,12 +257,10 @@ impl Coordinator {
         let mut studies = BTreeMap::new();
         for config in store.studies()? {
             let id = config.study_id.clone();
+            // (`load_runtime` reads the open round's stored submissions, every process's.)
             let mut runtime = load_runtime(&store, config)?;
             // A crash between the last accepted submission and the closing
             // transaction leaves a complete round open: finish it now.
-            if shared(&store) {
-                refresh_submissions(&store, &mut runtime)?;
-            }
             if runtime
                 .open
                 .as_ref()
@@ -774,9 +772,15 @@ impl Coordinator {
                 )
             {
                 let State { store, studies } = &mut *state;
-                if let Some(rt) = studies.get_mut(&s.study_id)
-                    && sync_study(store, rt, crate::service::now_ms(), 0).unwrap_or(false)
-                {
+                let synced = match studies.get_mut(&s.study_id) {
+                    Some(rt) => sync_study(store, rt, crate::service::now_ms(), 0)
+                        .inspect_err(|e| {
+                            tracing::warn!(study = %s.study_id, error = %e, "re-reading the study failed; answering from this process's picture");
+                        })
+                        .unwrap_or(false),
+                    None => false,
+                };
+                if synced {
                     closed = true;
                     answer = check(&mut state);
                 }
