@@ -24,7 +24,7 @@ use crate::error::{AggregatorError, Result};
 use crate::packets::FlagPacket;
 use crate::secrets::{constant_time_eq, enrollment_code_hash, new_enrollment_code, secret_hash};
 use crate::secure_round::{
-    Advance, DeviceMessage, EndedSum, SecureNext, SecureRound, SecureTask, Slot,
+    Advance, DeviceMessage, EndedSum, FinishJob, SecureNext, SecureRound, SecureTask, Slot,
     decode_private_slots, decode_slots, decode_stage,
 };
 use crate::store::StoredEpisode;
@@ -85,6 +85,9 @@ struct StudyRuntime {
     /// Secure aggregation of the calibration stages, per stage (by
     /// [`DetectionStage::index`]). Memory only: after a restart a stage's sums start again.
     stage_secure: [StageSecure; 2],
+    /// Secure sums whose last phase closed: their costly end, to be run by the coordinator
+    /// outside its lock ([`Coordinator::run_finish_jobs`]).
+    finish_jobs: Vec<FinishJob>,
     /// On a shared (PostgreSQL) store: the study's stamp when this process last read it, and
     /// when (see [`sync_study`]).
     stamp: Option<StudyStamp>,
@@ -376,6 +379,7 @@ impl Coordinator {
                 latest: initial,
                 last_secure: None,
                 stage_secure: Default::default(),
+                finish_jobs: Vec::new(),
                 rounds_completed: 0,
                 last_round_id: 0,
                 open: None,
@@ -961,9 +965,41 @@ impl Coordinator {
             }
             changed = true;
         }
+        let jobs = take_finish_jobs(studies);
         drop(state);
+        changed |= self.run_finish_jobs(jobs, now_ms)?;
         if changed {
             self.notify();
+        }
+        Ok(changed)
+    }
+
+    /// Runs `jobs` (each study's [`FinishJob`]s, the costly end of secure sums) without the
+    /// lock, so that other calls go on meanwhile, then takes the lock and publishes their
+    /// outcomes (`crate::secure_round`, "Finishing outside the coordinator's lock"). Returns
+    /// whether anything changed.
+    fn run_finish_jobs(&self, jobs: Vec<(String, Vec<FinishJob>)>, now_ms: i64) -> Result<bool> {
+        if jobs.is_empty() {
+            return Ok(false);
+        }
+        let mut ids = Vec::with_capacity(jobs.len());
+        for (study_id, study_jobs) in jobs {
+            for job in study_jobs {
+                job.run();
+            }
+            ids.push(study_id);
+        }
+        let mut state = self.lock();
+        let State { store, studies } = &mut *state;
+        let mut changed = false;
+        for id in ids {
+            let Some(rt) = studies.get_mut(&id) else {
+                continue;
+            };
+            changed |= advance_secure(store, rt, now_ms, false)?;
+            for stage in DetectionStage::ALL {
+                changed |= advance_stage_sessions(store, rt, stage, now_ms, false)?;
+            }
         }
         Ok(changed)
     }
@@ -978,6 +1014,30 @@ impl Coordinator {
     /// (FAILED_PRECONDITION); a message the protocol refuses (INVALID_ARGUMENT naming the
     /// field, or FAILED_PRECONDITION for a later phase's message); the database.
     pub fn secure_step(
+        &self,
+        study_id: &str,
+        device_id: u64,
+        credential: &DeviceCredential,
+        sum: SecureSum,
+        message: Option<DeviceMessage>,
+        now_ms: i64,
+    ) -> Result<SecureNext> {
+        let answer =
+            self.secure_step_locked(study_id, device_id, credential, sum, message, now_ms)?;
+        // The call that closed a sum's last phase computes the sum, outside the lock.
+        let jobs = take_finish_jobs(&mut self.lock().studies);
+        if jobs.is_empty() {
+            return Ok(answer);
+        }
+        if self.run_finish_jobs(jobs, now_ms)? {
+            self.notify();
+        }
+        // What the device is told now that the sum is published (or failed).
+        self.secure_step_locked(study_id, device_id, credential, sum, None, now_ms)
+    }
+
+    /// [`Coordinator::secure_step`] under the lock: everything but running [`FinishJob`]s.
+    fn secure_step_locked(
         &self,
         study_id: &str,
         device_id: u64,
@@ -1642,6 +1702,7 @@ fn load_runtime(store: &Store, config: StudyConfig) -> Result<StudyRuntime> {
         detection_complete,
         last_secure: None,
         stage_secure: Default::default(),
+        finish_jobs: Vec::new(),
         stamp,
         synced_ms: crate::service::now_ms(),
     };
@@ -1888,6 +1949,15 @@ mod shard_tests {
     }
 }
 
+/// Every study's [`FinishJob`]s, taken out of their runtimes.
+fn take_finish_jobs(studies: &mut BTreeMap<String, StudyRuntime>) -> Vec<(String, Vec<FinishJob>)> {
+    studies
+        .iter_mut()
+        .filter(|(_, rt)| !rt.finish_jobs.is_empty())
+        .map(|(id, rt)| (id.clone(), std::mem::take(&mut rt.finish_jobs)))
+        .collect()
+}
+
 /// Which secure sum a `SecureStep` call is about.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum SecureSum {
@@ -2116,6 +2186,11 @@ fn advance_stage_sessions(
                 changed = true;
                 k += 1;
             }
+            Advance::Finish(job) => {
+                rt.finish_jobs.push(job);
+                changed = true;
+                k += 1;
+            }
             Advance::Done { sum, included } => {
                 let (n, total, groups) = decode_stage(stage, &session.task().group_levels, &sum);
                 let secure = &mut rt.stage_secure[i];
@@ -2266,6 +2341,10 @@ fn advance_secure(
     match secure.advance(now_ms, deadline_passed, min_quorum) {
         Advance::None => Ok(false),
         Advance::Next => Ok(true),
+        Advance::Finish(job) => {
+            rt.finish_jobs.push(job);
+            Ok(true)
+        }
         Advance::Done { sum, included } => {
             let (params, contributions) = if rt.config.dp.is_some() {
                 decode_private_slots(&secure.task().slots, &sum, &rt.latest.params, expected)

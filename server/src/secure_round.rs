@@ -23,8 +23,20 @@
 //! published and the round is run again with a fresh selection. Nothing of a
 //! secure round is stored but its members (the protocol's state lives in
 //! memory), so after a restart the open round is run again from the start.
+//!
+//! # Finishing outside the coordinator's lock
+//! Rebuilding the dropped devices' masks and every Shamir secret costs O(N²) for a round of
+//! N devices (seconds at N = 1,000, `examples/secagg_cost.rs`), and every call of every study
+//! waits on the coordinator's lock. So when the last phase closes, [`SecureRound::advance`]
+//! hands the protocol's state out as a [`FinishJob`] and the round enters a *finishing* phase
+//! in which devices are told to wait. The coordinator runs the job after releasing its lock
+//! and takes the lock again to publish: the job sends its outcome to the round, whose next
+//! `advance` returns it as [`Advance::Done`] or [`Advance::Failed`]. A job that is dropped
+//! without running, or an outcome that has not come by the finishing phase's deadline, fails
+//! the round, which is then run again as any failed round is.
 
 use std::collections::{BTreeMap, BTreeSet};
+use std::sync::mpsc;
 
 use crate::detection::{DetectionStage, DetectionStats, HISTOGRAM_EDGES, MOMENT_SIGNALS};
 use crate::secagg::{
@@ -346,6 +358,8 @@ enum Phase {
     Sharing,
     Masking,
     Unmasking,
+    /// Every message is in; the sum is being computed outside the coordinator's lock.
+    Finishing,
 }
 
 impl Phase {
@@ -355,6 +369,7 @@ impl Phase {
             Phase::Sharing => "ShareKeys",
             Phase::Masking => "MaskedInput",
             Phase::Unmasking => "Unmasking",
+            Phase::Finishing => "Finishing",
         }
     }
 }
@@ -373,6 +388,39 @@ pub enum Advance {
     },
     /// The round failed; run it again.
     Failed(String),
+    /// The last phase closed: run this job outside the coordinator's lock, then call
+    /// [`SecureRound::advance`] again for its outcome (module docs).
+    Finish(FinishJob),
+}
+
+/// What a device of a finishing round is told.
+const FINISHING: &str = "every unmasking share is in; the aggregator is computing the round's sum";
+
+/// The costly end of a secure round (rebuilding masks and secrets, decoding the sum), taken
+/// out of the round so that it runs without the coordinator's lock.
+#[derive(Debug)]
+pub struct FinishJob {
+    server: secagg::Server,
+    codec: FixedPoint,
+    outcome: mpsc::Sender<Advance>,
+}
+
+impl FinishJob {
+    /// Computes the round's sum and sends it (or why it failed) to the round.
+    pub fn run(mut self) {
+        let outcome = match self.server.finish(&mut rand::rng()) {
+            Err(e) => Advance::Failed(e.to_string()),
+            Ok((sum, u3)) => match self.codec.decode_sum(&sum, u3.len() as u64) {
+                Ok(sum) => Advance::Done {
+                    sum,
+                    included: u3.into_iter().collect(),
+                },
+                Err(e) => Advance::Failed(e.to_string()),
+            },
+        };
+        // A round that was dropped meanwhile needs no outcome.
+        let _ = self.outcome.send(outcome);
+    }
 }
 
 /// One secure round in memory.
@@ -391,6 +439,8 @@ pub struct SecureRound {
     broadcast: Option<KeysBroadcast>,
     relays: BTreeMap<u64, SharesRelay>,
     request: Option<UnmaskingRequest>,
+    /// Where the [`FinishJob`]'s outcome arrives (in the finishing phase).
+    outcome: Option<mpsc::Receiver<Advance>>,
 }
 
 impl SecureRound {
@@ -419,6 +469,7 @@ impl SecureRound {
             broadcast: None,
             relays: BTreeMap::new(),
             request: None,
+            outcome: None,
         })
     }
 
@@ -500,6 +551,9 @@ impl SecureRound {
                 ),
             };
         }
+        if self.phase == Phase::Finishing {
+            return SecureNext::Wait(FINISHING.into());
+        }
         if self.answered.contains(&device) {
             return SecureNext::Wait(format!(
                 "waiting for phase {} to close ({} of {} answered)",
@@ -509,6 +563,7 @@ impl SecureRound {
             ));
         }
         match self.phase {
+            Phase::Finishing => SecureNext::Wait(FINISHING.into()),
             Phase::Keys => SecureNext::Wait("send this device's keys first".into()),
             Phase::Sharing => SecureNext::Broadcast(
                 self.broadcast
@@ -530,9 +585,13 @@ impl SecureRound {
     }
 
     /// Closes the current phase when every expected device answered, or, with
-    /// `deadline_passed`, with whoever did; after the last phase, decodes the sum.
+    /// `deadline_passed`, with whoever did; after the last phase, hands out the
+    /// [`FinishJob`] that computes the sum, and once its outcome has arrived returns it.
     /// `min_quorum` is the study's quorum for the masked inputs.
     pub fn advance(&mut self, now_ms: i64, deadline_passed: bool, min_quorum: usize) -> Advance {
+        if self.phase == Phase::Finishing {
+            return self.finished(deadline_passed);
+        }
         let complete = self.answered.len() == self.expected.len();
         if !complete && !deadline_passed {
             return Advance::None;
@@ -561,7 +620,8 @@ impl SecureRound {
                     Phase::Unmasking
                 })
             }
-            Phase::Unmasking => return self.finish(),
+            Phase::Unmasking => return self.start_finishing(now_ms),
+            Phase::Finishing => unreachable!("answered above"),
         };
         match result {
             Ok(next) => {
@@ -574,19 +634,46 @@ impl SecureRound {
         }
     }
 
-    /// Reconstructs and decodes the round's sum.
-    fn finish(&mut self) -> Advance {
-        let (sum, u3) = match self.server.finish(&mut rand::rng()) {
-            Ok(out) => out,
+    /// Enters the finishing phase: the protocol's state leaves in a [`FinishJob`].
+    fn start_finishing(&mut self, now_ms: i64) -> Advance {
+        let placeholder = match self.task.params() {
+            Ok(params) => secagg::Server::new(params),
             Err(e) => return Advance::Failed(e.to_string()),
         };
-        match self.codec.decode_sum(&sum, u3.len() as u64) {
-            Ok(sum) => Advance::Done {
-                sum,
-                included: u3.into_iter().collect(),
-            },
-            Err(e) => Advance::Failed(e.to_string()),
+        let (outcome, arrives) = mpsc::channel();
+        self.outcome = Some(arrives);
+        self.phase = Phase::Finishing;
+        self.phase_deadline_ms = now_ms + self.phase_length_ms;
+        Advance::Finish(FinishJob {
+            server: std::mem::replace(&mut self.server, placeholder),
+            codec: self.codec,
+            outcome,
+        })
+    }
+
+    /// The finishing phase's outcome, once the job has sent it.
+    fn finished(&mut self, deadline_passed: bool) -> Advance {
+        let Some(arrives) = &self.outcome else {
+            return Advance::Failed("the round's sum has no job computing it".into());
+        };
+        match arrives.try_recv() {
+            Ok(outcome) => {
+                self.outcome = None;
+                outcome
+            }
+            Err(mpsc::TryRecvError::Empty) if !deadline_passed => Advance::None,
+            Err(mpsc::TryRecvError::Empty) => {
+                Advance::Failed("the round's sum was not computed before its deadline".into())
+            }
+            Err(mpsc::TryRecvError::Disconnected) => {
+                Advance::Failed("the job computing the round's sum stopped without a result".into())
+            }
         }
+    }
+
+    /// Whether the round is waiting for its [`FinishJob`]'s outcome.
+    pub fn is_finishing(&self) -> bool {
+        self.phase == Phase::Finishing
     }
 }
 
@@ -596,7 +683,7 @@ fn phase_of(phase: Phase) -> secagg::Phase {
         Phase::Keys => secagg::Phase::AdvertiseKeys,
         Phase::Sharing => secagg::Phase::ShareKeys,
         Phase::Masking => secagg::Phase::MaskedInput,
-        Phase::Unmasking => secagg::Phase::Unmasking,
+        Phase::Unmasking | Phase::Finishing => secagg::Phase::Unmasking,
     }
 }
 
@@ -675,6 +762,126 @@ mod tests {
                 n_values: 1,
             },
         ]
+    }
+
+    /// Drives `round` (members 1, 2, 3, every phase answered by all) up to the close of its
+    /// last phase, with device `k`'s plain input `inputs[k − 1]`; returns what that `advance`
+    /// returned.
+    fn up_to_finishing(round: &mut SecureRound, inputs: &[Vec<f64>]) -> Advance {
+        use crate::secagg::Device;
+        let mut rng = rand::rng();
+        let params = round.task().params().unwrap();
+        let codec = round.task().codec().unwrap();
+        let mut devices = Vec::new();
+        for &id in &round.task().members.clone() {
+            let (device, keys) = Device::new(id, params.clone(), &mut rng).unwrap();
+            assert!(
+                round
+                    .receive(id, DeviceMessage::Keys(keys))
+                    .unwrap()
+                    .is_none()
+            );
+            devices.push(device);
+        }
+        assert!(matches!(round.advance(0, false, 3), Advance::Next));
+        for d in &mut devices {
+            let SecureNext::Broadcast(b) = round.next_for(d.id()) else {
+                panic!("sharing is open")
+            };
+            let m = d.share_keys(&b, &mut rng).unwrap();
+            round.receive(d.id(), DeviceMessage::ShareKeys(m)).unwrap();
+        }
+        assert!(matches!(round.advance(0, false, 3), Advance::Next));
+        for (d, x) in devices.iter_mut().zip(inputs) {
+            let SecureNext::Relay(r) = round.next_for(d.id()) else {
+                panic!("masking is open")
+            };
+            let m = d.masked_input(&r, &codec.encode(x).unwrap()).unwrap();
+            round.receive(d.id(), DeviceMessage::Masked(m)).unwrap();
+        }
+        assert!(matches!(round.advance(0, false, 3), Advance::Next));
+        for d in &mut devices {
+            let SecureNext::Request(r) = round.next_for(d.id()) else {
+                panic!("unmasking is open")
+            };
+            let m = d.unmask(&r).unwrap();
+            round.receive(d.id(), DeviceMessage::Unmasking(m)).unwrap();
+        }
+        round.advance(0, false, 3)
+    }
+
+    fn three_device_round() -> SecureRound {
+        let task = SecureTask {
+            members: vec![1, 2, 3],
+            threshold: 2,
+            frac_bits: 24,
+            slots: vec![Slot {
+                signal: "a".into(),
+                n_values: 1,
+            }],
+            stage: None,
+            session: 0,
+            group_levels: Vec::new(),
+            group_slot: None,
+            dp: None,
+        };
+        SecureRound::open(task, 1_000, 500).unwrap()
+    }
+
+    /// The last phase's close hands the protocol's state out as a job; until the job has run,
+    /// devices are told to wait and `advance` has nothing; then `advance` gives the sum, which
+    /// is the plain sum of the three input vectors (one slot `[n·θ, n, n·ℓ, 1]`; by hand:
+    /// [1, 2, 3, 4] + [5, 6, 7, 8] + [9, 10, 11, 12] = [15, 18, 21, 24]).
+    #[test]
+    fn the_sum_is_computed_by_a_job_outside_the_round() {
+        let mut round = three_device_round();
+        let inputs = vec![
+            vec![1.0, 2.0, 3.0, 4.0],
+            vec![5.0, 6.0, 7.0, 8.0],
+            vec![9.0, 10.0, 11.0, 12.0],
+        ];
+        let Advance::Finish(job) = up_to_finishing(&mut round, &inputs) else {
+            panic!("the last phase's close hands out a job")
+        };
+        assert!(round.is_finishing());
+        assert_eq!(round.next_for(2), SecureNext::Wait(FINISHING.into()));
+        assert!(matches!(round.advance(10, false, 3), Advance::None));
+        job.run();
+        let Advance::Done { sum, included } = round.advance(10, false, 3) else {
+            panic!("the job's outcome is the round's")
+        };
+        assert_eq!(sum, vec![15.0, 18.0, 21.0, 24.0]);
+        assert_eq!(included, BTreeSet::from([1, 2, 3]));
+    }
+
+    /// A job dropped without running, or one whose outcome misses the finishing deadline,
+    /// fails the round (which the coordinator then runs again).
+    #[test]
+    fn a_lost_or_late_job_fails_the_round() {
+        let inputs = vec![vec![1.0, 1.0, 0.0, 1.0]; 3];
+        let mut round = three_device_round();
+        let Advance::Finish(job) = up_to_finishing(&mut round, &inputs) else {
+            panic!("a job")
+        };
+        drop(job);
+        let Advance::Failed(why) = round.advance(10, false, 3) else {
+            panic!("a lost job fails the round")
+        };
+        assert!(why.contains("without a result"), "{why}");
+
+        let mut round = three_device_round();
+        let Advance::Finish(_job) = up_to_finishing(&mut round, &inputs) else {
+            panic!("a job")
+        };
+        assert_eq!(
+            round.deadline_ms(),
+            500,
+            "the finishing phase has a phase's length"
+        );
+        let Advance::Failed(why) = round.advance(501, true, 3) else {
+            panic!("a late job fails the round")
+        };
+        assert!(why.contains("deadline"), "{why}");
     }
 
     /// Two devices: FedAvg of a is (10·[1, 2] + 30·[3, −2]) / 40 = [2.5, −1] by hand; b is
