@@ -1006,8 +1006,8 @@ impl Coordinator {
 
     /// One `SecureStep` call of `device_id`: authenticates, takes the device's `message` for the current
     /// phase of secure round `round_id` (if any), closes the phase when every expected device
-    /// has answered (publishing the prior after the last phase) and says what the device
-    /// should do next.
+    /// has answered (after the last phase, computing the sum with the lock released and
+    /// publishing the prior) and says what the device should do next.
     ///
     /// # Errors
     /// Authentication; a study without secure aggregation or a round that has not opened
