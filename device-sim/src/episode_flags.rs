@@ -9,7 +9,7 @@
 //!   ([`crate::detect::episodes::group`]).
 //! - **Level**: the highest reached (Alert when a day reached the Alert threshold).
 //! - **Direction**: [`EpisodeDirection::Target`] for the study's pattern (acute illness:
-//!   resting HR, skin temperature, respiratory rate up, HRV down), the only direction that is
+//!   resting HR, skin temperature, respiratory rate, sleep up; HRV, steps down), the only direction that is
 //!   alerted and may be sent for review; [`EpisodeDirection::Mirror`] for the opposite
 //!   direction (`DayScore.mirror`), recorded in the device's outputs only.
 //! - **Signals**: for a target episode, each signal in the peak day's score with its direction

@@ -31,12 +31,16 @@ pub struct TargetPattern {
 }
 
 impl TargetPattern {
-    /// Acute illness: resting HR, skin temperature and respiratory rate up, HRV down (e.g.
-    /// Mishra et al. 2020, Nat. Biomed. Eng. 4:1208; Quer et al. 2021, Nat. Med. 27:73);
-    /// sleep and steps are recorded but not part of the alerting direction.
+    /// Acute illness: resting HR, skin temperature, respiratory rate and sleep up, HRV and
+    /// steps down, each with unit weight in its residual's units (e.g. Mishra et al. 2020,
+    /// Nat. Biomed. Eng. 4:1208: resting HR up and steps down before and during infection;
+    /// Quer et al. 2021, Nat. Med. 27:73: resting HR up, sleep up and steps down in
+    /// infected participants). Sleep and steps in the direction separate illness from the
+    /// commonest confounders that also raise resting HR: a hard-training block (steps up)
+    /// and a late night of drinking (sleep down); `docs/evaluation.md`, detection log.
     pub const ACUTE_ILLNESS: TargetPattern = TargetPattern {
         // resting HR, HRV, sleep, skin temp, steps, resp. rate
-        weights: [1.0, -1.0, 0.0, 1.0, 0.0, 1.0],
+        weights: [1.0, -1.0, 1.0, 1.0, -1.0, 1.0],
     };
 
     /// The weight of one signal.

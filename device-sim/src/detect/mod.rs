@@ -36,7 +36,7 @@
 //! # Joint score ([`joint`])
 //! For each window, `J_w = aᵀR⁻¹Z_w / √(aᵀR⁻¹a)` over the signals present, with `a` the
 //! study's target direction ([`joint::TargetPattern`], default acute illness: resting HR, skin
-//! temperature and respiratory rate up, HRV down) and `R` the cross-signal correlation of the
+//! temperature, respiratory rate and sleep up, HRV and steps down) and `R` the cross-signal correlation of the
 //! residuals, learned from per-device sums of cross-products ([`joint::ResidualMoments`]). The
 //! day's **score** is `D_t = max_w J_w`, with the maximising window recorded. Signals in their
 //! cold start (fewer than `min_baseline_days` observed days) do not take part; a day with no
