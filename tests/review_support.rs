@@ -82,6 +82,7 @@ pub fn study_calibration() -> StudyCalibration {
         moment_devices: 0,
         histogram_devices: 0,
         histogram_group: None,
+        pattern: TargetPattern::ACUTE_ILLNESS,
         alert: Calibrated {
             threshold: 4.0,
             rate: 0.025,

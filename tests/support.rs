@@ -59,6 +59,7 @@ pub fn study_config(id: &str, signals: &[Signal], devices: u32, rounds: u32) -> 
         subgroups: None,
         dp: None,
         secure_aggregation: None,
+        alert_direction: None,
     }
 }
 

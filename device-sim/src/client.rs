@@ -37,6 +37,7 @@ use crate::detect::DetectConfig;
 use crate::detect::calibration::{
     StudyCalibration, cohort_correlation, device_histogram, device_moments,
 };
+use crate::detect::joint::TargetPattern;
 use crate::device_report::detect_and_write;
 use crate::flags::FlagLevel;
 use crate::packets::build_packet;
@@ -289,7 +290,12 @@ pub async fn calibrate_detection(
             "study `{study_id}` states no usable false-alarm budget ({budget})"
         ));
     }
-    let cfg = DetectConfig::default();
+    let mut cfg = DetectConfig::default();
+    if !study.alert_direction.is_empty() {
+        cfg.pattern = TargetPattern::from_weights(&study.alert_direction)
+            .map_err(|e| anyhow!("GetStudy `{study_id}`: alert_direction: {e}"))?;
+    }
+    let pattern = cfg.pattern;
 
     let moments = {
         let (series, priors, cfg) = (series.clone(), priors.clone(), cfg.clone());
@@ -371,7 +377,8 @@ pub async fn calibrate_detection(
         budget,
         moment_devices,
         histogram_devices,
-    );
+    )
+    .in_direction(pattern);
     calibration.histogram_group = histogram_group;
     Ok(calibration)
 }

@@ -142,6 +142,7 @@ fn demo_config(
         secure_aggregation: opts
             .secure_aggregation
             .then(plimsoll_server::study::SecureAggregation::default),
+        alert_direction: None,
     })
 }
 

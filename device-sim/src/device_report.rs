@@ -393,7 +393,12 @@ pub fn detect_and_write(
     calibration: &StudyCalibration,
 ) -> anyhow::Result<EpisodeDetection> {
     use anyhow::Context;
-    let detection = detect_episodes(series, priors, calibration, &DetectConfig::default())?;
+    // Scores in the direction the thresholds were calibrated in (the study's).
+    let cfg = DetectConfig {
+        pattern: calibration.pattern,
+        ..DetectConfig::default()
+    };
+    let detection = detect_episodes(series, priors, calibration, &cfg)?;
     std::fs::create_dir_all(out_dir).with_context(|| format!("creating {}", out_dir.display()))?;
     let write = |name: &str, result: std::io::Result<()>| {
         result.with_context(|| format!("writing {}", out_dir.join(name).display()))

@@ -524,6 +524,7 @@ mod tests {
             moment_devices: 0,
             histogram_devices: 0,
             histogram_group: None,
+            pattern: TargetPattern::ACUTE_ILLNESS,
             correlation: Correlation::identity(),
             alert: Calibrated {
                 threshold: 4.0,

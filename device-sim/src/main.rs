@@ -136,6 +136,12 @@ enum Command {
         /// Alert episodes only; `watch`: Watch and Alert).
         #[arg(long, value_enum, default_value_t = AlarmLevel::Alert)]
         review_level: AlarmLevel,
+        /// The alerting direction, one `COLUMN=WEIGHT` per signal (repeatable; a signal not
+        /// given has weight 0), e.g. `--alert-direction resting_hr_bpm=1 --alert-direction
+        /// hrv_rmssd_ms=-1`. Default: acute illness (resting HR, skin temperature,
+        /// respiratory rate and sleep up; HRV and steps down).
+        #[arg(long = "alert-direction", value_parser = parse_direction)]
+        alert_direction: Vec<(String, f64)>,
         /// A sensor model devices may declare (repeatable): the prior then keeps each
         /// model's mean offset and measurement noise, pooled for a model with fewer than
         /// 10 enrolled devices.
@@ -380,6 +386,21 @@ fn read_enrollment_code() -> anyhow::Result<String> {
 
 /// Parses a positive number of episodes per participant-month, e.g. `0.3`.
 /// `--aggregation`: `fedavg`, `group-rank:λ` or `q-fedavg:q`.
+/// `COLUMN=WEIGHT` of `--alert-direction`.
+fn parse_direction(text: &str) -> Result<(String, f64), String> {
+    let (column, weight) = text
+        .split_once('=')
+        .ok_or_else(|| format!("`{text}`: expected COLUMN=WEIGHT, e.g. resting_hr_bpm=1"))?;
+    column.parse::<Signal>().map_err(|e| e.to_string())?;
+    let weight: f64 = weight
+        .parse()
+        .map_err(|_| format!("`{weight}`: the weight of {column} is not a number"))?;
+    if !weight.is_finite() {
+        return Err(format!("the weight of {column} must be finite"));
+    }
+    Ok((column.to_owned(), weight))
+}
+
 fn parse_rule(text: &str) -> Result<AggregationRule, String> {
     let (name, value) = text.split_once(':').unwrap_or((text, ""));
     let number = |what: &str| -> Result<f64, String> {
@@ -454,6 +475,7 @@ async fn main() -> anyhow::Result<()> {
             round_minutes,
             false_alarm_budget,
             review_level,
+            alert_direction,
             sensor_models,
             group_column,
             group_levels,
@@ -532,6 +554,8 @@ async fn main() -> anyhow::Result<()> {
                         ..Default::default()
                     }
                 }),
+                alert_direction: (!alert_direction.is_empty())
+                    .then(|| alert_direction.into_iter().collect()),
             };
             config
                 .validate()
@@ -606,6 +630,10 @@ async fn main() -> anyhow::Result<()> {
                 c.alert.threshold,
                 c.watch.threshold,
                 c.budget_per_month
+            );
+            println!(
+                "alerting in {}",
+                plimsoll_device::episode_flags::pattern_text(&c.pattern)
             );
             println!(
                 "{} flagged ({}), {} sent for review; outputs in {}",

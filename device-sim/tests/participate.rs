@@ -107,6 +107,14 @@ async fn two_devices_take_part_over_tls_and_resume() {
                 subgroups: None,
                 dp: None,
                 secure_aggregation: None,
+                // A direction of the study's own, which the devices must take.
+                alert_direction: Some(
+                    [
+                        ("resting_hr_bpm".to_owned(), 1.0),
+                        ("hrv_rmssd_ms".to_owned(), -1.0),
+                    ]
+                    .into(),
+                ),
             },
             now_ms(),
         )
@@ -130,6 +138,21 @@ async fn two_devices_take_part_over_tls_and_resume() {
             run.stdout
         );
         assert!(run.stdout.contains("not a diagnosis"), "{}", run.stdout);
+        assert!(
+            run.stdout.contains(
+                "alerting in the study's direction (up: resting heart rate; down: overnight HRV (RMSSD))"
+            ),
+            "{}",
+            run.stdout
+        );
+        let calibration: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(out.join("calibration.json")).unwrap())
+                .unwrap();
+        assert_eq!(
+            calibration["pattern"]["weights"],
+            serde_json::json!([1.0, -1.0, 0.0, 0.0, 0.0, 0.0]),
+            "the device calibrated in the study's direction"
+        );
         for file in [
             "device-secret",
             "posterior.csv",
@@ -211,4 +234,46 @@ fn study_config_writes_a_valid_configuration_once() {
     );
     let unknown = run(&["--study", "pilot-3", "--signal", "glucose"]);
     assert!(String::from_utf8_lossy(&unknown.stderr).contains("glucose"));
+
+    // The alerting direction: written as given, checked against the study's signals.
+    std::fs::remove_file(&out).unwrap();
+    let directed = run(&[
+        "--study",
+        "pilot-4",
+        "--alert-direction",
+        "resting_hr_bpm=1",
+        "--alert-direction",
+        "steps=-0.5",
+    ]);
+    assert!(
+        directed.status.success(),
+        "{}",
+        String::from_utf8_lossy(&directed.stderr)
+    );
+    let config: StudyConfig =
+        serde_json::from_str(&std::fs::read_to_string(&out).unwrap()).unwrap();
+    let want: std::collections::BTreeMap<String, f64> = [
+        ("resting_hr_bpm".to_owned(), 1.0),
+        ("steps".to_owned(), -0.5),
+    ]
+    .into();
+    assert_eq!(config.alert_direction, Some(want));
+    for (args, says) in [
+        (&["--alert-direction", "glucose=1"][..], "glucose"),
+        (&["--alert-direction", "steps"][..], "COLUMN=WEIGHT"),
+        (&["--alert-direction", "steps=up"][..], "not a number"),
+        (&["--alert-direction", "steps=0"][..], "non-zero"),
+        (
+            &["--signal", "sleep_h", "--alert-direction", "steps=1"][..],
+            "not one of the study's signals",
+        ),
+    ] {
+        let _ = std::fs::remove_file(&out);
+        let mut all = vec!["--study", "pilot-5"];
+        all.extend_from_slice(args);
+        let bad = run(&all);
+        assert!(!bad.status.success(), "{args:?} was accepted");
+        let stderr = String::from_utf8_lossy(&bad.stderr);
+        assert!(stderr.contains(says), "{args:?}: {stderr}");
+    }
 }

@@ -319,6 +319,7 @@ async fn run(
             subgroups: None,
             dp: None,
             secure_aggregation: None,
+            alert_direction: None,
         },
         now_ms(),
     )?;

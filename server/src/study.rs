@@ -98,6 +98,10 @@ pub struct StudyConfig {
     /// Secure aggregation of each round's updates (none unless set; `crate::secure_round`).
     #[serde(default)]
     pub secure_aggregation: Option<SecureAggregation>,
+    /// The alerting direction devices use: weight per signal column (`Study.alert_direction`
+    /// in the protocol). `None`: the devices' default acute-illness direction.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub alert_direction: Option<std::collections::BTreeMap<String, f64>>,
 }
 
 /// A study's secure-aggregation settings: rounds run the protocol of `crate::secagg` over
@@ -253,6 +257,23 @@ impl StudyConfig {
         }
         if self.signals.is_empty() {
             return Err("signals: at least one signal is needed".into());
+        }
+        if let Some(direction) = &self.alert_direction {
+            for (signal, weight) in direction {
+                if !self.signals.iter().any(|s| &s.signal == signal) {
+                    return Err(format!(
+                        "alert_direction: `{signal}` is not one of the study's signals"
+                    ));
+                }
+                if !weight.is_finite() {
+                    return Err(format!(
+                        "alert_direction: the weight of `{signal}` must be finite, got {weight}"
+                    ));
+                }
+            }
+            if direction.values().all(|w| *w == 0.0) {
+                return Err("alert_direction: at least one signal needs a non-zero weight".into());
+            }
         }
         for (i, s) in self.signals.iter().enumerate() {
             if s.param_names.is_empty() || s.param_names.len() != s.initial.len() {

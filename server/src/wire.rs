@@ -121,6 +121,13 @@ pub fn status_to_pb(s: &StudyStatus) -> pb::Study {
         devices_enrolled: s.devices_enrolled,
         prior_version: s.prior_version,
         secure_aggregation: s.config.secure_aggregation.is_some(),
+        alert_direction: s
+            .config
+            .alert_direction
+            .iter()
+            .flatten()
+            .map(|(k, v)| (k.clone(), *v))
+            .collect(),
         min_quorum: s.config.min_quorum,
         alert_budget_per_participant_month: s.config.alert_budget_per_participant_month,
         sensor_models: s

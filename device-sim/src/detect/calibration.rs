@@ -5,7 +5,7 @@
 use serde::{Deserialize, Serialize};
 
 use super::episodes::{Grouping, episode_counts};
-use super::joint::{CORRELATION_SHRINK_DAYS, Correlation, ResidualMoments};
+use super::joint::{CORRELATION_SHRINK_DAYS, Correlation, ResidualMoments, TargetPattern};
 use super::{DayScore, DetectConfig, score_participant};
 use crate::cohort::ParticipantSeries;
 use crate::prior::PriorParams;
@@ -212,6 +212,14 @@ pub struct StudyCalibration {
     /// histograms gave the thresholds; `None`: the whole study's.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub histogram_group: Option<String>,
+    /// The alerting direction the scores were computed in (the study's; the thresholds mean
+    /// nothing in another direction). Absent in older files: the default.
+    #[serde(default = "default_pattern")]
+    pub pattern: TargetPattern,
+}
+
+fn default_pattern() -> TargetPattern {
+    TargetPattern::ACUTE_ILLNESS
 }
 
 impl StudyCalibration {
@@ -233,7 +241,14 @@ impl StudyCalibration {
             moment_devices,
             histogram_devices,
             histogram_group: None,
+            pattern: TargetPattern::ACUTE_ILLNESS,
         }
+    }
+
+    /// The same calibration, stating that its scores were computed in direction `pattern`.
+    pub fn in_direction(mut self, pattern: TargetPattern) -> StudyCalibration {
+        self.pattern = pattern;
+        self
     }
 
     /// How often an episode peaking at `score` starts on this study's data, per
@@ -270,6 +285,7 @@ impl StudyCalibration {
             moment_devices: 0,
             histogram_devices: 0,
             histogram_group: None,
+            pattern: TargetPattern::ACUTE_ILLNESS,
         }
     }
 
@@ -291,6 +307,7 @@ impl StudyCalibration {
             moment_devices: 0,
             histogram_devices: 0,
             histogram_group: None,
+            pattern: TargetPattern::ACUTE_ILLNESS,
         }
     }
 

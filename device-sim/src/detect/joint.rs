@@ -43,6 +43,34 @@ impl TargetPattern {
         weights: [1.0, -1.0, 1.0, 1.0, -1.0, 1.0],
     };
 
+    /// The direction with `weights` per signal column (`daily.csv` name); a signal not
+    /// named has weight 0.
+    ///
+    /// # Errors
+    /// An unknown column, a non-finite weight, or no non-zero weight.
+    pub fn from_weights<'a>(
+        weights: impl IntoIterator<Item = (&'a String, &'a f64)>,
+    ) -> std::result::Result<TargetPattern, String> {
+        let mut out = TargetPattern {
+            weights: [0.0; N_SIGNALS],
+        };
+        for (column, &weight) in weights {
+            let signal: Signal = column
+                .parse()
+                .map_err(|e: crate::signal::UnknownSignal| e.to_string())?;
+            if !weight.is_finite() {
+                return Err(format!(
+                    "the weight of {column} must be finite, got {weight}"
+                ));
+            }
+            out.weights[signal_index(signal)] = weight;
+        }
+        if out.weights.iter().all(|w| *w == 0.0) {
+            return Err("no signal has a non-zero weight".into());
+        }
+        Ok(out)
+    }
+
     /// The weight of one signal.
     pub fn weight(&self, signal: Signal) -> f64 {
         self.weights[signal_index(signal)]
@@ -241,5 +269,30 @@ impl JointWeights {
             score,
             contributions,
         })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_direction_from_named_weights() {
+        let named: std::collections::BTreeMap<String, f64> = [
+            ("steps".to_owned(), -0.5),
+            ("resting_hr_bpm".to_owned(), 2.0),
+        ]
+        .into();
+        let p = TargetPattern::from_weights(&named).unwrap();
+        assert_eq!(p.weights, [2.0, 0.0, 0.0, 0.0, -0.5, 0.0]);
+        let bad = |pairs: &[(&str, f64)]| {
+            let m: std::collections::BTreeMap<String, f64> =
+                pairs.iter().map(|(k, v)| ((*k).to_owned(), *v)).collect();
+            TargetPattern::from_weights(&m).unwrap_err()
+        };
+        assert!(bad(&[("glucose", 1.0)]).contains("glucose"));
+        assert!(bad(&[("steps", f64::NAN)]).contains("finite"));
+        assert!(bad(&[("steps", 0.0)]).contains("non-zero"));
+        assert!(bad(&[]).contains("non-zero"));
     }
 }

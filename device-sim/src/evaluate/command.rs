@@ -475,6 +475,7 @@ pub async fn learn_prior(
         secure_aggregation: groups
             .secure_aggregation
             .then(plimsoll_server::study::SecureAggregation::default),
+        alert_direction: None,
         alert_budget_per_participant_month:
             plimsoll_server::study::DEFAULT_ALERT_BUDGET_PER_PARTICIPANT_MONTH,
         review_level: plimsoll_server::packets::FlagLevel::Alert,
