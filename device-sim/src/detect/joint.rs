@@ -32,10 +32,10 @@ pub struct TargetPattern {
 
 impl TargetPattern {
     /// Acute illness: resting HR, skin temperature, respiratory rate and sleep up, HRV and
-    /// steps down, each with unit weight in its residual's units (e.g. Mishra et al. 2020,
-    /// Nat. Biomed. Eng. 4:1208: resting HR up and steps down before and during infection;
-    /// Quer et al. 2021, Nat. Med. 27:73: resting HR up, sleep up and steps down in
-    /// infected participants). Sleep and steps in the direction separate illness from the
+    /// steps down, each with unit weight in its residual's units (directions as reported,
+    /// from memory, by Mishra et al. 2020, Nat. Biomed. Eng. 4:1208: resting HR up and steps
+    /// down around infection; Quer et al. 2021, Nat. Med. 27:73: resting HR up, sleep up and
+    /// steps down in infected participants). Sleep and steps in the direction separate illness from the
     /// commonest confounders that also raise resting HR: a hard-training block (steps up)
     /// and a late night of drinking (sleep down); `docs/evaluation.md`, detection log.
     pub const ACUTE_ILLNESS: TargetPattern = TargetPattern {
