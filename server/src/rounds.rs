@@ -1022,21 +1022,29 @@ impl Coordinator {
         message: Option<DeviceMessage>,
         now_ms: i64,
     ) -> Result<SecureNext> {
-        let answer =
-            self.secure_step_locked(study_id, device_id, credential, sum, message, now_ms)?;
-        // The call that closed a sum's last phase computes the sum, outside the lock.
-        let jobs = take_finish_jobs(&mut self.lock().studies);
-        if jobs.is_empty() {
-            return Ok(answer);
+        let mut message = message;
+        loop {
+            let (answer, jobs) = self.secure_step_locked(
+                study_id,
+                device_id,
+                credential,
+                sum,
+                message.take(),
+                now_ms,
+            )?;
+            if jobs.is_empty() {
+                return Ok(answer);
+            }
+            // This call closed a sum's last phase: it computes the sum outside the lock, then
+            // asks again what the device is told now that the sum is published (or failed).
+            if self.run_finish_jobs(vec![(study_id.to_owned(), jobs)], now_ms)? {
+                self.notify();
+            }
         }
-        if self.run_finish_jobs(jobs, now_ms)? {
-            self.notify();
-        }
-        // What the device is told now that the sum is published (or failed).
-        self.secure_step_locked(study_id, device_id, credential, sum, None, now_ms)
     }
 
-    /// [`Coordinator::secure_step`] under the lock: everything but running [`FinishJob`]s.
+    /// [`Coordinator::secure_step`] under the lock: everything but running [`FinishJob`]s,
+    /// which it returns beside the answer when this call closed a sum's last phase.
     fn secure_step_locked(
         &self,
         study_id: &str,
@@ -1045,7 +1053,7 @@ impl Coordinator {
         sum: SecureSum,
         message: Option<DeviceMessage>,
         now_ms: i64,
-    ) -> Result<SecureNext> {
+    ) -> Result<(SecureNext, Vec<FinishJob>)> {
         let (round_id, stage) = match sum {
             SecureSum::Round(id) => (id, None),
             SecureSum::Stage(stage, session) => (session, Some(stage)),
@@ -1062,11 +1070,12 @@ impl Coordinator {
         if let Some(stage) = stage {
             let (answer, changed) =
                 secure_stage_step(store, rt, device_id, round_id, stage, message, now_ms)?;
+            let jobs = std::mem::take(&mut rt.finish_jobs);
             drop(state);
             if changed {
                 self.notify();
             }
-            return Ok(answer);
+            return Ok((answer, jobs));
         }
         if round_id > rt.last_round_id {
             return Err(AggregatorError::FailedPrecondition(format!(
@@ -1080,12 +1089,13 @@ impl Coordinator {
             .filter(|o| o.round_id == round_id)
             .and_then(|o| o.secure.as_mut())
         else {
-            return Ok(finished_for(rt, round_id, device_id));
+            return Ok((finished_for(rt, round_id, device_id), Vec::new()));
         };
         if let Some(done) = take_message(secure, device_id, message)? {
-            return Ok(done);
+            return Ok((done, Vec::new()));
         }
         let changed = advance_secure(store, rt, now_ms, false)?;
+        let jobs = std::mem::take(&mut rt.finish_jobs);
         let answer = match rt
             .open
             .as_ref()
@@ -1099,7 +1109,7 @@ impl Coordinator {
         if changed {
             self.notify();
         }
-        Ok(answer)
+        Ok((answer, jobs))
     }
 
     /// A published prior; version `None` is the latest.

@@ -551,10 +551,7 @@ impl SecureRound {
                 ),
             };
         }
-        if self.phase == Phase::Finishing {
-            return SecureNext::Wait(FINISHING.into());
-        }
-        if self.answered.contains(&device) {
+        if self.phase != Phase::Finishing && self.answered.contains(&device) {
             return SecureNext::Wait(format!(
                 "waiting for phase {} to close ({} of {} answered)",
                 self.phase.name(),
