@@ -199,6 +199,18 @@ impl State {
         claimed: Option<u64>,
         credential: &DeviceCredential,
     ) -> Result<()> {
+        self.store.refresh_identities()?;
+        self.authenticate_refreshed(study_id, claimed, credential)
+    }
+
+    /// [`State::authenticate`] without first checking the identity cache against the
+    /// database, for a batch of checks after one [`Store::refresh_identities`].
+    fn authenticate_refreshed(
+        &mut self,
+        study_id: &str,
+        claimed: Option<u64>,
+        credential: &DeviceCredential,
+    ) -> Result<()> {
         let id = credential.device_id;
         let identity = self.store.device_identity(id)?;
         let Some(identity) = identity else {
@@ -760,11 +772,17 @@ impl Coordinator {
         // Whether devices waiting on a change must be woken: a round closed, or this process
         // re-read a study another process moved on.
         let mut closed = false;
+        // Every credential of the batch is checked against one look at the identity cache.
+        let refreshed = state.store.refresh_identities().map_err(|e| e.to_string());
         for s in &batch {
             let check = |state: &mut State| {
-                state
-                    .authenticate(&s.study_id, Some(s.device_id), &s.credential)
-                    .and_then(|()| check_submission(state, s, &batch, &fresh, now_ms))
+                match &refreshed {
+                    Ok(()) => {
+                        state.authenticate_refreshed(&s.study_id, Some(s.device_id), &s.credential)
+                    }
+                    Err(why) => Err(AggregatorError::Unapplied(why.clone())),
+                }
+                .and_then(|()| check_submission(state, s, &batch, &fresh, now_ms))
             };
             let mut answer = check(&mut state);
             // On a shared store a round or device this process has not seen yet may be
