@@ -219,6 +219,16 @@ async fn evaluate_command_end_to_end() {
                 let spread = sens.iter().copied().fold(f64::MIN, f64::max)
                     - sens.iter().copied().fold(f64::MAX, f64::min);
                 assert!((d["sensitivity_disparity"].as_f64().unwrap() - spread).abs() < 1e-12);
+                // Chance's reference is a spread too, and the p-value a share of resamples.
+                let chance = &d["sensitivity_disparity_by_chance"];
+                assert!(
+                    (0.0..=1.0).contains(&chance["p95"].as_f64().unwrap()),
+                    "{d}"
+                );
+                assert!(
+                    (0.0..=1.0).contains(&chance["p_value"].as_f64().unwrap()),
+                    "{d}"
+                );
             }
         }
         let columns: std::collections::BTreeSet<&str> = m["disparities"]
@@ -406,7 +416,8 @@ async fn sensor_aware_prior_fairness_rule_and_comparison() {
     );
     let csv = std::fs::read_to_string(&comparison.csv).unwrap();
     assert!(csv.starts_with(
-        "setting,matched_level,sensitivity,group_column,sensitivity_disparity,false_alarm_ratio\n"
+        "setting,matched_level,sensitivity,group_column,sensitivity_disparity,\
+         sensitivity_disparity_by_chance_p95,sensitivity_disparity_p_value,false_alarm_ratio\n"
     ));
     assert!(
         csv.contains("\"fedavg, sensor-aware (device_model)\""),

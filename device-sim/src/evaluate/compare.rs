@@ -19,6 +19,7 @@ use serde::Serialize;
 use super::command::{PriorOptions, learn_prior};
 use super::report::EvaluationReport;
 use super::run::{EvaluationSettings, evaluate_cohort};
+use super::sweep::ChanceSpread;
 use crate::cohort::Cohort;
 
 /// λ of the group-loss-ranked rule in the comparison (the multiplier is `1 + λ r_g/|g|`,
@@ -71,8 +72,20 @@ pub struct ComparisonRow {
     pub matched_level: f64,
     /// The federated method's sensitivity there.
     pub sensitivity: Option<f64>,
-    /// Per group column: (column, sensitivity disparity, false alarm ratio max/min).
-    pub disparities: Vec<(String, Option<f64>, Option<f64>)>,
+    /// One entry per group column.
+    pub disparities: Vec<ColumnDisparity>,
+}
+
+/// One group column's disparity at a matched level.
+#[derive(Debug, Clone, Serialize)]
+pub struct ColumnDisparity {
+    pub column: String,
+    /// Highest minus lowest sensitivity across the column's levels.
+    pub sensitivity_disparity: Option<f64>,
+    /// Highest over lowest false alarm episode rate.
+    pub false_alarm_ratio: Option<f64>,
+    /// The spread chance alone gives at these event counts.
+    pub by_chance: Option<ChanceSpread>,
 }
 
 /// One setting's figures at the calibrated default: per group column and level, the false
@@ -169,12 +182,11 @@ fn rows(report: &EvaluationReport, setting: &str) -> (Vec<ComparisonRow>, Calibr
                     .disparities
                     .iter()
                     .filter(|d| d.matched_level == level)
-                    .map(|d| {
-                        (
-                            d.column.clone(),
-                            d.sensitivity_disparity,
-                            d.false_alarm_ratio,
-                        )
+                    .map(|d| ColumnDisparity {
+                        column: d.column.clone(),
+                        sensitivity_disparity: d.sensitivity_disparity,
+                        false_alarm_ratio: d.false_alarm_ratio,
+                        by_chance: d.sensitivity_disparity_by_chance,
                     })
                     .collect(),
             }
@@ -213,18 +225,27 @@ fn write_csv(rows: &[ComparisonRow], path: &Path) -> anyhow::Result<()> {
     let mut f = std::io::BufWriter::new(std::fs::File::create(path)?);
     writeln!(
         f,
-        "setting,matched_level,sensitivity,group_column,sensitivity_disparity,false_alarm_ratio"
+        "setting,matched_level,sensitivity,group_column,sensitivity_disparity,\
+         sensitivity_disparity_by_chance_p95,sensitivity_disparity_p_value,false_alarm_ratio"
     )?;
     for r in rows {
-        for (column, disparity, ratio) in &r.disparities {
+        for ColumnDisparity {
+            column,
+            sensitivity_disparity: disparity,
+            false_alarm_ratio: ratio,
+            by_chance: chance,
+        } in &r.disparities
+        {
             writeln!(
                 f,
-                "\"{}\",{},{},{},{},{}",
+                "\"{}\",{},{},{},{},{},{},{}",
                 r.setting.replace('"', "\"\""),
                 r.matched_level,
                 fmt(r.sensitivity, 1.0, 4),
                 column,
                 fmt(*disparity, 1.0, 4),
+                fmt(chance.map(|c| c.p95), 1.0, 4),
+                fmt(chance.map(|c| c.p_value), 1.0, 4),
                 fmt(*ratio, 1.0, 3)
             )?;
         }
@@ -242,7 +263,7 @@ pub fn render_comparison(c: &Comparison) -> String {
         let mut v: Vec<String> = c
             .matched
             .iter()
-            .flat_map(|r| r.disparities.iter().map(|d| d.0.clone()))
+            .flat_map(|r| r.disparities.iter().map(|d| d.column.clone()))
             .collect();
         v.sort();
         v.dedup();
@@ -250,7 +271,7 @@ pub fn render_comparison(c: &Comparison) -> String {
     };
     out.push_str(&format!("{:<44} {:>6} {:>7}", "setting", "level", "sens %"));
     for col in &columns {
-        out.push_str(&format!(" {:>22}", format!("{col} Δsens/FA×")));
+        out.push_str(&format!(" {:>28}", format!("{col} Δsens [chance]/FA×")));
     }
     out.push('\n');
     for r in &c.matched {
@@ -261,11 +282,20 @@ pub fn render_comparison(c: &Comparison) -> String {
             fmt(r.sensitivity, 100.0, 1)
         ));
         for col in &columns {
-            let cell = r.disparities.iter().find(|d| &d.0 == col).map_or_else(
+            let cell = r.disparities.iter().find(|d| &d.column == col).map_or_else(
                 || "-".to_owned(),
-                |d| format!("{} / {}", fmt(d.1, 100.0, 1), fmt(d.2, 1.0, 2)),
+                |d| {
+                    let chance = d
+                        .by_chance
+                        .map_or_else(String::new, |c| format!(" [{:.1}]", 100.0 * c.p95));
+                    format!(
+                        "{}{chance} / {}",
+                        fmt(d.sensitivity_disparity, 100.0, 1),
+                        fmt(d.false_alarm_ratio, 1.0, 2)
+                    )
+                },
             );
-            out.push_str(&format!(" {cell:>22}"));
+            out.push_str(&format!(" {cell:>28}"));
         }
         out.push('\n');
     }

@@ -346,11 +346,11 @@ pub fn render_disparities(report: &EvaluationReport) -> String {
     for column in columns {
         let _ = writeln!(
             s,
-            "Disparity across `{column}` at matched false alarm episodes (sensitivity max − min, points / false alarm episodes max ÷ min)"
+            "Disparity across `{column}` at matched false alarm episodes (sensitivity max − min, points, with in brackets the spread that chance alone reaches in 5 % of resamples at these event counts / false alarm episodes max ÷ min)"
         );
         let _ = write!(s, "{:<15}", "method");
         for l in &report.settings.matched_levels {
-            let _ = write!(s, " {:>16}", format!("at {l}"));
+            let _ = write!(s, " {:>24}", format!("at {l}"));
         }
         s.push('\n');
         for m in &report.methods {
@@ -364,16 +364,34 @@ pub fn render_disparities(report: &EvaluationReport) -> String {
                         || "–".to_owned(),
                         |d| {
                             format!(
-                                "{} / {}",
+                                "{}{} / {}",
                                 opt(d.sensitivity_disparity.map(|x| 100.0 * x), 1),
+                                d.sensitivity_disparity_by_chance.map_or_else(
+                                    String::new,
+                                    |c| format!(" [{:.1}]", 100.0 * c.p95)
+                                ),
                                 d.false_alarm_ratio
                                     .map_or_else(|| "–".to_owned(), |r| format!("{r:.2}×"))
                             )
                         },
                     );
-                let _ = write!(s, " {cell:>16}");
+                let _ = write!(s, " {cell:>24}");
             }
             s.push('\n');
+        }
+        // Target events per level: how much a level's sensitivity can move by chance.
+        if let Some(d) = report
+            .methods
+            .iter()
+            .flat_map(|m| &m.disparities)
+            .find(|d| d.column == column)
+        {
+            let counts: Vec<String> = d
+                .levels
+                .iter()
+                .map(|p| format!("{} {}", p.level, p.events))
+                .collect();
+            let _ = writeln!(s, "target events per level: {}", counts.join(", "));
         }
         s.push('\n');
     }
@@ -383,7 +401,7 @@ pub fn render_disparities(report: &EvaluationReport) -> String {
 /// CSV of the disparities: one row per method, group column, matched level and column level.
 pub fn write_disparity_csv(report: &EvaluationReport, path: &Path) -> std::io::Result<()> {
     let mut s = String::from(
-        "method,group_column,false_alarm_episodes_per_participant_month,threshold,group_level,participants,sensitivity,achieved_false_alarm_episodes,sensitivity_disparity,false_alarm_disparity,false_alarm_ratio\n",
+        "method,group_column,false_alarm_episodes_per_participant_month,threshold,group_level,participants,events,sensitivity,achieved_false_alarm_episodes,sensitivity_disparity,sensitivity_disparity_by_chance_p95,sensitivity_disparity_p_value,false_alarm_disparity,false_alarm_ratio\n",
     );
     let f = |v: Option<f64>| v.map(|x| format!("{x:.6}")).unwrap_or_default();
     for m in &report.methods {
@@ -391,16 +409,19 @@ pub fn write_disparity_csv(report: &EvaluationReport, path: &Path) -> std::io::R
             for p in &d.levels {
                 let _ = writeln!(
                     s,
-                    "{},{},{},{:.6},{},{},{},{},{},{},{}",
+                    "{},{},{},{:.6},{},{},{},{},{},{},{},{},{},{}",
                     m.method,
                     csv_field(&d.column),
                     d.matched_level,
                     d.threshold,
                     csv_field(&p.level),
                     p.participants,
+                    p.events,
                     f(p.sensitivity),
                     f(p.false_alarm_episodes_per_participant_month),
                     f(d.sensitivity_disparity),
+                    f(d.sensitivity_disparity_by_chance.map(|c| c.p95)),
+                    f(d.sensitivity_disparity_by_chance.map(|c| c.p_value)),
                     f(d.false_alarm_disparity),
                     f(d.false_alarm_ratio)
                 );

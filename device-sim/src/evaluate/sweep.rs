@@ -88,6 +88,8 @@ pub fn matched(truths: &[Truth<'_>], rule: Grouping, levels: &[f64]) -> Vec<Matc
 pub struct GroupPoint {
     pub level: String,
     pub participants: usize,
+    /// Target events of the level's participants.
+    pub events: usize,
     pub sensitivity: Option<f64>,
     pub false_alarm_episodes_per_participant_month: Option<f64>,
 }
@@ -106,6 +108,9 @@ pub struct GroupDisparity {
     pub levels: Vec<GroupPoint>,
     /// Highest minus lowest sensitivity across the levels that have target events.
     pub sensitivity_disparity: Option<f64>,
+    /// How large a spread chance alone gives at these levels' event counts
+    /// ([`disparity_by_chance`]).
+    pub sensitivity_disparity_by_chance: Option<ChanceSpread>,
     /// Highest minus lowest false alarm episode rate across the levels.
     pub false_alarm_disparity: Option<f64>,
     /// Highest over lowest false alarm episode rate (`null` when the lowest is 0).
@@ -117,6 +122,78 @@ fn spread(values: &[f64]) -> Option<f64> {
     let max = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
     let min = values.iter().copied().fold(f64::INFINITY, f64::min);
     (values.len() >= 2).then_some(max - min)
+}
+
+/// Seed of the disparities' chance resampling (with the column's and the level's positions
+/// mixed in), so a report is reproducible.
+const DISPARITY_SEED: u64 = 0x00D1_5BA7;
+
+/// Resamples behind a disparity's chance reference ([`disparity_by_chance`]).
+pub const DISPARITY_RESAMPLES: usize = 2000;
+
+/// How large a sensitivity disparity chance alone makes at these event counts.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct ChanceSpread {
+    /// The 95th percentile of the spread when the levels do not differ.
+    pub p95: f64,
+    /// Share of those resamples whose spread reaches the observed one (a one-sided p-value of
+    /// "the levels have one sensitivity").
+    pub p_value: f64,
+}
+
+/// The spread of sensitivities a column would show by chance alone: a bootstrap test of
+/// equal sensitivities (Efron & Tibshirani 1993, *An Introduction to the Bootstrap*, §16.2,
+/// from memory). Each level's participants, given as (target events, detected) per
+/// participant, are replaced by as many drawn with replacement from all levels pooled, so the
+/// levels keep their sizes and share one sensitivity, and a participant's events stay
+/// together (they share the person's baseline). `observed` is the spread the column showed.
+/// `None` with fewer than two levels that have events. Deterministic for a given `seed`.
+///
+/// A spread is a maximum minus a minimum, so chance alone makes it positive, and the more so
+/// the fewer events a level has: a spread below `p95` cannot be told from chance on this
+/// cohort, and halving one that is cannot be shown either.
+pub fn disparity_by_chance(
+    levels: &[Vec<(usize, usize)>],
+    observed: f64,
+    seed: u64,
+) -> Option<ChanceSpread> {
+    use rand::{Rng, SeedableRng};
+    let levels: Vec<&Vec<(usize, usize)>> = levels
+        .iter()
+        .filter(|l| l.iter().any(|&(events, _)| events > 0))
+        .collect();
+    if levels.len() < 2 {
+        return None;
+    }
+    let pooled: Vec<(usize, usize)> = levels.iter().flat_map(|l| l.iter().copied()).collect();
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+    let mut spreads = Vec::with_capacity(DISPARITY_RESAMPLES);
+    let mut sensitivities = Vec::with_capacity(levels.len());
+    for _ in 0..DISPARITY_RESAMPLES {
+        sensitivities.clear();
+        for members in &levels {
+            let (mut events, mut detected) = (0usize, 0usize);
+            for _ in 0..members.len() {
+                let (e, d) = pooled[rng.random_range(0..pooled.len())];
+                events += e;
+                detected += d;
+            }
+            // A drawn level may hold no event: it has no sensitivity, as a level without
+            // events has none.
+            if events > 0 {
+                sensitivities.push(detected as f64 / events as f64);
+            }
+        }
+        spreads.push(spread(&sensitivities).unwrap_or(0.0));
+    }
+    spreads.sort_by(f64::total_cmp);
+    let p95 = spreads[(0.95 * (spreads.len() - 1) as f64).round() as usize];
+    // Ties count as reaching it; a small tolerance keeps an exact tie from rounding away.
+    let reached = spreads.iter().filter(|&&x| x >= observed - 1e-12).count();
+    Some(ChanceSpread {
+        p95,
+        p_value: reached as f64 / spreads.len() as f64,
+    })
 }
 
 /// For each group column and each matched point with a threshold: every level's sensitivity
@@ -142,16 +219,32 @@ pub fn disparities(
         }
     }
     let mut out = Vec::new();
-    for (column, levels) in &columns {
-        for m in matched {
+    for (c, (column, levels)) in columns.iter().enumerate() {
+        for (k, m) in matched.iter().enumerate() {
             let Some(h) = m.threshold else { continue };
+            // Each participant's (events, detected) at `h`, per level, for the chance reference.
+            let counts: Vec<Vec<(usize, usize)>> = levels
+                .values()
+                .map(|members| {
+                    Sweep::with_floor(members, rule, h)
+                        .truths
+                        .iter()
+                        .map(|t| {
+                            let tally = tally_of(std::slice::from_ref(t), h, rule);
+                            (tally.events, tally.detected)
+                        })
+                        .collect()
+                })
+                .collect();
             let points: Vec<GroupPoint> = levels
                 .iter()
-                .map(|(level, members)| {
+                .zip(&counts)
+                .map(|((level, members), counts)| {
                     let p = at_threshold(members, h, rule);
                     GroupPoint {
                         level: (*level).to_owned(),
                         participants: members.len(),
+                        events: counts.iter().map(|&(e, _)| e).sum(),
                         sensitivity: p.sensitivity,
                         false_alarm_episodes_per_participant_month: p
                             .false_alarm_episodes_per_participant_month,
@@ -170,6 +263,13 @@ pub fn disparities(
                 matched_level: m.false_alarm_episodes_per_participant_month,
                 threshold: h,
                 sensitivity_disparity: spread(&sens),
+                sensitivity_disparity_by_chance: spread(&sens).and_then(|observed| {
+                    disparity_by_chance(
+                        &counts,
+                        observed,
+                        DISPARITY_SEED ^ ((c as u64) << 32 | k as u64),
+                    )
+                }),
                 false_alarm_disparity: spread(&fa),
                 false_alarm_ratio: (fa.len() >= 2 && fa_min > 0.0).then(|| fa_max / fa_min),
                 levels: points,
@@ -516,6 +616,30 @@ mod tests {
             .collect()
     }
 
+    /// The chance reference of a two-level disparity matches the normal approximation of
+    /// the two-proportion test (common practice): with one event per participant, 400
+    /// participants per level and a pooled sensitivity of 0.75, the difference of the two
+    /// sensitivities under "no difference" has standard error √(0.75·0.25·(1/400 + 1/400)) =
+    /// 0.0306, so its absolute value exceeds 1.96·0.0306 = 0.060 in 5 % of samples; and an
+    /// observed spread of 0.3 (0.9 against 0.6) is far beyond it, with p ≈ 0.
+    #[test]
+    fn chance_spread_matches_the_two_proportion_test() {
+        let level = |detected: usize| -> Vec<(usize, usize)> {
+            (0..400).map(|i| (1, usize::from(i < detected))).collect()
+        };
+        let se = (0.75f64 * 0.25 * (2.0 / 400.0)).sqrt();
+        let chance = disparity_by_chance(&[level(360), level(240)], 0.3, 3).unwrap();
+        assert!((chance.p95 - 1.96 * se).abs() < 0.006, "{chance:?}");
+        assert_eq!(chance.p_value, 0.0);
+        // Observed at the 95th percentile of |N(0, se)|: p near 0.05.
+        let chance = disparity_by_chance(&[level(360), level(240)], 1.96 * se, 3).unwrap();
+        assert!((chance.p_value - 0.05).abs() < 0.02, "{chance:?}");
+
+        // A level without events takes no part; one level alone has no disparity.
+        let none: Vec<(usize, usize)> = vec![(0, 0); 10];
+        assert_eq!(disparity_by_chance(&[level(360), none], 0.1, 3), None);
+    }
+
     #[test]
     fn disparities_of_a_hand_worked_cohort() {
         let event = |who: &str| Event {
@@ -575,6 +699,7 @@ mod tests {
         );
         assert_eq!(d.levels[0].sensitivity, Some(1.0));
         assert_eq!(d.levels[1].sensitivity, Some(0.0));
+        assert_eq!((d.levels[0].events, d.levels[1].events), (1, 1));
         // b: 1 false episode over 27 days outside its illness, per month of 30.4375 days.
         let fa_b = 1.0 / (27.0 / 30.4375);
         assert_eq!(
@@ -590,6 +715,11 @@ mod tests {
                 < 1e-12
         );
         assert_eq!(d.sensitivity_disparity, Some(1.0));
+        // By hand: each level draws one of {a, b}; the draws differ, and the spread is 1, half
+        // the time.
+        let chance = d.sensitivity_disparity_by_chance.unwrap();
+        assert_eq!(chance.p95, 1.0);
+        assert!((chance.p_value - 0.5).abs() < 0.05, "{chance:?}");
         assert!((d.false_alarm_disparity.unwrap() - fa_b).abs() < 1e-12);
         assert_eq!(d.false_alarm_ratio, None, "the lowest rate is 0");
     }
