@@ -432,7 +432,38 @@ async fn a_revoked_device_is_refused_and_never_selected_again() {
     );
     again.device_secret = new_device_secret();
     assert_refused(
-        client.enroll(again).await,
+        client.enroll(again.clone()).await,
+        Code::PermissionDenied,
+        &["Enroll", "participant_label", "revoked"],
+    );
+
+    // A device whose identity the aggregator holds in memory (its credential was just checked)
+    // and that is then revoked from another connection cannot enrol again at once either.
+    let d = server
+        .enroll(STUDY, "p-d", &HR, FlagSharing::Withheld)
+        .await;
+    client
+        .get_prior(authorized(
+            &d,
+            pb::GetPriorRequest {
+                study_id: STUDY.into(),
+                ..Default::default()
+            },
+        ))
+        .await
+        .unwrap();
+    Store::open(&crate::support::db_location(&db))
+        .unwrap()
+        .revoke_device(d.device_id, now_ms())
+        .unwrap();
+    assert_refused(
+        client
+            .enroll(pb::EnrollRequest {
+                participant_label: "p-d".into(),
+                device_secret: d.secret.clone(),
+                ..again
+            })
+            .await,
         Code::PermissionDenied,
         &["Enroll", "participant_label", "revoked"],
     );

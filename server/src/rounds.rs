@@ -580,6 +580,8 @@ impl Coordinator {
         )?;
         let credential_hash = secret_hash(device_secret);
         if let Some(&id) = rt.labels.get(label) {
+            // The operator may have revoked the device from another process since it was cached.
+            store.refresh_identities()?;
             let identity = store
                 .device_identity(id)?
                 .ok_or_else(|| AggregatorError::Corrupt(format!("device {id} vanished")))?;
