@@ -372,7 +372,7 @@ pub struct Store {
 ///
 /// Only on SQLite. The cache holds while `PRAGMA data_version` stays the same, which it does
 /// until another connection commits (SQLite's documentation of `data_version`): a device
-/// revoked by `plimsoll-aggregator devices revoke` in another process is seen at the next check.
+/// revoked by `plimsoll-aggregator device revoke` in another process is seen at the next check.
 /// This connection's own changes to `devices` empty it. On PostgreSQL nothing is kept: other
 /// aggregators change the table, and there is no such cheap check.
 #[derive(Debug, Default)]
@@ -835,10 +835,8 @@ impl Store {
         Ok(out)
     }
 
-    /// The identity of `device_id`, read from the database on every call so
-    /// that a revocation by another process counts at once.
-    ///
-    /// Answers from the identity cache when it holds the device; call
+    /// The identity of `device_id`: from the identity cache when it holds the device, else
+    /// read from the database (and cached on SQLite). Call
     /// [`Store::refresh_identities`] first to drop entries another process may have changed.
     pub fn device_identity(&mut self, device_id: u64) -> Result<Option<DeviceIdentity>> {
         if let Some(identity) = self.identities.by_id.get(&device_id) {
@@ -2040,7 +2038,7 @@ mod tests {
     }
 
     /// The identity cache never outlives a change: a revocation committed by another
-    /// connection (as `plimsoll-aggregator devices revoke` in another process does) is seen
+    /// connection (as `plimsoll-aggregator device revoke` in another process does) is seen
     /// after the next refresh, and this connection's own revocation at once (source: SQLite's
     /// documentation of `PRAGMA data_version`: it changes when another connection commits).
     #[test]

@@ -222,11 +222,16 @@ pub fn disparities(
     for (c, (column, levels)) in columns.iter().enumerate() {
         for (k, m) in matched.iter().enumerate() {
             let Some(h) = m.threshold else { continue };
-            // Each participant's (events, detected) at `h`, per level, for the chance reference.
-            let counts: Vec<Vec<(usize, usize)>> = levels
+            // One prepared sweep per level gives its figures at `h` (as `at_threshold`) and
+            // each participant's (events, detected) there, for the chance reference.
+            let sweeps: Vec<Sweep> = levels
                 .values()
-                .map(|members| {
-                    Sweep::with_floor(members, rule, h)
+                .map(|members| Sweep::with_floor(members, rule, h))
+                .collect();
+            let counts: Vec<Vec<(usize, usize)>> = sweeps
+                .iter()
+                .map(|sweep| {
+                    sweep
                         .truths
                         .iter()
                         .map(|t| {
@@ -238,9 +243,9 @@ pub fn disparities(
                 .collect();
             let points: Vec<GroupPoint> = levels
                 .iter()
-                .zip(&counts)
-                .map(|((level, members), counts)| {
-                    let p = at_threshold(members, h, rule);
+                .zip(sweeps.iter().zip(&counts))
+                .map(|((level, members), (sweep, counts))| {
+                    let p = sweep.at(h);
                     GroupPoint {
                         level: (*level).to_owned(),
                         participants: members.len(),
@@ -256,14 +261,15 @@ pub fn disparities(
                 .iter()
                 .filter_map(|p| p.false_alarm_episodes_per_participant_month)
                 .collect();
+            let observed = spread(&sens);
             let fa_min = fa.iter().copied().fold(f64::INFINITY, f64::min);
             let fa_max = fa.iter().copied().fold(f64::NEG_INFINITY, f64::max);
             out.push(GroupDisparity {
                 column: (*column).to_owned(),
                 matched_level: m.false_alarm_episodes_per_participant_month,
                 threshold: h,
-                sensitivity_disparity: spread(&sens),
-                sensitivity_disparity_by_chance: spread(&sens).and_then(|observed| {
+                sensitivity_disparity: observed,
+                sensitivity_disparity_by_chance: observed.and_then(|observed| {
                     disparity_by_chance(
                         &counts,
                         observed,
