@@ -375,11 +375,26 @@ pub struct Store {
 /// revoked by `plimsoll-aggregator device revoke` in another process is seen at the next check.
 /// This connection's own changes to `devices` empty it. On PostgreSQL nothing is kept: other
 /// aggregators change the table, and there is no such cheap check.
+///
+/// The first miss after the cache was emptied reads every device's identity in one statement
+/// (up to [`MAX_CACHED_IDENTITIES`]): after a start, or after another process committed, each
+/// device's first call would otherwise read its own row (under load, at the start of a round,
+/// that was most calls). Later misses read the one row, as a device enrolled since may be asked
+/// for.
 #[derive(Debug, Default)]
 struct IdentityCache {
     /// `data_version` when the entries were read.
     version: Option<i64>,
     by_id: std::collections::HashMap<u64, DeviceIdentity>,
+    /// Whether every device (up to the cap) was read since the cache was last emptied.
+    filled: bool,
+}
+
+impl IdentityCache {
+    fn clear(&mut self) {
+        self.by_id.clear();
+        self.filled = false;
+    }
 }
 
 /// Most identities kept; past it the cache starts again (a study has far fewer devices).
@@ -842,9 +857,21 @@ impl Store {
         if let Some(identity) = self.identities.by_id.get(&device_id) {
             return Ok(Some(identity.clone()));
         }
+        if self.db.dialect() != Dialect::Sqlite {
+            return self.read_device_identity(device_id);
+        }
+        if !self.identities.filled {
+            self.identities.by_id = self.read_all_device_identities()?;
+            self.identities.filled = true;
+            if let Some(identity) = self.identities.by_id.get(&device_id) {
+                return Ok(Some(identity.clone()));
+            }
+        }
         let identity = self.read_device_identity(device_id)?;
-        if let (Some(identity), Dialect::Sqlite) = (&identity, self.db.dialect()) {
+        if let Some(identity) = &identity {
             if self.identities.by_id.len() >= MAX_CACHED_IDENTITIES {
+                // Emptied, but still counted as filled: reading every row again would only
+                // overflow again.
                 self.identities.by_id.clear();
             }
             self.identities.by_id.insert(device_id, identity.clone());
@@ -863,7 +890,7 @@ impl Store {
             .db
             .query_row("PRAGMA data_version", &params![], |r| r.get::<i64>(0))?;
         if self.identities.version != Some(version) {
-            self.identities.by_id.clear();
+            self.identities.clear();
             self.identities.version = Some(version);
         }
         Ok(())
@@ -871,7 +898,28 @@ impl Store {
 
     /// Forgets cached identities: this connection changed `devices`.
     fn forget_identities(&mut self) {
-        self.identities.by_id.clear();
+        self.identities.clear();
+    }
+
+    /// Every device's identity, the first [`MAX_CACHED_IDENTITIES`] by id.
+    fn read_all_device_identities(&self) -> Result<std::collections::HashMap<u64, DeviceIdentity>> {
+        let rows = self.db.query_map(
+            "SELECT device_id, study_id, label, credential_hash, revoked_ms FROM devices
+             ORDER BY device_id LIMIT ?1",
+            &params![MAX_CACHED_IDENTITIES as i64],
+            |r| {
+                Ok((
+                    r.get::<i64>(0)? as u64,
+                    DeviceIdentity {
+                        study_id: r.get(1)?,
+                        label: r.get(2)?,
+                        credential_hash: r.get(3)?,
+                        revoked_ms: r.get(4)?,
+                    },
+                ))
+            },
+        )?;
+        Ok(rows.into_iter().collect())
     }
 
     fn read_device_identity(&self, device_id: u64) -> Result<Option<DeviceIdentity>> {
@@ -2055,6 +2103,19 @@ mod tests {
             .insert_device(&new_device("p-b", &signals), 1)
             .unwrap();
         served.refresh_identities().unwrap();
+        // The first miss reads every device at once.
+        assert_eq!(served.device_identity(a).unwrap().unwrap().label, "p-a");
+        assert_eq!(
+            served.identities.by_id.len(),
+            2,
+            "both devices cached by one read"
+        );
+        assert_eq!(served.device_identity(b).unwrap().unwrap().label, "p-b");
+        // A device enrolled after that read is still found (a single-row read).
+        let c = served
+            .insert_device(&new_device("p-c", &signals), 1)
+            .unwrap();
+        assert_eq!(served.device_identity(c).unwrap().unwrap().label, "p-c");
         for id in [a, b] {
             let identity = served.device_identity(id).unwrap().unwrap();
             assert_eq!(identity.revoked_ms, None);
