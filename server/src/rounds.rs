@@ -1695,6 +1695,13 @@ fn shared(store: &Store) -> bool {
 
 /// A study's in-memory state, read from the store.
 fn load_runtime(store: &Store, config: StudyConfig) -> Result<StudyRuntime> {
+    // One snapshot on a shared store: read in separate statements, a round another process
+    // opened between them could show in `last_round_id` but not as the open round, and this
+    // process would then try to open the round after it.
+    store.read_snapshot(|store| read_runtime(store, config))
+}
+
+fn read_runtime(store: &Store, config: StudyConfig) -> Result<StudyRuntime> {
     let id = config.study_id.clone();
     // The stamp first: what changes while the rest is read then shows as a stamp that
     // differs at the next sync, never as a change the stamp already counts but this

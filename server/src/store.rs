@@ -896,6 +896,26 @@ impl Store {
         Ok(())
     }
 
+    /// Runs `read` on one snapshot of the database, so reads made in several statements agree
+    /// with each other. On PostgreSQL that is a read-only `REPEATABLE READ` transaction (each
+    /// statement otherwise sees what committed before it began, and another aggregator may
+    /// commit between two of them); on SQLite the reads run as they are (one aggregator
+    /// process writes the rounds there). Not for use inside a transaction.
+    pub fn read_snapshot<T>(&self, read: impl FnOnce(&Store) -> Result<T>) -> Result<T> {
+        if self.db.dialect() != Dialect::Postgres {
+            return read(self);
+        }
+        self.db
+            .execute_batch("BEGIN ISOLATION LEVEL REPEATABLE READ, READ ONLY")?;
+        let out = read(self);
+        let end = self
+            .db
+            .execute_batch(if out.is_ok() { "COMMIT" } else { "ROLLBACK" });
+        let out = out?;
+        end?;
+        Ok(out)
+    }
+
     /// Forgets cached identities: this connection changed `devices`.
     fn forget_identities(&mut self) {
         self.identities.clear();
@@ -1293,6 +1313,12 @@ impl Store {
 
     /// Opens a round with its members; when `abandon` names the previous open
     /// round (closed without quorum), marks it abandoned in the same transaction.
+    ///
+    /// Refused ([`AggregatorError::Superseded`]) when another process changed the rounds
+    /// first: the round id is taken, the latest prior is not `base_version`, `abandon` is no
+    /// longer open, or another round is open. That last check needs the openings of one study
+    /// to take turns: SQLite's write lock does it; on PostgreSQL the study's row is locked
+    /// (`FOR UPDATE`) first, so the check sees what a concurrent opening committed.
     pub fn open_new_round(
         &mut self,
         study_id: &str,
@@ -1308,6 +1334,13 @@ impl Store {
                 round.round_id
             ))
         };
+        if tx.dialect() == Dialect::Postgres {
+            tx.query_opt(
+                "SELECT study_id FROM studies WHERE study_id = ?1 FOR UPDATE",
+                &params![study_id],
+                |r| r.get::<String>(0),
+            )?;
+        }
         if let Some(old) = abandon {
             let changed = tx.execute(
                 "UPDATE rounds SET state = 'abandoned', closed_ms = ?3
@@ -1326,6 +1359,14 @@ impl Store {
             |r| r.get::<i64>(0),
         )?;
         if latest != i64::from(base_version) {
+            return Err(superseded());
+        }
+        let still_open = tx.query_opt(
+            "SELECT round_id FROM rounds WHERE study_id = ?1 AND state = 'open'",
+            &params![study_id],
+            |r| r.get::<i64>(0),
+        )?;
+        if still_open.is_some() {
             return Err(superseded());
         }
         let inserted = tx.execute(
@@ -2239,6 +2280,11 @@ mod tests {
             .open_new_round("s", &fourth, 1, Some(2), 70)
             .unwrap_err();
         assert!(matches!(twice, AggregatorError::Superseded(_)), "{twice}");
+        // A round while another is open, from a process whose picture missed the open one
+        // (the latest prior has not moved, and the new id is free): refused, one open round
+        // per study.
+        let beside = store.open_new_round("s", &fourth, 1, None, 70).unwrap_err();
+        assert!(matches!(beside, AggregatorError::Superseded(_)), "{beside}");
         assert_eq!(store.open_round("s").unwrap().unwrap().round_id, 3);
         assert_eq!(store.last_round_id("s").unwrap(), 3);
 
@@ -2267,6 +2313,36 @@ mod tests {
             );
         }
         assert_eq!(store.integrity_check().unwrap(), ["ok"]);
+    }
+
+    /// Reads on one snapshot agree with each other while another process opens a round
+    /// (PostgreSQL's `REPEATABLE READ`: a transaction sees the data as of its first statement,
+    /// PostgreSQL 15 documentation, §13.2.2). Without the snapshot the second read sees the
+    /// new round's id but the first did not see it open.
+    #[test]
+    fn a_snapshot_read_does_not_see_a_round_opened_halfway() {
+        let Some(url) = crate::db::test_database("snapshot") else {
+            return;
+        };
+        let mut reader = Store::open_postgres(&url).unwrap();
+        bare_study(&mut reader);
+        let mut other = Store::open_postgres(&url).unwrap();
+        let round = StoredOpenRound {
+            round_id: 1,
+            deadline_ms: 100,
+            members: Vec::new(),
+            submissions: Vec::new(),
+        };
+        let (open, last) = reader
+            .read_snapshot(|store| {
+                let open = store.open_round("s")?.map(|r| r.round_id);
+                other.open_new_round("s", &round, 0, None, 10)?;
+                Ok((open, store.last_round_id("s")?))
+            })
+            .unwrap();
+        assert_eq!((open, last), (None, 0), "one picture, before the round");
+        assert_eq!(reader.open_round("s").unwrap().unwrap().round_id, 1);
+        assert_eq!(reader.last_round_id("s").unwrap(), 1);
     }
 
     #[test]
