@@ -10,7 +10,7 @@ use plimsoll_proto::v1 as pb;
 use plimsoll_proto::v1::aggregator_server::{Aggregator, AggregatorServer};
 use tokio::net::TcpListener;
 use tokio::sync::{mpsc, oneshot};
-use tokio_stream::wrappers::TcpListenerStream;
+use tonic::transport::server::TcpIncoming;
 use tonic::{Request, Response, Status};
 
 use crate::error::AggregatorError;
@@ -483,12 +483,17 @@ pub async fn serve_with(
     }
     let metrics = Arc::new(crate::metrics::Metrics::new());
     let mut builder = builder.layer(crate::metrics::RpcMetricsLayer::new(metrics.clone()));
+    // `TCP_NODELAY` on every accepted connection. The builder's own `tcp_nodelay` does not
+    // apply to a listener handed in, and without it Nagle's algorithm held small answers back
+    // until the peer's delayed acknowledgement: a plateau of calls at 40–50 ms, most of the
+    // load example's p99.
+    let incoming = TcpIncoming::from(listener).with_nodelay(Some(true));
     let task = tokio::spawn(
         builder
             .add_service(health_service)
             .add_service(reflection)
             .add_service(service)
-            .serve_with_incoming_shutdown(TcpListenerStream::new(listener), async {
+            .serve_with_incoming_shutdown(incoming, async {
                 let _ = rx.await;
             }),
     );
