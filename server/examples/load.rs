@@ -12,9 +12,10 @@
 //! simulated devices on another, so the CPU time each side spends per update is read from the
 //! threads' own counters (`/proc/self/task/*/stat`) and printed too: on a shared machine it is
 //! steadier than the wall-clock rate. The devices' runtime has one thread (the main one): they
-//! stand for separate machines, and handing their calls between threads cost the shared cores
-//! 10–20 µs per update that belong to neither side (measured: 39–46 µs per update on one
-//! thread against 51–65 µs on two workers). Each of CONCURRENCY tasks takes the next device
+//! stand for separate machines, and on two workers the handovers of their calls between threads
+//! took 10–20 µs per update from the cores the aggregator shares with them, work no device
+//! fleet puts on the aggregator's machine (measured: 39–46 µs of the devices' CPU per update on
+//! one thread against 51–65 µs on two workers). Each of CONCURRENCY tasks takes the next device
 //! until none is left, so CONCURRENCY calls are in flight.
 //!
 //! With `--postgres URL` (a PostgreSQL server the run may create databases on), the runs are

@@ -13,7 +13,7 @@ use sha2::{Digest, Sha256};
 /// Lower-case hex of `bytes`.
 pub fn hex(bytes: &[u8]) -> String {
     // By table rather than `write!("{b:02x}")`: this runs on every authenticated call, and the
-    // formatting machinery was most of the credential check's time.
+    // formatting machinery took most of the time of hashing a presented secret.
     const DIGITS: &[u8; 16] = b"0123456789abcdef";
     let mut s = String::with_capacity(bytes.len() * 2);
     for b in bytes {
