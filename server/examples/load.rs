@@ -14,9 +14,9 @@
 //! steadier than the wall-clock rate. The devices' runtime has one thread (the main one): they
 //! stand for separate machines, and on two workers the handovers of their calls between threads
 //! took 10–20 µs per update from the cores the aggregator shares with them, work no device
-//! fleet puts on the aggregator's machine (measured: 39–46 µs of the devices' CPU per update on
-//! one thread against 51–65 µs on two workers). Each of CONCURRENCY tasks takes the next device
-//! until none is left, so CONCURRENCY calls are in flight.
+//! fleet puts on the aggregator's machine (measured: 39–45 µs of the devices' CPU per update on
+//! one thread against 51–65 µs on two workers, plaintext runs). Each of CONCURRENCY tasks takes
+//! the next device until none is left, so CONCURRENCY calls are in flight.
 //!
 //! With `--postgres URL` (a PostgreSQL server the run may create databases on), the runs are
 //! instead: SQLite (the named baseline), PostgreSQL behind one aggregator, and PostgreSQL behind
